@@ -1,0 +1,1 @@
+"""Ground-truth simulator: synthetic fingers, capacitive front end, swipe motion, capture."""
