@@ -1303,11 +1303,13 @@ def write_image(path, image, *, pitch_um=50.8, bits=16, percentiles=(0.5, 99.5),
             fh.write(data)
     else:
         import tifffile
+        buf = _io.BytesIO()
+        tifffile.imwrite(buf, codes, photometric="minisblack",
+                         resolution=(float(per_unit[1]), float(per_unit[0])),
+                         resolutionunit=resolution_unit.upper(), description=text,
+                         metadata=None, software="stripstitch")
         with atomic_output(path, overwrite=overwrite) as fh:
-            tifffile.imwrite(fh, codes, photometric="minisblack",
-                             resolution=(float(per_unit[1]), float(per_unit[0])),
-                             resolutionunit=resolution_unit.upper(), description=text,
-                             metadata=None, software="stripstitch")
+            fh.write(buf.getvalue())
     return meta
 
 
