@@ -1002,27 +1002,31 @@ def _npz_header(npz):
 
 
 def _read_npz(path, min_frames):
-    try:
-        npz = np.load(path, allow_pickle=False)
-    except (ValueError, OSError, EOFError, zlib.error) as exc:
-        raise FormatError(f"{str(path)!r} is not a readable .npz archive: {exc}") from None
-    with npz:
+    # Open the file ourselves so that it is closed even when numpy cannot parse it.
+    bad = Exception      # zipfile and numpy's header parser raise many kinds on garbage
+    with open(path, "rb") as fh:
+        try:
+            npz = np.load(fh, allow_pickle=False)
+        except bad as exc:
+            raise FormatError(f"{str(path)!r} is not a readable .npz archive: {exc}") from None
         if not hasattr(npz, "files"):
             raise FormatError(f"{str(path)!r} holds a single array, not an .npz archive")
-        if "frames" not in npz.files:
-            raise FormatError(f"{str(path)!r} has no 'frames' array (keys: {sorted(npz.files)})")
-        try:
-            frames = npz["frames"]
-            header = _npz_header(npz)
-            stamps = None
-            for key in ("timestamps_s", "times_s"):
-                if key in npz.files:
-                    stamps = np.asarray(npz[key])
-                    break
-        except (ValueError, OSError, EOFError, zlib.error) as exc:
-            raise FormatError(f"{str(path)!r}: damaged array data: {exc}") from None
-    kind = "capture" if ("true_image" in npz.files or header.get("kind") == "capture"
-                         or "positions" in npz.files) else "npz"
+        with npz:
+            if "frames" not in npz.files:
+                raise FormatError(f"{str(path)!r} has no 'frames' array (keys: {sorted(npz.files)})")
+            try:
+                frames = npz["frames"]
+                header = _npz_header(npz)
+                stamps = None
+                for key in ("timestamps_s", "times_s"):
+                    if key in npz.files:
+                        stamps = np.asarray(npz[key])
+                        break
+            except bad as exc:
+                raise FormatError(f"{str(path)!r}: damaged array data: {exc}") from None
+            files = list(npz.files)
+    kind = "capture" if ("true_image" in files or header.get("kind") == "capture"
+                         or "positions" in files) else "npz"
     pitch = header.get("pitch_um")
     rate = header.get("frame_rate_hz")
     if isinstance(header.get("sensor"), Mapping):
@@ -1075,8 +1079,9 @@ def read_frames(path, *, manifest=None, min_frames=2):
         return read_dump(path, manifest=manifest, min_frames=min_frames)
     if suffix == ".npy":
         try:
-            frames = np.load(path, allow_pickle=False)
-        except (ValueError, OSError, EOFError) as exc:
+            with open(path, "rb") as fh:
+                frames = np.load(fh, allow_pickle=False)
+        except Exception as exc:   # numpy's header parser raises many kinds on garbage
             raise FormatError(f"{str(path)!r} is not a readable .npy array (pickled object "
                               f"arrays are refused): {exc}") from None
         stamps, pitch, rate, kind, notes = None, None, None, "npy", None
