@@ -629,7 +629,7 @@ def finger_presence(frames, *, calibration=None, threshold=0.1, window_px=9, lev
         Default is 9.
     level : float, optional
         Code step above the blank level that marks ridge contact. Default is None: the larger
-        of 5 noise sigma and 25 % of the 99.5th percentile of the signal.
+        of 5 noise sigma and 10 % of the 99.5th percentile of the signal.
 
     Returns
     -------
@@ -677,7 +677,7 @@ def finger_presence(frames, *, calibration=None, threshold=0.1, window_px=9, lev
             noise = 0.5
     top = float(np.percentile(v, 99.5))
     if level is None:
-        lev = max(5.0 * noise, 0.25 * top)
+        lev = max(5.0 * noise, 0.1 * top)
     else:
         lev = check_positive(level, name="level")
     if level is None and top < 10.0 * noise:
