@@ -447,14 +447,17 @@ class SweepTable:
                 w = csv.DictWriter(fh, fieldnames=list(self.columns))
                 w.writeheader()
                 for r in self.rows:
-                    w.writerow({k: "" if r.get(k) is None else r.get(k) for k in self.columns})
+                    w.writerow({k: "None" if r.get(k) is None else r.get(k) for k in self.columns})
         os.replace(tmp, path)
         return path
 
 
 def _parse(text):
-    if text == "":
+    # CSV cells: "None" is a missing value (NaN and inf are stored as missing), "" an empty string.
+    if text == "None":
         return None
+    if text == "":
+        return ""
     if text in ("True", "False"):
         return text == "True"
     try:
