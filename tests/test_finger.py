@@ -1,0 +1,388 @@
+"""Tests of the synthetic finger (stripstitch.simulate.finger).
+
+The generated ridge image is checked with outside estimators (tests/_singular.py: gradient
+structure tensor, Poincare index, crossing number, FFT peak; scikit-image skeletonize and
+structure_tensor), not against the maps that produced it.
+"""
+
+from __future__ import annotations
+
+import cmath
+import dataclasses
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import ndimage
+
+sys.path.insert(0, str(Path(__file__).parent))
+from _singular import (count_minutiae, count_singular_points, estimate_orientation,  # noqa: E402
+                       fft_peak_period, poincare_index)
+
+from stripstitch.simulate.finger import (PATTERNS, SKINS, Finger, make_finger,  # noqa: E402
+                                         orientation_field)
+
+_CACHE = {}
+
+
+def finger(pattern, **kw):
+    """Cached make_finger (the tests only read the read-only result)."""
+    key = (pattern, tuple(sorted(kw.items())))
+    if key not in _CACHE:
+        _CACHE[key] = make_finger(pattern, **kw)
+    return _CACHE[key]
+
+
+# --------------------------------------------------------------------------------------------
+# zero-pole orientation model
+
+def _direct_zero_pole(along, across, cores, deltas, theta_inf=0.0):
+    # Sherlock & Monro, Pattern Recognition 26(7):1047-1055 (1993):
+    # theta(z) = theta_inf + 1/2 [sum arg(z - c_k) - sum arg(z - d_k)], z = x + iy; here
+    # x = across, y = along. Evaluated point by point with cmath.phase as an independent check.
+    z = complex(across, along)
+    s = sum(cmath.phase(z - complex(c[1], c[0])) for c in cores)
+    s -= sum(cmath.phase(z - complex(d[1], d[0])) for d in deltas)
+    return theta_inf + 0.5 * s
+
+
+def test_orientation_field_matches_published_formula():
+    rng = np.random.default_rng(11)
+    cores = rng.uniform(-2000, 2000, (2, 2))
+    deltas = rng.uniform(-2000, 2000, (2, 2))
+    pts = rng.uniform(-5000, 5000, (25, 2))
+    got = orientation_field(pts[:, 0], pts[:, 1], cores_um=cores, deltas_um=deltas,
+                            theta_inf_rad=0.3)
+    want = np.array([_direct_zero_pole(a, x, cores, deltas, 0.3) for a, x in pts])
+    # orientations are defined modulo pi: compare doubled angles
+    np.testing.assert_allclose(np.cos(2 * (got - want)), 1.0, atol=1e-12)
+    assert np.all((got >= -np.pi / 2) & (got < np.pi / 2))
+
+
+def test_orientation_field_symmetries():
+    # single core at the origin: theta = arg(z)/2 (Sherlock & Monro 1993, eq. for one zero)
+    th = orientation_field([0.0, 100.0, 0.0], [100.0, 0.0, -100.0], cores_um=[(0.0, 0.0)])
+    np.testing.assert_allclose(th, [0.0, np.pi / 4, -np.pi / 2], atol=1e-12)
+    # core above a delta on one vertical line (tented arch): mirror symmetry across that
+    # line, theta(a, -x) = -theta(a, x) (follows from arg(conj z) = -arg z)
+    rng = np.random.default_rng(5)
+    a, x = rng.uniform(-3000, 3000, 50), rng.uniform(-3000, 3000, 50)
+    kw = dict(cores_um=[(0.0, 0.0)], deltas_um=[(1500.0, 0.0)])
+    left, right = orientation_field(a, -x, **kw), orientation_field(a, x, **kw)
+    np.testing.assert_allclose(np.cos(2 * (left + right)), 1.0, atol=1e-12)
+    # a balanced core/delta pair leaves the far field at theta_inf
+    far = orientation_field([1e9], [1e9], theta_inf_rad=0.2, **kw)
+    np.testing.assert_allclose(far, 0.2, atol=1e-6)
+
+
+def test_orientation_field_poincare_index_of_the_model():
+    # Poincare index (Kawagoe & Tojo 1984): +1/2 around a core, -1/2 around a delta
+    a, x = np.mgrid[-2000:2001:100.0, -2000:2001:100.0]
+    th = orientation_field(a, x, cores_um=[(-650.0, -650.0)], deltas_um=[(650.0, 650.0)])
+    idx = poincare_index(th)
+    assert np.count_nonzero(np.isclose(idx, 0.5)) == 1
+    assert np.count_nonzero(np.isclose(idx, -0.5)) == 1
+    assert np.count_nonzero(np.abs(idx) > 1e-9) == 2
+
+
+# --------------------------------------------------------------------------------------------
+# ridge period
+
+def _patch_periods(f, patch_mm=2.5):
+    n = int(round(patch_mm * 1000 / f.spacing_um))
+    meas, local = [], []
+    for i in range(0, f.shape[0] - n + 1, n // 2):
+        for j in range(0, f.shape[1] - n + 1, n // 2):
+            if f.contact[i:i + n, j:j + n].min() < 1.0:
+                continue
+            meas.append(fft_peak_period(f.ridge[i:i + n, j:j + n], f.spacing_um))
+            local.append(f.period_um[i:i + n, j:j + n].mean())
+    return np.array(meas), np.array(local)
+
+
+@pytest.mark.parametrize("mean, prange", [(460.0, (440.0, 480.0)), (380.0, (365.0, 395.0))])
+def test_ridge_period_matches_request(mean, prange):
+    # Independent measurement: 2-D FFT magnitude peak of 2.5 mm pad patches (common practice;
+    # cf. the frequency image of Hong, Wan & Jain, IEEE TPAMI 20(8), 1998). A narrow range keeps
+    # the map close to the mean, so the measured median must be within +-10 % of the request.
+    f = finger("right_loop", size_mm=(10.0, 10.0), spacing_um=20.0, mean_period_um=mean,
+               period_range_um=prange, pressure=1.0, rng=3)
+    meas, _ = _patch_periods(f)
+    assert len(meas) >= 9
+    assert abs(np.median(meas) / mean - 1.0) < 0.10
+
+
+def test_ridge_period_follows_varying_map():
+    # default range 350-600 um: each patch's measured period follows the local map value
+    f = finger("left_loop", size_mm=(10.0, 10.0), spacing_um=20.0, pressure=1.0, rng=4)
+    meas, local = _patch_periods(f)
+    assert 350.0 <= f.period_um.min() and f.period_um.max() <= 600.0
+    np.testing.assert_allclose(f.period_um.mean(), 460.0, rtol=1e-6)
+    assert abs(np.median(meas / local) - 1.0) < 0.10
+    # and the map does vary (smoothly) within the range
+    assert f.period_um.max() - f.period_um.min() > 40.0
+
+
+# --------------------------------------------------------------------------------------------
+# singular points from the image
+
+def _singular_from_image(f):
+    # 500 ppi image (every 2nd cell at 25.4 um), blocks of 4 px (0.2 mm); gradient structure
+    # tensor orientation (Kass & Witkin 1987; Rao 1990), Poincare index (Kawagoe & Tojo 1984;
+    # Handbook of Fingerprint Recognition, Maltoni et al. 2009, ch. 3) over the pad interior
+    # with a 0.6 mm margin from the pad edge.
+    step = int(round(50.8 / f.spacing_um))
+    img = f.ridge[::step, ::step]
+    block = 4
+    theta, _ = estimate_orientation(img, block=block, sigma_smooth=1.5)
+    pad = f.contact[::step, ::step][::block, ::block][: theta.shape[0], : theta.shape[1]] > 0.999
+    inner = ndimage.binary_erosion(pad, iterations=3)
+    n_core, n_delta, cores, deltas = count_singular_points(theta, inner)
+    mm = block * step * f.spacing_um / 1000.0
+    return n_core, n_delta, (cores + 1.0) * mm, (deltas + 1.0) * mm
+
+
+@pytest.mark.parametrize("pattern, n_core, n_delta", [
+    ("arch", 0, 0), ("tented_arch", 1, 1), ("left_loop", 1, 1), ("right_loop", 1, 1),
+    ("whorl", 2, 2), ("twin_loop", 2, 2)])
+@pytest.mark.parametrize("seed", [0, 7])
+def test_singular_points_in_generated_image(pattern, n_core, n_delta, seed):
+    f = finger(pattern, size_mm=(15.0, 14.0), spacing_um=25.4, pressure=1.0, rng=seed)
+    got_core, got_delta, cores, deltas = _singular_from_image(f)
+    assert (got_core, got_delta) == (n_core, n_delta)
+    # found where the model put them (within 0.6 mm, about one ridge period)
+    for found, placed in ((cores, f.cores_um), (deltas, f.deltas_um)):
+        for p in placed / 1000.0:
+            assert np.min(np.hypot(*(found - p).T)) < 0.6
+
+
+@pytest.mark.parametrize("pattern, sign", [("right_loop", -1), ("left_loop", +1)])
+def test_loop_opens_to_its_side(pattern, sign):
+    # A loop's delta lies on the side opposite to the loop's opening (Handbook of Fingerprint
+    # Recognition, Maltoni et al. 2009, ch. 5, pattern classes; from memory). Image view,
+    # fingertip up: a right loop opens right (larger column index), so its delta is left.
+    f = finger(pattern, size_mm=(15.0, 14.0), spacing_um=25.4, pressure=1.0, rng=0)
+    _, _, cores, deltas = _singular_from_image(f)
+    assert sign * (deltas[0, 1] - cores[0, 1]) > 1.0       # mm
+    assert deltas[0, 0] > cores[0, 0] + 1.0                # delta below the core
+
+
+def test_arch_ridges_run_across():
+    # Plain arch: ridges flow from one side to the other, roughly perpendicular to axis 0
+    # (Handbook ch. 5; common practice). Estimated orientation, not the input map.
+    f = finger("arch", size_mm=(15.0, 14.0), spacing_um=25.4, pressure=1.0, rng=0)
+    theta, coh = estimate_orientation(f.ridge[::2, ::2], block=4, sigma_smooth=1.5)
+    pad = f.contact[::2, ::2][::4, ::4][: theta.shape[0], : theta.shape[1]] > 0.999
+    assert np.median(np.abs(theta[pad])) < np.radians(20)
+    assert np.mean(np.abs(theta[pad]) < np.radians(45)) > 0.9
+
+
+# --------------------------------------------------------------------------------------------
+# minutiae and the look of the ridges
+
+def test_minutiae_arise_on_full_finger():
+    # Skeleton (skimage.morphology.skeletonize) of the binarised 500 ppi ridge map, crossing
+    # number (Arcelli & Baja 1984; Handbook ch. 3). A full print carries some tens of minutiae
+    # (Handbook ch. 3; from memory): require tens, not zero, not thousands.
+    f = finger("right_loop", rng=2)          # full size: 20 x 14 mm at 12.7 um
+    assert f.shape == (1575, 1102)
+    img = f.ridge[::4, ::4]
+    inner = ndimage.binary_erosion(f.contact[::4, ::4] > 0.999, iterations=10)
+    endings, bifurcations = count_minutiae(img > 0, inner)
+    assert 5 <= endings <= 300 and 5 <= bifurcations <= 300
+    assert 20 <= endings + bifurcations <= 400
+
+
+def test_ridges_are_continuous_bands_not_blobs():
+    # Connected components of the binarised ridges inside the pad (scipy.ndimage.label): no
+    # isolated blobs; ridges are long bands (common practice for ridge quality).
+    f = finger("whorl", size_mm=(12.0, 12.0), spacing_um=25.4, pressure=1.0, rng=1)
+    inner = ndimage.binary_erosion(f.contact > 0.999, iterations=20)
+    ridges = (f.ridge > 0) & inner
+    lab, n = ndimage.label(ridges)
+    sizes = np.bincount(lab.ravel())[1:]
+    # components cut by the border of the region are not judged
+    cut = np.unique(lab[ndimage.binary_dilation(~inner) & ridges])
+    whole = np.setdiff1d(np.arange(1, n + 1), cut)
+    area_of_a_dot = (460.0 / f.spacing_um) ** 2            # one period squared
+    small = sizes[whole - 1] < area_of_a_dot
+    assert n > 5 and small.sum() <= 0.1 * n + 1
+    # black/white balance near 50 % (ridges and valleys about as wide; Handbook ch. 3)
+    assert 0.35 < ridges.sum() / inner.sum() < 0.65
+
+
+def test_rounded_cross_section_and_height_range():
+    f = finger("left_loop", size_mm=(8.0, 8.0), rng=5)
+    assert f.ridge.min() >= -1.0 and f.ridge.max() <= 1.0
+    assert f.height_um.min() >= 0.0 and f.height_um.max() <= f.valley_depth_um == 50.0
+    # the crests and valley floors are reached ...
+    inner = f.contact > 0.999
+    assert np.quantile(f.height_um[inner], 0.98) > 49.0
+    assert np.quantile(f.height_um[inner], 0.02) < 1.0
+    # ... but it is not a square wave: a sizeable share of intermediate heights (a sinusoid
+    # has 1/3 of its samples with |value| < 1/2 of the amplitude; a square wave none)
+    mid = np.mean(np.abs(f.ridge[inner]) < 0.5)
+    assert 0.15 < mid < 0.6
+    np.testing.assert_allclose(f.height_um, 25.0 * (1.0 + f.ridge), atol=1e-9)
+
+
+# --------------------------------------------------------------------------------------------
+# footprint, air gap and skin condition
+
+def _contact_extent_mm(f):
+    h, w = f.shape
+    across = np.count_nonzero(f.contact[h // 2] > 0.5) * f.spacing_um / 1000.0
+    along = np.count_nonzero(f.contact[:, w // 2] > 0.5) * f.spacing_um / 1000.0
+    return along, across
+
+
+def test_footprint_grows_with_pressure():
+    ext = [_contact_extent_mm(finger("arch", size_mm=(10.0, 8.0), spacing_um=25.4,
+                                     pressure=p, rng=1)) for p in (0.0, 0.5, 1.0)]
+    along, across = np.array(ext).T
+    assert np.all(np.diff(across) > 0.5) and np.all(np.diff(along) > 0.5)
+    assert across[-1] <= 8.0 and along[-1] <= 10.0
+
+
+def test_air_gap_on_and_off_the_pad():
+    f = finger("whorl", size_mm=(8.0, 8.0), rng=6)
+    inner = f.contact == 1.0
+    np.testing.assert_allclose(f.air_gap_um[inner], (50.0 - f.height_um)[inner], atol=1e-9)
+    assert np.all(f.air_gap_um >= 0.0)
+    crests = inner & (f.ridge > 0.99)
+    assert crests.any() and f.air_gap_um[crests].max() < 0.3     # touching crests
+    # off the pad the skin curves away: gap grows with the distance from the pad
+    assert f.air_gap_um[0, 0] > 300.0 and f.air_gap_um[-1, -1] > 300.0
+    row = f.air_gap_um[f.shape[0] // 2] - (50.0 - f.height_um[f.shape[0] // 2])   # lift only
+    half = row[: f.shape[1] // 2]
+    assert np.all(np.diff(half) <= 1e-9)                                # rises towards the edge
+    np.testing.assert_array_equal(f.fluid_um, 0.0)
+
+
+def test_dry_skin_breaks_ridge_contact():
+    kw = dict(size_mm=(8.0, 8.0), spacing_um=20.0, rng=8)
+    normal, dry = finger("right_loop", **kw), finger("right_loop", skin="dry", **kw)
+    np.testing.assert_array_equal(normal.ridge, dry.ridge)             # same ridges
+    np.testing.assert_array_equal(normal.contact, dry.contact)         # same footprint
+    crests = (normal.contact == 1.0) & (normal.ridge > 0.99)
+    touch_n = np.mean(normal.air_gap_um[crests] < 0.5)
+    touch_d = np.mean(dry.air_gap_um[crests] < 0.5)
+    assert touch_n > 0.99 and 0.3 < touch_d < 0.9
+    lift = dry.air_gap_um - normal.air_gap_um
+    assert lift.min() >= 0.0 and 2.0 < lift.max() <= 6.0               # "a few um"
+    np.testing.assert_array_equal(dry.fluid_um, 0.0)
+
+
+def test_wet_skin_fills_valleys_partly():
+    kw = dict(size_mm=(8.0, 8.0), spacing_um=20.0, rng=8)
+    normal, wet = finger("right_loop", **kw), finger("right_loop", skin="wet", **kw)
+    np.testing.assert_array_equal(normal.air_gap_um, wet.air_gap_um)
+    assert np.all(wet.fluid_um >= 0.0) and np.all(wet.fluid_um <= wet.air_gap_um)
+    pad = wet.contact == 1.0
+    # upper flanks of the ridges: gap below a quarter of the depth, i.e. below the lowest
+    # moisture level (documented: 25-55 % of the valley depth) -> filled
+    flanks = pad & (wet.ridge > 0.5) & (wet.ridge < 0.99)
+    valleys = pad & (wet.ridge < -0.99)                # valley centres
+    assert np.median(wet.fluid_um[flanks] / wet.air_gap_um[flanks]) > 0.5
+    assert np.median(wet.fluid_um[valleys] / wet.air_gap_um[valleys]) < 0.5
+    np.testing.assert_array_equal(wet.fluid_um[wet.contact == 0.0], 0.0)
+
+
+# --------------------------------------------------------------------------------------------
+# reproducibility, result type, properties
+
+def test_reproducible_by_seed():
+    a = make_finger("twin_loop", size_mm=(5.0, 5.0), skin="dry", rng=42)
+    b = make_finger("twin_loop", size_mm=(5.0, 5.0), skin="dry", rng=42)
+    c = make_finger("twin_loop", size_mm=(5.0, 5.0), skin="dry", rng=43)
+    for name in ("ridge", "height_um", "air_gap_um", "period_um", "cores_um", "deltas_um"):
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+    assert not np.array_equal(a.ridge, c.ridge)
+    assert not np.array_equal(a.cores_um, c.cores_um)
+    g = np.random.default_rng(42)
+    d = make_finger("twin_loop", size_mm=(5.0, 5.0), skin="dry", rng=g)
+    np.testing.assert_array_equal(a.ridge, d.ridge)
+
+
+def test_result_is_frozen_and_read_only():
+    f = finger("left_loop", size_mm=(8.0, 8.0), rng=5)
+    with pytest.raises(dataclasses.FrozenInstanceError, match="cannot assign"):
+        f.pressure = 1.0
+    with pytest.raises(ValueError, match="read-only"):
+        f.ridge[0, 0] = 0.0
+    assert isinstance(f, Finger) and f.pattern == "left_loop" and f.skin == "normal"
+    assert f.size_mm == pytest.approx((f.shape[0] * f.spacing_um / 1000,
+                                       f.shape[1] * f.spacing_um / 1000))
+
+
+@settings(max_examples=15, deadline=None)
+@given(pattern=st.sampled_from(PATTERNS), skin=st.sampled_from(SKINS),
+       along=st.floats(1.0, 4.0), across=st.floats(1.0, 4.0),
+       spacing=st.floats(15.0, 60.0), pressure=st.floats(0.0, 1.0),
+       seed=st.integers(0, 2**32 - 1))
+def test_properties_small_fingers(pattern, skin, along, across, spacing, pressure, seed):
+    f = make_finger(pattern, size_mm=(along, across), spacing_um=spacing, pressure=pressure,
+                    skin=skin, rng=seed)
+    h, w = round(along * 1000 / spacing), round(across * 1000 / spacing)
+    assert f.shape == (h, w)
+    for name in ("ridge", "height_um", "contact", "air_gap_um", "fluid_um",
+                 "orientation_rad", "period_um"):
+        arr = getattr(f, name)
+        assert arr.shape == (h, w) and arr.dtype == np.float64 and np.isfinite(arr).all()
+    assert f.ridge.min() >= -1.0 and f.ridge.max() <= 1.0
+    assert f.height_um.min() >= 0.0 and f.height_um.max() <= f.valley_depth_um
+    assert f.contact.min() >= 0.0 and f.contact.max() <= 1.0
+    assert f.air_gap_um.min() >= 0.0
+    assert np.all(f.fluid_um >= 0.0) and np.all(f.fluid_um <= f.air_gap_um)
+    assert np.all(np.abs(f.orientation_rad) <= np.pi / 2)
+    assert f.period_um.min() >= 350.0 and f.period_um.max() <= 600.0
+    assert f.cores_um.shape[1] == 2 and f.deltas_um.shape[1] == 2
+
+
+# --------------------------------------------------------------------------------------------
+# argument errors
+
+@pytest.mark.parametrize("kwargs, exc, match", [
+    (dict(pattern="spiral"), ValueError, r"pattern must be one of .*got 'spiral'"),
+    (dict(skin="oily"), ValueError, r"skin must be one of .*got 'oily'"),
+    (dict(size_mm=5.0), TypeError, r"size_mm must be a pair"),
+    (dict(size_mm=(5.0, 5.0, 1.0)), ValueError, r"size_mm must hold exactly 2 numbers; got 3"),
+    (dict(size_mm=(0.5, 5.0)), ValueError, r"size_mm must hold two extents in \[1, 60\] mm"),
+    (dict(size_mm=("a", 5.0)), TypeError, r"size_mm must be a real number; got str"),
+    (dict(spacing_um=-1.0), ValueError, r"spacing_um must be a finite number > 0; got -1.0"),
+    (dict(spacing_um=100.0), ValueError, r"spacing_um must be at most a quarter"),
+    (dict(mean_period_um=700.0), ValueError, r"mean_period_um must lie strictly inside"),
+    (dict(mean_period_um="460"), TypeError, r"mean_period_um must be a real number"),
+    (dict(period_range_um=(600.0, 350.0)), ValueError, r"period_range_um must be \(low, high\)"),
+    (dict(valley_depth_um=0.0), ValueError, r"valley_depth_um must be a finite number > 0"),
+    (dict(pressure=1.5), ValueError, r"pressure must be in \[0.0, 1.0\]; got 1.5"),
+    (dict(pressure=None), TypeError, r"pressure must be a real number; got NoneType"),
+    (dict(rng="seed"), TypeError, r"rng must be None, an int seed or a numpy.random.Generator"),
+    (dict(size_mm=(60.0, 60.0), spacing_um=5.0), ValueError, r"at most 4e7 cells"),
+])
+def test_bad_arguments(kwargs, exc, match):
+    kw = dict(size_mm=(3.0, 3.0))
+    kw.update(kwargs)
+    with pytest.raises(exc, match=match):
+        make_finger(**kw)
+
+
+@pytest.mark.parametrize("kwargs, exc, match", [
+    (dict(cores_um=[(0, 0, 0)]), ValueError, r"cores_um must have shape \(n, 2\)"),
+    (dict(deltas_um="x"), TypeError, r"deltas_um must be array_like of numbers"),
+    (dict(theta_inf_rad=float("nan")), ValueError, r"theta_inf_rad must be finite"),
+    (dict(theta_inf_rad="0"), TypeError, r"theta_inf_rad must be a real number"),
+])
+def test_orientation_field_bad_arguments(kwargs, exc, match):
+    with pytest.raises(exc, match=match):
+        orientation_field([0.0], [1.0], **kwargs)
+
+
+def test_orientation_field_shapes_must_broadcast():
+    with pytest.raises(ValueError, match=r"along_um and across_um must broadcast"):
+        orientation_field(np.zeros(3), np.zeros(4))
+    assert math.isclose(float(orientation_field(0.0, 1.0)), 0.0)
