@@ -476,7 +476,7 @@ class ImageSimilarity:
 
 
 def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=8,
-                     subpixel=True, win_size=7):
+                     subpixel=True, win_size=7, match_intensity=True):
     """NCC and SSIM of a reconstruction against the true image after global alignment.
 
     Parameters
@@ -497,6 +497,11 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
         axis. Default is True.
     win_size : int, optional
         SSIM window (odd). Default is 7 (the scikit-image default).
+    match_intensity : bool, optional
+        Before SSIM, map the reconstruction's values onto the truth's scale by the least-squares
+        gain and offset over the common pixels (reconstructions keep their input units, e.g.
+        ADC codes after fixed-pattern correction, while the truth is in ideal codes; NCC is
+        invariant to this anyway). Default is True.
 
     Returns
     -------
@@ -564,7 +569,12 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
     if not np.isfinite(ncc):
         return ImageSimilarity(float("nan"), float("nan"), off, 0.0, placed)
     fill = float(truth[m].mean())
-    a = np.where(m, placed, fill)
+    a = placed
+    if match_intensity:
+        gain, offset = np.polyfit(truth[m], placed[m], 1)
+        if gain > 0:
+            a = (placed - offset) / gain
+    a = np.where(m, a, fill)
     drange = float(np.ptp(truth)) or 1.0
     _, smap = structural_similarity(truth, a, win_size=win, data_range=drange, full=True)
     inner = ndi.binary_erosion(m, structure=np.ones((win, win), bool), border_value=0)
@@ -592,6 +602,10 @@ class DistortionMap:
         Block size (square).
     rms_px, max_px : float
         RMS and maximum displacement length over the valid blocks.
+    scale : (2,) ndarray
+        Geometric scale of the reconstruction along and across: 1 + slope of a straight-line
+        fit of the along (across) displacement against the along (across) block position
+        (1 = true size; NaN with fewer than 2 distinct positions).
     """
 
     centres_px: np.ndarray
@@ -599,14 +613,30 @@ class DistortionMap:
     block_px: int
     rms_px: float
     max_px: float
+    scale: np.ndarray = None
 
     def __post_init__(self):
-        _freeze(self, ("centres_px", "displacement_px"))
+        if self.scale is None:
+            object.__setattr__(self, "scale", _scale_from(self.centres_px, self.displacement_px))
+        _freeze(self, ("centres_px", "displacement_px", "scale"))
         object.__setattr__(self, "block_px", int(self.block_px))
         _scalars(self, ("rms_px", "max_px"))
 
     def to_dict(self):
-        return _plain({"block_px": self.block_px, "rms_px": self.rms_px, "max_px": self.max_px})
+        return _plain({"block_px": self.block_px, "rms_px": self.rms_px, "max_px": self.max_px,
+                       "scale_along": self.scale[0], "scale_across": self.scale[1]})
+
+
+def _scale_from(centres, disp):
+    centres = np.asarray(centres, float)
+    disp = np.asarray(disp, float)
+    ok = np.isfinite(disp).all(axis=-1)
+    out = np.full(2, np.nan)
+    for ax in range(2):
+        x = centres[..., ax][ok]
+        if np.unique(x).size >= 2:
+            out[ax] = 1.0 + np.polyfit(x, disp[..., ax][ok], 1)[0]
+    return out
 
 
 def distortion_map(aligned, true_image, *, block_px=32, step_px=None, min_coverage=0.95,
@@ -975,6 +1005,7 @@ class Evaluation:
         if self.distortion is not None:
             out["distortion_rms_px"] = self.distortion.rms_px
             out["distortion_max_px"] = self.distortion.max_px
+            out["scale_along"], out["scale_across"] = self.distortion.scale
         if self.period_true is not None:
             out["period_true_along_px"] = self.period_true.along_px
             out["period_true_across_px"] = self.period_true.across_px

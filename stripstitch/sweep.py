@@ -226,7 +226,10 @@ def reconstruct(capture, method="default"):
     """
     check_choice(method, METHODS, name="method")
     if method in ("default", "fast"):
-        from . import stitch   # the lead's pipeline
+        try:
+            from . import stitch            # the lead's public entry point
+        except ImportError:                 # not re-exported yet
+            from .pipeline import stitch
 
         return stitch(capture.frames, pitch_um=float(capture.pitch_um),
                       frame_rate_hz=float(capture.frame_rate_hz), mode=method)

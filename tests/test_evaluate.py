@@ -219,7 +219,14 @@ def test_image_similarity_perfect_and_against_reference_libraries():
     sim = ev.image_similarity(noisy, (0, 0), truth, (0, 0), subpixel=False)
     np.testing.assert_array_equal(sim.offset_px, [0, 0])
     assert sim.ncc == pytest.approx(np.corrcoef(noisy.ravel(), truth.ravel())[0, 1], rel=1e-10)
+    # match_intensity=False: the scikit-image call as is; with matching, a gain/offset change
+    # leaves SSIM unchanged.
+    sim = ev.image_similarity(noisy, (0, 0), truth, (0, 0), subpixel=False, match_intensity=False)
     _, smap = structural_similarity(truth, noisy, data_range=np.ptp(truth), full=True)
+    assert sim.ssim == pytest.approx(smap[3:-3, 3:-3].mean(), rel=1e-10)
+    s1 = ev.image_similarity(noisy, (0, 0), truth, (0, 0), subpixel=False).ssim
+    s2 = ev.image_similarity(0.3 * noisy - 40.0, (0, 0), truth, (0, 0), subpixel=False).ssim
+    assert s1 == pytest.approx(s2, rel=1e-9)
     assert sim.ssim == pytest.approx(smap[3:-3, 3:-3].mean(), rel=1e-10)
     assert 0.2 < sim.ssim < 0.95
 
@@ -274,6 +281,7 @@ def test_distortion_map_shift_and_stretch():
     rows = dm.centres_px[..., 0][ok]
     slope = np.polyfit(rows, dm.displacement_px[..., 0][ok], 1)[0]
     assert slope == pytest.approx(k - 1, abs=0.003)
+    assert dm.scale[0] == pytest.approx(k, abs=0.003) and dm.scale[1] == pytest.approx(1.0, abs=0.003)
     np.testing.assert_allclose(dm.displacement_px[..., 1][ok], 0.0, atol=0.25)
 
 
@@ -343,6 +351,7 @@ def test_evaluate_stretched_stand_in_reports_factor():
     assert e.period_ratio[0] == pytest.approx(k, abs=0.015)
     assert e.period_ratio[1] == pytest.approx(1.0, abs=0.015)
     assert e.distortion.max_px > 2.0
+    assert e.distortion.scale[0] == pytest.approx(k, abs=0.005)
 
 
 def test_evaluate_resamples_other_output_pitch():
