@@ -1,0 +1,353 @@
+"""Pipeline: ``stitch(frames, **options)`` composes preparation, registration, the trajectory
+solve, fusion and the report into one :class:`~stripstitch.Reconstruction`."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+from scipy.special import erf
+
+from . import mosaic as _mosaic
+from . import register as _reg
+from . import report as _report
+from . import trajectory as _traj
+from ._types import Reconstruction, ReconstructionError
+from ._validate import check_array, check_choice, check_frames, check_positive
+
+__all__ = ["stitch"]
+
+MODES = ("default", "fast")
+
+
+def _pick_partners(chain_pos, failed, targets_px, time_lags):
+    """Choose long-baseline partners along the chain of contact frames.
+
+    For each chain index k and each target displacement D, the partner is the farthest frame
+    on a ladder of lags whose coarse displacement from k stays within D, not crossing a failed
+    link; ``time_lags`` add partners at fixed lags where the displacement is small (stalls).
+    """
+    n = len(chain_pos)
+    lags = np.unique(np.round(np.geomspace(1, max(2, n - 1), 40)).astype(np.int64))
+    lags = lags[lags < n]
+    # Failed links are cumulative-summed so a pair crossing one is recognised.
+    fail_cum = np.concatenate([[0], np.cumsum(failed.astype(np.int64))])
+    k = np.arange(n)
+    out = []
+    for target in targets_px:
+        best = np.full(n, -1, dtype=np.int64)
+        for lag in lags:
+            j = k + lag
+            ok = j < n
+            jj = np.minimum(j, n - 1)
+            disp = np.abs(chain_pos[jj] - chain_pos[k])
+            ok &= (disp[:, 0] <= target) & (disp[:, 1] <= max(target, 3.0))
+            ok &= fail_cum[jj] == fail_cum[k]
+            best = np.where(ok, jj, best)
+        sel = best > k + 1
+        out.append(np.stack([k[sel], best[sel]], 1))
+    for lag in time_lags:
+        j = k + lag
+        ok = j < n
+        jj = np.minimum(j, n - 1)
+        disp = np.abs(chain_pos[jj] - chain_pos[k])
+        ok &= (disp[:, 0] <= targets_px[-1]) & (fail_cum[jj] == fail_cum[k])
+        out.append(np.stack([k[ok], jj[ok]], 1))
+    if not out:
+        return np.zeros((0, 2), dtype=np.int64)
+    pairs = np.unique(np.concatenate(out), axis=0)
+    return pairs
+
+
+def _confidence(frame_info, contact, pair_ok_frac):
+    """Probability-like confidence that a frame's placement is within 0.25 px.
+
+    From the smallest eigenvalue of the information the pairs give about the frame (the
+    least determined direction; small for ridges parallel to the swipe), assuming Gaussian
+    errors: P(|e| < 0.25) = erf(0.25 / (sqrt(2) sigma)).
+    """
+    ev = np.linalg.eigvalsh(0.5 * (frame_info + np.transpose(frame_info, (0, 2, 1))))
+    lam = np.maximum(ev[:, 0], 0.0)
+    sigma = 1.0 / np.sqrt(np.maximum(lam, 1e-12))
+    conf = erf(0.25 / (np.sqrt(2.0) * sigma)) * pair_ok_frac
+    conf[~contact] = 0.0
+    return np.clip(conf, 0.0, 1.0)
+
+
+def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, calibration=None,
+           mode="default", output_pitch_um=None, estimate_rotation=True, motion_prior_px=None,
+           max_across_px=None):
+    """Reconstruct one fingerprint image from swipe-sensor frames.
+
+    Parameters
+    ----------
+    frames : (T, R, C) array_like
+        Raw strip frames, any real dtype; rows (axis 1) run along the swipe. T >= 2, R >= 2.
+    pitch_um : float, optional
+        Plate pitch of the sensor in micrometres (both axes). Default is 50.8 (500 ppi).
+    frame_rate_hz : float, optional
+        Nominal frame rate; needed for speeds and durations in the report. Default is None
+        (times in frames; derived from ``timestamps_s`` when given).
+    timestamps_s : (T,) array_like, optional
+        Frame times in seconds, strictly increasing. Jumps (dropped frames) are used by the
+        motion model and reported as gaps. Default is None (uniform frames).
+    calibration : object with ``apply(frames)``, optional
+        A :class:`stripstitch.calibrate.Calibration` applied before anything else. Default None.
+    mode : {"default", "fast"}
+        ``"fast"`` uses fewer pairs and iterations and no rotation, for drivers. Default
+        is "default".
+    output_pitch_um : float or (2,) float, optional
+        Resample the image to this pitch (e.g. 50.8 for exactly 500 ppi). Default is None
+        (the sensor pitch).
+    estimate_rotation : bool, optional
+        Estimate in-plane rotation of the finger. Default is True (ignored in fast mode).
+    motion_prior_px : float, optional
+        Standard deviation of the motion prior (acceleration, px per frame squared). Default
+        None: 20 m/s^2 at the given frame rate, else 0.05 px/frame^2.
+    max_across_px : int, optional
+        Largest lateral shift between successive frames searched. Default None: C // 8
+        clipped to 3..12.
+
+    Returns
+    -------
+    Reconstruction
+
+    Notes
+    -----
+    1. Per-plate offset and gain (fixed pattern) are removed; dead, stuck and noisy plates
+       are excluded; frames without finger texture are set aside.
+    2. Successive frames are matched by normalised cross-correlation over every integer shift
+       (FFT), with a temporal prior against ridge-period jumps, then refined by
+       inverse-compositional Gauss-Newton with cubic-convolution interpolation (shift,
+       rotation, gain, offset), which gives each pair a 2x2 information matrix.
+    3. Frames are also paired at longer baselines (up to about 0.7 R rows apart, and at fixed
+       time lags for stalls), so errors do not accumulate along the chain.
+    4. Angles, then positions, are solved jointly over all pairs by robust (Huber, then
+       Cauchy) iteratively reweighted least squares with a weak acceleration prior, which
+       carries the trajectory across gaps without inventing content.
+    5. In default mode the fixed pattern is then re-estimated against the fused image (the
+       first estimate holds a trace of finger texture that pulls shifts towards zero) and
+       the pairs are refined again.
+    6. Every observation is placed at its sub-pixel position on a uniform grid and fused with
+       bilinear weights; the report lists gaps, stalls, backtracks, low confidence, skew and
+       rotation.
+
+    References
+    ----------
+    .. [1] S. Baker and I. Matthews, "Lucas-Kanade 20 years on: a unifying framework",
+           Int. J. Computer Vision 56(3), 221-255 (2004).
+    .. [2] R. Keys, "Cubic convolution interpolation for digital image processing", IEEE
+           Trans. ASSP 29(6), 1153-1160 (1981). doi:10.1109/TASSP.1981.1163711
+    .. [3] P. W. Holland and R. E. Welsch, "Robust regression using iteratively reweighted
+           least-squares", Comm. Statistics 6(9), 813-827 (1977).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> from scipy import ndimage
+    >>> tex = ndimage.gaussian_filter(rng.standard_normal((400, 64)), 2.0)
+    >>> frames = np.stack([tex[2 * t: 2 * t + 8] for t in range(60)])
+    >>> result = stitch(frames)
+    >>> bool(np.allclose(np.diff(result.positions[:, 0]), 2.0, atol=0.05))
+    True
+    """
+    x = check_frames(frames, min_frames=2, min_rows=2, min_cols=8)
+    t_n, r_n, c_n = x.shape
+    pitch_um = check_positive(pitch_um, name="pitch_um")
+    check_choice(mode, MODES, name="mode")
+    frame_rate_hz = check_positive(frame_rate_hz, name="frame_rate_hz", allow_none=True)
+    if timestamps_s is not None:
+        ts = check_array(timestamps_s, name="timestamps_s", shape=(t_n,))
+        dts = np.diff(ts)
+        if (dts <= 0).any():
+            k = int(np.flatnonzero(dts <= 0)[0])
+            raise ValueError(f"timestamps_s must be strictly increasing; got {ts[k]!r} then "
+                             f"{ts[k + 1]!r} at frames {k} and {k + 1}")
+        if frame_rate_hz is None:
+            frame_rate_hz = float(1.0 / np.median(dts))
+        times = ts - ts[0]
+        dt_frames = dts * frame_rate_hz
+    else:
+        dt_frames = np.ones(t_n - 1)
+        times = np.arange(t_n) / frame_rate_hz if frame_rate_hz else np.arange(t_n, dtype=float)
+    if output_pitch_um is None:
+        out_pitch_um = np.array([pitch_um, pitch_um])
+    else:
+        out_pitch_um = np.broadcast_to(np.asarray(output_pitch_um, dtype=np.float64), (2,)).copy()
+        for k in range(2):
+            check_positive(float(out_pitch_um[k]), name="output_pitch_um")
+    if max_across_px is None:
+        max_across_px = int(np.clip(c_n // 8, 3, 12))
+    if motion_prior_px is None:
+        motion_prior_px = (20.0 / frame_rate_hz ** 2 / (pitch_um * 1e-6)) if frame_rate_hz else 0.05
+        motion_prior_px = float(max(motion_prior_px, 1e-3))
+    else:
+        motion_prior_px = check_positive(motion_prior_px, name="motion_prior_px")
+    fast = mode == "fast"
+    rotation = bool(estimate_rotation) and not fast
+
+    if calibration is not None:
+        if not hasattr(calibration, "apply"):
+            raise TypeError("calibration must have an apply(frames) method (a "
+                            f"stripstitch.calibrate.Calibration); got {type(calibration).__name__}")
+        x = np.asarray(calibration.apply(x), dtype=np.float64)
+
+    prep = _reg.prepare(x)
+    chain = np.flatnonzero(prep.contact)
+    if chain.size < 2:
+        raise ReconstructionError("no finger found: fewer than two frames show finger texture "
+                                  f"(of {t_n} frames); check the capture or the calibration")
+
+    # ---- successive pairs: coarse search with a temporal prior, then refinement ----
+    cpairs = np.stack([chain[:-1], chain[1:]], 1)
+    zn = _reg._row_normalise(prep.z, prep.plate_ok)
+    max_along = r_n - 1
+    coarse, score, _ = _reg.coarse_shifts(zn, cpairs, max_along=max_along,
+                                          max_across=max_across_px)
+    if len(coarse) >= 5:
+        trend = np.stack([ndimage.median_filter(coarse[:, k], size=9, mode="nearest")
+                          for k in range(2)], 1)
+        coarse, score, _ = _reg.coarse_shifts(zn, cpairs, max_along=max_along,
+                                              max_across=max_across_px, prior=trend)
+    atlas = _reg._Atlas(prep.z)
+    grads = _reg._template_gradients(prep.z)
+    iters = 3 if fast else 5
+    est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=rotation,
+                               iterations=iters, smooth_first=not fast, atlas=atlas, grads=grads)
+    # A link fails when nothing overlaps: the coarse NCC is at noise level or the refined
+    # overlap is too small to place the frame.
+    link_ok = est_c.ok & (est_c.ncc > 0.5) & (score > 0.3)
+    chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
+    # Coarse chain positions (failed links bridged by the neighbours' median step).
+    fill = np.nanmedian(chain_steps, axis=0) if np.isfinite(chain_steps).any() else np.zeros(2)
+    chain_steps = np.where(np.isfinite(chain_steps), chain_steps, fill)
+    chain_pos = np.vstack([[0.0, 0.0], np.cumsum(chain_steps, axis=0)])
+
+    # ---- longer baselines ----
+    reach = 0.7 * (r_n - 1)
+    targets = [reach] if fast else [0.4 * (r_n - 1), reach]
+    lags = () if fast else (32, 256)
+    lp = _pick_partners(chain_pos, ~link_ok, targets, lags)
+    pairs = cpairs[link_ok]
+    init = est_c.shift[link_ok]
+    if len(lp):
+        lpairs = chain[lp]
+        linit = chain_pos[lp[:, 1]] - chain_pos[lp[:, 0]]
+        pairs = np.concatenate([pairs, lpairs])
+        init = np.concatenate([init, linit])
+
+    def solve(pairs, init, init_angle=None):
+        est = _reg.refine_shifts(prep, pairs, init, init_angle=init_angle,
+                                 estimate_rotation=rotation, iterations=iters,
+                                 smooth_first=not fast, atlas=atlas, grads=grads)
+        good = est.ok & (est.ncc > 0.5) & (np.abs(est.shift - init).max(axis=1) < 1.5)
+        info = np.where(good[:, None, None], est.info, 0.0)
+        if rotation:
+            ang = _traj.solve_angles(t_n, pairs, est.angle_rad, np.where(good, est.angle_info, 0.0),
+                                     dt_frames, sigma_acc_rad=1e-5)
+        else:
+            ang = np.zeros(t_n)
+        tr = _traj.solve_positions(t_n, pairs, est.shift, info, ang, dt_frames,
+                                   sigma_acc_px=motion_prior_px)
+        return est, good, tr
+
+    est, good, tr = solve(pairs, init)
+    prep_used = prep
+    if not fast:
+        # Re-estimate the fixed pattern against the fused image and refine again.
+        prep2 = _refit_fixed_pattern(x, prep, tr.positions, np.degrees(tr.angles_rad))
+        if prep2 is not None:
+            prep = prep2
+            atlas = _reg._Atlas(prep.z)
+            grads = _reg._template_gradients(prep.z)
+            rot_i = _traj.rot(-tr.angles_rad[pairs[:, 0]])
+            init2 = np.einsum("pab,pb->pa", rot_i, tr.positions[pairs[:, 1]] - tr.positions[pairs[:, 0]])
+            init_ang = tr.angles_rad[pairs[:, 1]] - tr.angles_rad[pairs[:, 0]]
+            est, good, tr = solve(pairs, init2, init_ang)
+            prep_used = prep
+
+    positions = tr.positions
+    angles_deg = np.degrees(tr.angles_rad)
+    # Pairs kept per frame, for confidence.
+    kept = np.zeros(t_n)
+    total = np.zeros(t_n)
+    np.add.at(kept, pairs.ravel(), np.repeat(tr.pair_weight * good, 2))
+    np.add.at(total, pairs.ravel(), 1.0)
+    ok_frac = np.where(total > 0, kept / np.maximum(total, 1), 0.0)
+    confidence = _confidence(tr.frame_info, prep.contact, np.clip(ok_frac, 0, 1))
+
+    # ---- fusion ----
+    scale = float(np.median(prep_used.gain))
+    level = float(np.mean(prep_used.offset))
+    values = prep_used.z.astype(np.float64) * scale + level
+    fw = (prep.contact & (confidence > 0.05)).astype(np.float64)
+    weights = fw[:, None, None] * prep.plate_ok[None].astype(np.float64)
+    if not (weights > 0).any():
+        weights = prep.contact[:, None, None] * prep.plate_ok[None].astype(np.float64)
+    pitch_px = out_pitch_um / pitch_um
+    mos = _mosaic.fuse(values, positions, angles_deg, weights=weights, output_pitch_px=pitch_px)
+
+    # ---- events and report ----
+    link_failed = np.zeros(t_n - 1, dtype=bool)
+    for (i, j), okk in zip(cpairs, link_ok):
+        if not okk:
+            link_failed[i:j] = True
+    events = _report.find_events(positions=positions, angles_deg=angles_deg,
+                                 confidence=confidence, contact=prep.contact,
+                                 link_failed=link_failed, link_dt_frames=dt_frames,
+                                 times_s=times, frame_rate_hz=frame_rate_hz, n_rows=r_n,
+                                 pitch_um=pitch_um)
+    rep = _report.make_report(events=events, positions=positions, angles_deg=angles_deg,
+                              confidence=confidence, contact=prep.contact, times_s=times,
+                              frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,
+                              image=mos.image)
+    options = {"pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
+               "output_pitch_um": out_pitch_um.tolist(), "estimate_rotation": rotation,
+               "motion_prior_px": motion_prior_px, "max_across_px": max_across_px,
+               "timestamps": timestamps_s is not None, "calibration": calibration is not None,
+               "n_pairs": int(len(pairs)), "n_pairs_kept": int(good.sum())}
+    return Reconstruction(image=mos.image, positions=positions, angles=angles_deg,
+                          confidence=confidence, events=events, report=rep, weight=mos.weight,
+                          origin_px=mos.origin_px, pitch_um=out_pitch_um,
+                          sensor_pitch_um=pitch_um,
+                          frame_rate_hz=frame_rate_hz if frame_rate_hz else float("nan"),
+                          options=options)
+
+
+def _refit_fixed_pattern(x, prep, positions, angles_deg):
+    """Per-plate offset and gain re-estimated against the fused image.
+
+    The first estimate (per-plate mean over contact frames) also holds the mean of the finger
+    texture each plate saw, a static pattern that pulls shifts towards zero. With positions
+    known, each plate's offset and gain follow from a line fit of its readings against the
+    fused image sampled where the plate was.
+    """
+    scale = float(np.median(prep.gain))
+    level = float(np.mean(prep.offset))
+    values = prep.z.astype(np.float64) * scale + level
+    w = prep.contact[:, None, None] * prep.plate_ok[None].astype(np.float64)
+    if not (w > 0).any():
+        return None
+    mos = _mosaic.fuse(values, positions, angles_deg, weights=w)
+    q = _mosaic.frame_coordinates(x.shape, positions, angles_deg) + mos.origin_px
+    img = np.nan_to_num(mos.image, nan=level)
+    ref = ndimage.map_coordinates(img, [q[..., 0], q[..., 1]], order=1, mode="nearest")
+    covered = ndimage.map_coordinates(np.isfinite(mos.image).astype(float),
+                                      [q[..., 0], q[..., 1]], order=1, mode="constant") > 0.99
+    m = covered & prep.contact[:, None, None]
+    n = m.sum(axis=0)
+    if (n[prep.plate_ok] < 8).any():
+        return None
+    mf = m.astype(np.float64)
+    nn = np.maximum(n, 1)
+    rx = (ref * mf).sum(0) / nn
+    xx = (x * mf).sum(0) / nn
+    rc = (ref - rx) * mf
+    xc = (x - xx) * mf
+    gain = (rc * xc).sum(0) / np.maximum((rc * rc).sum(0), 1e-12)   # reading = g * ref + o
+    gain = np.where(prep.plate_ok, np.clip(gain, 0.5, 2.0), 1.0)
+    offset = xx - gain * rx
+    z = (((x - offset) / gain - level) / scale).astype(np.float32)
+    z[:, ~prep.plate_ok] = 0.0
+    return _reg.Prepared(z=z, plate_ok=prep.plate_ok, offset=offset, gain=gain * scale,
+                         contact=prep.contact, texture=prep.texture, noise_sigma=prep.noise_sigma)

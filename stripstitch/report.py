@@ -1,0 +1,215 @@
+"""Report stage: events (gap, stall, backtrack, ...) and the quality report with a verdict.
+
+In: the solved trajectory, per-frame confidence and contact, failed links, frame times.
+Out: a tuple of :class:`~stripstitch.Event` and a :class:`~stripstitch.QualityReport`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ._types import Event, QualityReport
+
+__all__ = ["find_events", "make_report"]
+
+
+def _runs(mask):
+    """(start, stop_inclusive) of runs of True in a 1-D boolean array."""
+    m = np.asarray(mask, dtype=bool)
+    if not m.any():
+        return []
+    d = np.diff(np.concatenate([[0], m.astype(np.int8), [0]]))
+    starts = np.flatnonzero(d == 1)
+    stops = np.flatnonzero(d == -1) - 1
+    return list(zip(starts.tolist(), stops.tolist()))
+
+
+def _smoothed_velocity(pos, times, half):
+    """Central-difference velocity over +-half frames (px per second, or per frame if times are frames)."""
+    t_n = len(pos)
+    k = np.arange(t_n)
+    lo = np.clip(k - half, 0, t_n - 1)
+    hi = np.clip(k + half, 0, t_n - 1)
+    dt = times[hi] - times[lo]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        v = (pos[hi] - pos[lo]) / np.where(dt > 0, dt, np.nan)[:, None]
+    return np.nan_to_num(v)
+
+
+def find_events(*, positions, angles_deg, confidence, contact, link_failed, link_dt_frames,
+                times_s, frame_rate_hz, n_rows, pitch_um, stall_speed_mm_s=2.0,
+                min_stall_s=0.01, min_backtrack_px=1.0, skew_limit_deg=3.0,
+                rotation_limit_deg=1.0, low_confidence=0.5):
+    """Find the swipe's events from the solved trajectory.
+
+    Parameters
+    ----------
+    positions : (T, 2) float
+    angles_deg : (T,) float
+    confidence : (T,) float
+    contact : (T,) bool
+    link_failed : (T-1,) bool
+        True where frames t and t+1 (or the next frame in contact) have no usable overlap.
+    link_dt_frames : (T-1,) float
+        Time step between frames in nominal frame periods (> 1.5 means dropped frames).
+    times_s : (T,) float
+        Frame times (or frame indices divided by the frame rate; frame indices if unknown).
+    frame_rate_hz : float or None
+    n_rows : int
+    pitch_um : float
+
+    Returns
+    -------
+    tuple of Event
+    """
+    t_n = len(positions)
+    events = []
+    for a, b in _runs(~contact):
+        where = "start" if a == 0 else ("end" if b == t_n - 1 else "middle")
+        events.append(Event("no_contact", a, b, {"frames": b - a + 1, "where": where}))
+    idx = np.flatnonzero(contact)
+    if idx.size < 2:
+        return tuple(sorted(events, key=lambda e: (e.first_frame, e.kind)))
+    first, last = int(idx[0]), int(idx[-1])
+    # Gaps: failed links, and dropped frames.
+    for a, b in _runs(link_failed):
+        step = positions[b + 1] - positions[a]
+        missing = max(0.0, abs(float(step[0])) - (n_rows - 1))
+        dropped = float(np.sum(np.maximum(link_dt_frames[a:b + 1] - 1.0, 0.0)))
+        events.append(Event("gap", a, b + 1, {
+            "reason": "dropped_frames" if dropped >= 0.5 else "too_fast",
+            "missing_rows": round(missing, 2), "dropped_frames": int(round(dropped)),
+            "step_px": [round(float(step[0]), 3), round(float(step[1]), 3)]}))
+    for a, b in _runs((link_dt_frames > 1.5) & ~link_failed):
+        dropped = float(np.sum(link_dt_frames[a:b + 1] - 1.0))
+        events.append(Event("gap", a, b + 1, {
+            "reason": "dropped_frames", "missing_rows": 0.0, "dropped_frames": int(round(dropped)),
+            "bridged": True}))
+    # Velocity over a short window, in px per frame period.
+    fr = frame_rate_hz if frame_rate_hz else 1.0
+    tfr = times_s * fr
+    half = max(2, int(round(0.002 * fr))) if frame_rate_hz else 8
+    vel = _smoothed_velocity(positions, tfr, half)
+    v_along = vel[:, 0]
+    # Stall: speed below stall_speed_mm_s for at least min_stall_s.
+    if frame_rate_hz:
+        v_stall = stall_speed_mm_s * 1e3 / pitch_um / frame_rate_hz
+        min_len = max(8, int(round(min_stall_s * frame_rate_hz)))
+    else:
+        v_stall = 0.01
+        min_len = 40
+    speed = np.hypot(vel[:, 0], vel[:, 1])
+    in_c = np.zeros(t_n, dtype=bool)
+    in_c[first:last + 1] = True
+    for a, b in _runs((speed < v_stall) & in_c):
+        if b - a + 1 >= min_len:
+            dur = (times_s[b] - times_s[a]) if frame_rate_hz else None
+            events.append(Event("stall", a, b, {
+                "frames": b - a + 1, "duration_s": None if dur is None else round(float(dur), 4),
+                "position_px": [round(float(positions[a, 0]), 2), round(float(positions[a, 1]), 2)]}))
+    # Backtrack: along-swipe motion against the swipe's overall direction.
+    direction = np.sign(positions[last, 0] - positions[first, 0]) or 1.0
+    back = (direction * v_along < -v_stall) & in_c
+    for a, b in _runs(back):
+        dist = float(direction * (positions[a, 0] - positions[min(b + 1, t_n - 1), 0]))
+        if dist >= min_backtrack_px:
+            events.append(Event("backtrack", a, b, {
+                "distance_px": round(dist, 2), "distance_mm": round(dist * pitch_um / 1000, 3),
+                "from_px": round(float(positions[a, 0]), 2)}))
+    # Low confidence over contact frames.
+    low = (confidence < low_confidence) & contact
+    for a, b in _runs(low):
+        if b - a + 1 >= 3:
+            events.append(Event("low_confidence", a, b, {
+                "frames": b - a + 1, "min_confidence": round(float(confidence[a:b + 1].min()), 3)}))
+    # Skew and rotation over the contact span.
+    d = positions[last] - positions[first]
+    skew = float(np.degrees(np.arctan2(d[1], abs(d[0])))) if abs(d[0]) > 0 else 0.0
+    if abs(skew) > skew_limit_deg:
+        events.append(Event("skew", first, last, {"skew_deg": round(skew, 2)}))
+    turn = float(angles_deg[last] - angles_deg[first])
+    if abs(turn) > rotation_limit_deg:
+        events.append(Event("rotation", first, last, {"rotation_deg": round(turn, 2)}))
+    return tuple(sorted(events, key=lambda e: (e.first_frame, e.kind)))
+
+
+def make_report(*, events, positions, angles_deg, confidence, contact, times_s, frame_rate_hz,
+                n_rows, pitch_um, image, min_length_mm=5.0):
+    """Summarise a reconstruction: figures, a verdict and reasons a driver could show a user."""
+    idx = np.flatnonzero(contact)
+    counts = {}
+    for e in events:
+        counts[e.kind] = counts.get(e.kind, 0) + 1
+    if idx.size < 2:
+        return QualityReport(verdict="unusable", reasons=("no finger on the sensor",),
+                             swipe_length_mm=0.0, travel_mm=0.0, duration_s=0.0,
+                             speed_mm_s={}, skew_deg=0.0, rotation_deg=0.0, coverage=0.0,
+                             n_gaps=0, gap_rows=0.0, frames_in_contact=(0, 0),
+                             mean_confidence=0.0, counts=counts)
+    first, last = int(idx[0]), int(idx[-1])
+    p = positions[first:last + 1]
+    mm = pitch_um / 1000.0
+    length_mm = float(np.ptp(p[:, 0]) + n_rows) * mm
+    steps = np.diff(p, axis=0)
+    travel_mm = float(np.sum(np.hypot(steps[:, 0], steps[:, 1]))) * mm
+    if frame_rate_hz:
+        duration = float(times_s[last] - times_s[first])
+        dts = np.diff(times_s[first:last + 1])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            v = np.abs(steps[:, 0]) * mm / np.where(dts > 0, dts, np.nan)
+        v = v[np.isfinite(v)]
+        # Per-frame increments are noisy; quote speeds over ~1 ms windows.
+        win = max(1, int(round(0.001 * frame_rate_hz)))
+        if v.size >= win:
+            v = np.convolve(v, np.ones(win) / win, mode="valid")
+        speed = {"mean": float(np.mean(v)), "median": float(np.median(v)),
+                 "p95": float(np.percentile(v, 95)), "max": float(np.max(v))} if v.size else {}
+    else:
+        duration = float("nan")
+        speed = {}
+    d = p[-1] - p[0]
+    skew = float(np.degrees(np.arctan2(d[1], abs(d[0])))) if abs(d[0]) > 0 else 0.0
+    rotation = float(angles_deg[last] - angles_deg[first])
+    gaps = [e for e in events if e.kind == "gap"]
+    gap_rows = float(sum(e.details.get("missing_rows", 0.0) for e in gaps))
+    finite = np.isfinite(image)
+    rows_any = finite.any(axis=1)
+    cols_any = finite.any(axis=0)
+    box = finite[rows_any][:, cols_any] if rows_any.any() and cols_any.any() else finite
+    coverage = float(box.mean()) if box.size else 0.0
+    mean_conf = float(np.mean(confidence[idx]))
+    reasons = []
+    verdict = "usable"
+    if gap_rows > 0.5:
+        verdict = "unusable"
+        reasons.append(f"swipe too fast: {len(gaps)} gap(s), about {gap_rows:.0f} row(s) of "
+                       "finger not seen; swipe more slowly")
+    elif gaps:
+        reasons.append(f"{len(gaps)} gap(s) bridged by the motion model (dropped frames); "
+                       "placement there is less certain")
+    if length_mm < min_length_mm:
+        verdict = "unusable"
+        reasons.append(f"swipe too short: {length_mm:.1f} mm of finger seen "
+                       f"(at least {min_length_mm:.0f} mm needed); swipe the whole fingertip")
+    if mean_conf < 0.5:
+        verdict = "unusable"
+        reasons.append(f"placement unreliable (mean confidence {mean_conf:.2f})")
+    n_low = counts.get("low_confidence", 0)
+    if n_low and mean_conf >= 0.5:
+        reasons.append(f"{n_low} stretch(es) of low placement confidence (e.g. ridges parallel "
+                       "to the swipe)")
+    if counts.get("stall"):
+        reasons.append(f"finger stopped {counts['stall']} time(s) during the swipe")
+    if counts.get("backtrack"):
+        reasons.append(f"finger moved backwards {counts['backtrack']} time(s)")
+    if abs(skew) > 3.0:
+        reasons.append(f"slanted swipe: {skew:+.1f} degrees from the sensor axis (corrected)")
+    if abs(rotation) > 1.0:
+        reasons.append(f"finger turned by {rotation:+.1f} degrees during the swipe (corrected)")
+    if coverage < 0.8 and verdict == "usable":
+        reasons.append(f"only {100 * coverage:.0f} % of the image area holds data")
+    return QualityReport(verdict=verdict, reasons=tuple(reasons), swipe_length_mm=length_mm,
+                         travel_mm=travel_mm, duration_s=duration, speed_mm_s=speed,
+                         skew_deg=skew, rotation_deg=rotation, coverage=coverage,
+                         n_gaps=len(gaps), gap_rows=gap_rows, frames_in_contact=(first, last),
+                         mean_confidence=mean_conf, counts=counts)
