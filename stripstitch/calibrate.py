@@ -152,7 +152,9 @@ def find_bad_plates(frames, *, blank_frames=None, reference_frames=None, mad_thr
     ``weak_fraction`` of the median step is ``dead``/``stuck`` (constant) or ``weak``.
     The robust scale is the median absolute deviation with its Gaussian consistency factor
     1.4826 (Rousseeuw & Croux 1993, doi:10.1080/01621459.1993.10476408), floored at 5 % of
-    the median so that a quiet, well-matched array does not flag its ordinary plates.
+    the median so that a quiet, well-matched array does not flag its ordinary plates. A
+    noisy plate must also show a high robust noise of successive differences
+    (1.4826 MAD / sqrt(2)), so that a finger touching a few plates of a "blank" is not noise.
 
     Examples
     --------
@@ -206,6 +208,13 @@ def find_bad_plates(frames, *, blank_frames=None, reference_frames=None, mad_thr
         med, sig = _robust_sigma(s)
         sig = floor(med, sig)
         noisy = (s > med + k * sig) & (s > 2 * med)
+        if b.shape[0] >= 3:
+            # A finger arriving on a few plates is a step, not noise: also ask the robust
+            # noise of successive differences (MAD / sqrt(2)) to be high.
+            d = np.diff(b, axis=0)
+            rs = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d, axis=0)), axis=0) / np.sqrt(2)
+            rmed = float(np.median(rs))
+            noisy &= rs > 2 * max(rmed, 0.5 * med)
         kind[noisy & (kind == "")] = "noisy"
         thresholds["blank_std_median"] = med
         thresholds["blank_std_limit"] = med + k * sig
@@ -521,9 +530,11 @@ def estimate_calibration(blank_frames, *, reference_frames=None, frames=None, ma
                        ref.shape[0], bad_columns=bp.columns, notes=n)
 
 
-def calibrate_from_frames(frames, *, n_blank=None, reference_frames=None, mad_threshold=6.0):
+def calibrate_from_frames(frames, *, n_blank=None, reference_frames=None, mad_threshold=6.0,
+                          guard_frames=5):
     """Calibrate from a swipe itself: blanks are its first ``n_blank`` frames, or else the
-    frames :func:`empty_frames` classifies as finger-absent.
+    frames :func:`finger_presence` scores as empty (score <= 0.02) that lie more than
+    ``guard_frames`` (default 5) frames from any frame with a trace of the finger.
 
     Raises
     ------
@@ -538,7 +549,14 @@ def calibrate_from_frames(frames, *, n_blank=None, reference_frames=None, mad_th
         blank_idx = np.arange(int(n_blank))
         source = f"first {int(n_blank)} frames"
     else:
-        empty = empty_frames(f)
+        # Empty frames, keeping a guard of a few frames away from any frame with a trace of
+        # the finger (its arrival starts below the presence threshold).
+        p = finger_presence(f)
+        touched = np.flatnonzero(p.score > 0)
+        empty = p.score <= 0.02
+        if touched.size:
+            near = np.abs(np.arange(f.shape[0])[:, None] - touched[None, :]).min(axis=1)
+            empty &= near > int(guard_frames)
         blank_idx = np.flatnonzero(empty)
         if blank_idx.size == 0:
             raise CalibrationError("no finger-absent frames found in the swipe to calibrate "
