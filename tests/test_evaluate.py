@@ -372,3 +372,27 @@ def test_evaluate_rejects_mismatched_result():
     res = SimpleNamespace(positions=np.zeros((9, 2)))
     with pytest.raises(ValueError, match=r"result.positions must have the capture's shape \(10, 2\)"):
         ev.evaluate(res, cap)
+
+
+# ---------------------------------------------------------------------------------------------
+# Plots (optional extra "plot")
+# ---------------------------------------------------------------------------------------------
+
+def test_report_page_and_plots_draw(tmp_path):
+    pytest.importorskip("matplotlib")
+    from stripstitch import plots
+
+    cap = _fake_capture(n_frames=60, step=2, seed=14)
+    cap.times_s = np.arange(60) / 4000.0
+    res = _perfect_result(cap)
+    res.positions = 1.01 * cap.positions
+    e = ev.evaluate(res, cap)
+    path = tmp_path / "report.png"
+    fig = plots.report_page(res, cap, e, path)
+    with open(path, "rb") as fh:
+        assert fh.read(8) == b"\x89PNG\r\n\x1a\n"                # PNG signature (ISO/IEC 15948)
+    assert len(fig.axes) >= 6
+    line = plots.plot_speed_profile(res, cap).axes[0].lines
+    # true speed: 2 px per frame at 4 kHz and 50.8 um pitch = 406.4 mm/s; estimate 1 % more
+    np.testing.assert_allclose(line[0].get_ydata(), 406.4, rtol=1e-9)
+    np.testing.assert_allclose(line[1].get_ydata(), 1.01 * 406.4, rtol=1e-9)
