@@ -126,9 +126,28 @@ def _count(name, lo=1):
     return parse
 
 
-def _check_outputs(paths, force):
-    """Refuse before any work when an output exists (and --force is not given)."""
+def _inputs_of(*paths, manifest=None):
+    """Input files (and a dump's manifest candidates) that outputs must never replace."""
+    out = []
+    for p in paths:
+        if p is None:
+            continue
+        p = Path(p)
+        out += [p, p.with_suffix(".json"), Path(str(p) + ".json")]
+    if manifest is not None:
+        out.append(Path(manifest))
+    return out
+
+
+def _check_outputs(paths, force, *, inputs=()):
+    """Refuse before any work when an output exists (and --force is not given), or would
+    replace an input file or a dump's manifest."""
+    protected = {Path(q).resolve() for q in inputs if Path(q).exists()}
     seen = set()
+    for p in paths:
+        if p is not None and Path(p).resolve() in protected:
+            raise _BadInput(f"output {str(p)!r} would replace an input file (or a dump's "
+                            "manifest); choose another name")
     for p in paths:
         if p is None:
             continue
@@ -322,7 +341,8 @@ def _cmd_inspect(args, out):
 # ----------------------------------------------------------------------------------------------
 
 def _cmd_calibrate(args, out):
-    _check_outputs([args.output], args.force)
+    _check_outputs([args.output], args.force,
+                   inputs=_inputs_of(args.input, args.blank, args.reference, manifest=args.manifest))
     if args.input is None and args.blank is None:
         raise _BadInput("calibrate needs an input swipe, --blank FILE, or both")
     stack = _read_stack(args.input, args) if args.input is not None else None
@@ -371,7 +391,8 @@ def _cmd_calibrate(args, out):
 # ----------------------------------------------------------------------------------------------
 
 def _cmd_stitch(args, out):
-    _check_outputs([args.output, args.report, args.trajectory], args.force)
+    _check_outputs([args.output, args.report, args.trajectory], args.force,
+                   inputs=_inputs_of(args.input, args.calibration, manifest=args.manifest))
     suffix = Path(args.output).suffix.lower()
     if suffix not in (".tif", ".tiff", ".png"):
         raise _BadInput(f"-o/--output must end in .tif, .tiff or .png; got {args.output!r}")
@@ -573,7 +594,8 @@ def _read_trajectory_csv(path, n_frames):
 
 
 def _cmd_evaluate(args, out):
-    _check_outputs([args.report], args.force)
+    _check_outputs([args.report], args.force,
+                   inputs=_inputs_of(args.capture, args.trajectory, args.calibration))
     capture = _read_capture(args.capture)
     try:
         from . import evaluate as ev

@@ -193,6 +193,13 @@ def test_bad_input_is_one_clean_line(capsys, tmp_path):
         assert len(lines) == 1 and "Traceback" not in err, err
         import re
         assert re.search(pattern, lines[0]), (pattern, lines[0])
+    # an output named like the dump's manifest is refused even with --force
+    np.save(tmp_path / "d.npy", np.zeros((3, 4, 5), np.uint8))
+    io.write_dump(tmp_path / "d.bin", np.zeros((3, 4, 5), np.uint8), frame_rate_hz=100.0)
+    code, _, err = run(capsys, "stitch", tmp_path / "d.bin", "-o", tmp_path / "d.png", "--report",
+                       tmp_path / "d.json", "--force")
+    assert code == 2 and "would replace an input file" in err
+    assert json.loads((tmp_path / "d.json").read_text())["format"] == io.MANIFEST_FORMAT
     (tmp_path / "cfg.toml").write_text('pattern = "whorl"\nwarp_factor = 9\n')
     code, _, err = run(capsys, "simulate", "-o", tmp_path / "s.npz", "--config", tmp_path / "cfg.toml")
     assert code == 2 and "unknown option(s) ['warp_factor']" in err
