@@ -1,0 +1,123 @@
+"""Scaling benchmark: stitching time and memory against swipe length, columns and rows.
+
+Run from a clean checkout:  python benchmarks/bench_scaling.py  [--quick] [--full]
+
+Frames are cut exactly (no interpolation) from a synthetic ridge-like texture (40 plane waves,
+periods 7-12 px, random directions), moving 0.5 px per frame along and 0.05 px across, with
+white noise at 30 dB SNR and 8-bit quantisation; so that 100 000 frames need no finger
+100 m long. Series: T = 100 ... 100 000 frames (8 x 192), C = 64 ... 512 columns (T = 1000,
+8 rows), R = 2 ... 64 rows (T = 1000, 128 columns). Each point is timed once (best of 2 below
+2000 frames) and its peak traced allocation measured in a second run (tracemalloc; skipped
+above --max-memory-frames). The fitted exponent is the least-squares log-log slope. Mode
+"default" stops at --max-default-frames (default 10 000; --full: 100 000); mode "fast" runs the
+whole series. Writes benchmarks/results/scaling.json/.md.
+"""
+
+from __future__ import annotations
+
+import argparse
+
+import numpy as np
+
+from _common import best_time, environment, loglog_slope, peak_memory_mb, table, write
+
+from stripstitch.sweep import reconstruct  # noqa: F401  (imports the pipeline once, untimed)
+
+
+def synthetic_frames(n_frames, n_rows, n_cols, *, step=(0.5, 0.05), snr_db=30.0, seed=0):
+    """(T, R, C) uint8 frames of a moving plane-wave texture; frame t sees
+    texture(r + step_0 t, c + step_1 t), so positions[t] = t * step exactly."""
+    rng = np.random.default_rng(seed)
+    k = 40
+    period = rng.uniform(7.0, 12.0, k)
+    theta = rng.uniform(0.0, np.pi, k)
+    phase = rng.uniform(0.0, 2 * np.pi, k)
+    k0 = 2 * np.pi * np.cos(theta) / period
+    k1 = 2 * np.pi * np.sin(theta) / period
+    t = np.arange(n_frames, dtype=np.float64)
+    amp = 60.0 / np.sqrt(k / 2)                        # signal std ~ 60 codes
+    noise = 60.0 / 10 ** (snr_db / 20)
+    out = np.empty((n_frames, n_rows, n_cols), np.uint8)
+    cols = np.exp(1j * (np.arange(n_cols)[None, :] * k1[:, None] + phase[:, None]))    # (k, C)
+    rows = np.arange(n_rows, dtype=np.float64)
+    chunk = max(1, 200000 // max(n_rows, 1))
+    for s in range(0, n_frames, chunk):
+        tt = t[s:s + chunk]
+        # cos(k0 (r + a t) + k1 (c + b t) + phi) = Re[e^{i k0 (r + a t) + i k1 b t} e^{i (k1 c + phi)}]
+        arg = (k0[None, None, :] * (rows[None, :, None] + step[0] * tt[:, None, None])
+               + (k1 * step[1])[None, None, :] * tt[:, None, None])
+        v = (np.exp(1j * arg).reshape(-1, k) @ cols).real.reshape(len(tt), n_rows, n_cols)
+        v = 128.0 + amp * v + rng.normal(scale=noise, size=v.shape)
+        out[s:s + chunk] = np.clip(np.rint(v), 0, 255)
+    return out
+
+
+def _stitch(frames, mode):
+    try:
+        from stripstitch import stitch
+    except ImportError:
+        from stripstitch.pipeline import stitch
+    return stitch(frames, frame_rate_hz=4000.0, mode=mode)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="short series (T up to 3000)")
+    ap.add_argument("--full", action="store_true", help="mode 'default' up to 100 000 frames too")
+    ap.add_argument("--max-default-frames", type=int, default=10000)
+    ap.add_argument("--max-memory-frames", type=int, default=30000)
+    args = ap.parse_args(argv)
+    max_default = 100000 if args.full else args.max_default_frames
+    if args.quick:
+        t_series, c_series, r_series = [100, 300, 1000, 3000], [64, 128, 256], [2, 8, 32]
+    else:
+        t_series = [100, 300, 1000, 3000, 10000, 30000, 100000]
+        c_series = [64, 128, 256, 512]
+        r_series = [2, 4, 8, 16, 32, 64]
+    series = ([("T", n, (n, 8, 192)) for n in t_series]
+              + [("C", c, (1000, 8, c)) for c in c_series]
+              + [("R", r, (1000, r, 128)) for r in r_series])
+    rows = []
+    for mode in ("fast", "default"):
+        for axis, value, shape in series:
+            if mode == "default" and shape[0] > max_default:
+                continue
+            frames = synthetic_frames(*shape)
+            secs, res = best_time(lambda: _stitch(frames, mode), repeat=2 if shape[0] < 2000 else 1)
+            truth = np.arange(shape[0])[:, None] * np.array([0.5, 0.05])
+            err = float(np.sqrt(np.mean((np.asarray(res.positions) - truth) ** 2)))
+            mem = peak_memory_mb(lambda: _stitch(frames, mode)) if shape[0] <= args.max_memory_frames else None
+            rows.append({"mode": mode, "axis": axis, "value": value, "T": shape[0], "R": shape[1],
+                         "C": shape[2], "seconds": secs, "frames_per_s": shape[0] / secs,
+                         "peak_traced_mb": mem, "position_rms_px": err})
+            print(f"{mode:8s} {axis}={value:<7d} {secs:9.3f} s  {shape[0] / secs:9.0f} frames/s  "
+                  f"mem {mem if mem is None else round(mem, 1)} MB  pos rms {err:.3f} px", flush=True)
+    fits = []
+    for mode in ("fast", "default"):
+        for axis in ("T", "C", "R"):
+            pts = [r for r in rows if r["mode"] == mode and r["axis"] == axis]
+            if len(pts) < 2:
+                continue
+            mem_pts = [r for r in pts if r["peak_traced_mb"] is not None]
+            fits.append({"mode": mode, "axis": axis,
+                         "range": f"{pts[0]['value']}-{pts[-1]['value']}",
+                         "time_exponent": loglog_slope([r["value"] for r in pts], [r["seconds"] for r in pts]),
+                         "memory_exponent": loglog_slope([r["value"] for r in mem_pts],
+                                                         [r["peak_traced_mb"] for r in mem_pts])})
+    t1 = table(rows, ["mode", "axis", "T", "R", "C", "seconds", "frames_per_s", "peak_traced_mb",
+                      "position_rms_px"])
+    t2 = table(fits, ["mode", "axis", "range", "time_exponent", "memory_exponent"])
+    md = (f"# Scaling{' (quick)' if args.quick else ''}\n\nstripstitch.stitch on synthetic moving-texture "
+          "frames (0.5 px/frame along, 0.05 across, 30 dB). Exponent = log-log slope of time "
+          "(or peak traced memory) against the swept size; 1 = linear.\n\n" + t1
+          + "\n\n## Fitted exponents\n\n" + t2 + "\n")
+    print()
+    print(md)
+    paths = write("scaling_quick" if args.quick else "scaling",
+                  {"environment": environment(), "rows": rows, "fits": fits}, md)
+    print("wrote", *paths)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

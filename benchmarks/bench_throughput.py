@@ -1,0 +1,89 @@
+"""Throughput benchmark: frames/s of stitching, simulation, metrics and the reference chains.
+
+Run from a clean checkout:  python benchmarks/bench_throughput.py  [--repeat N] [--quick]
+
+For each geometry (8 x 192 @ 4 kHz, 16 x 128 @ 2 kHz; one simulated full swipe each) times,
+side by side in one run: stripstitch.stitch mode "default" and "fast", the skimage and OpenCV
+phase-correlation chains (pairwise shifts + stripstitch.mosaic.fuse), the simulator's capture
+(finger made beforehand; finger generation timed separately) and stripstitch.evaluate.evaluate.
+Reports frames/s, the real-time factor (frames/s over the sensor's frame rate; >= 1 keeps up),
+ratios to the chains, and the peak traced allocation per stage (tracemalloc, separate run) plus
+the process's maximum resident set size (resource.getrusage). Best of --repeat runs. Writes
+benchmarks/results/throughput.json/.md.
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import time
+
+from _common import best_time, environment, peak_memory_mb, table, write
+
+from stripstitch import evaluate as ev
+from stripstitch import simulate
+from stripstitch.sweep import reconstruct
+
+CASES = {
+    "8x192 @ 4 kHz": dict(n_rows=8, n_cols=192, frame_rate_hz=4000.0, speed_mm_s=100.0, snr_db=30.0),
+    "16x128 @ 2 kHz": dict(n_rows=16, n_cols=128, frame_rate_hz=2000.0, speed_mm_s=100.0, snr_db=30.0),
+}
+FINGER_MM = (12.0, 10.0)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--quick", action="store_true", help="first geometry only, one repeat")
+    args = ap.parse_args(argv)
+    repeat = 1 if args.quick else args.repeat
+    cases = dict(list(CASES.items())[:1]) if args.quick else CASES
+    t_finger, finger = best_time(lambda: simulate.make_finger("right_loop", size_mm=FINGER_MM, rng=5),
+                                 repeat=repeat)
+    rows = []
+    for name, p in cases.items():
+        cap = simulate.swipe(finger=finger, rng=1, **p)
+        n, fr = cap.frames.shape[0], p["frame_rate_hz"]
+        stages = {
+            "stitch default": lambda: reconstruct(cap, "default"),
+            "stitch fast": lambda: reconstruct(cap, "fast"),
+            "skimage chain": lambda: reconstruct(cap, "skimage_chain"),
+            "opencv chain": lambda: reconstruct(cap, "opencv_chain"),
+            "simulate capture": lambda: simulate.swipe(finger=finger, rng=1, **p),
+        }
+        res_default = reconstruct(cap, "default")
+        stages["evaluate"] = lambda: ev.evaluate(res_default, cap)
+        times = {}
+        for stage, fn in stages.items():
+            secs, _ = best_time(fn, repeat=repeat)
+            times[stage] = secs
+            print(f"{name:16s} {stage:18s} {secs:8.3f} s  {n / secs:10.0f} frames/s", flush=True)
+        for stage, fn in stages.items():
+            mem = peak_memory_mb(fn)
+            rows.append({"case": name, "stage": stage, "frames": n, "seconds": times[stage],
+                         "frames_per_s": n / times[stage], "real_time_factor": n / times[stage] / fr,
+                         "vs_skimage_chain": times["skimage chain"] / times[stage],
+                         "vs_opencv_chain": times["opencv chain"] / times[stage],
+                         "peak_traced_mb": mem})
+    rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    cols = ["case", "stage", "frames", "seconds", "frames_per_s", "real_time_factor",
+            "vs_skimage_chain", "vs_opencv_chain", "peak_traced_mb"]
+    heads = ["case", "stage", "T", "s", "frames/s", "real-time factor", "speed vs skimage chain",
+             "speed vs OpenCV chain", "peak MB (tracemalloc)"]
+    t = table(rows, cols, heads)
+    md = (f"# Throughput{' (quick)' if args.quick else ''}\n\nOne core per process, best of {repeat}. "
+          f"Finger generation ({FINGER_MM[0]:g} x {FINGER_MM[1]:g} mm at 12.7 um): {t_finger:.2f} s "
+          f"(not included in 'simulate capture'). 'speed vs ... chain' = chain time / stage time "
+          f"(> 1: faster than the chain). Max resident set size of the run: {rss_mb:.0f} MB.\n\n"
+          + t + "\n")
+    print()
+    print(md)
+    paths = write("throughput_quick" if args.quick else "throughput",
+                  {"environment": environment(), "repeat": repeat, "finger_seconds": t_finger,
+                   "max_rss_mb": rss_mb, "rows": rows}, md)
+    print("wrote", *paths)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
