@@ -186,3 +186,23 @@ def test_reference_chain_rejects_bad_input():
         sweep.reference_chain(np.zeros((3, 8, 8)), library="numpy")
     with pytest.raises(ValueError, match="normalization must be None or 'phase'"):
         sweep.reference_chain(np.zeros((3, 8, 8)), normalization="amplitude")
+
+
+def test_run_case_with_simulator_and_truth_stand_in():
+    # The truth stand-in scores perfectly; the finger is reused between cases of one finger seed.
+    pytest.importorskip("stripstitch.simulate.capture")
+    case = dict(method="truth", finger_length_mm=6.0, finger_width_mm=5.0, length_mm=1.0,
+                n_cols=48, seed=4, metrics="image")
+    row = sweep.run_case(case)
+    assert row["error"] == "", row["error"]
+    assert row["span_error_pct"] == 0 and row["along_max_px"] == 0
+    assert row["ncc"] == pytest.approx(1.0, abs=1e-12)
+    assert row["gap_false"] == 0 and row["n_frames"] > 10
+    # 1 mm at 100 mm/s and 4 kHz: 40 frame intervals of 100 um/s / 4 kHz = 0.49 px
+    assert row["span_true_px"] == pytest.approx(1000.0 / 50.8, rel=0.02)
+    again = sweep.run_case(case)
+    assert again == row                                         # deterministic by seed
+    cap = sweep.simulate_case(dict(case, dielectric_um=4.0))
+    assert sum(layer.thickness_um for layer in cap.sensor.layers) == pytest.approx(4.0)
+    failed = sweep.run_case(dict(case, method="nonsense"))
+    assert failed["error"].startswith("ValueError: method must be one of")
