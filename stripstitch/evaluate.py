@@ -769,6 +769,10 @@ def ridge_period(image, *, band_px=(3.0, 25.0), mask=None):
     transformed; within the band, f_along = sqrt(sum P f_0^2 / sum P) and likewise across and
     radially. Stretching the image by k along axis 0 scales every f_0 by 1/k, so
     ``along_px`` scales by k while ``across_px`` stays (up to windowing and band edges).
+    Being a power-weighted moment, it is also moved by anything that changes where the power
+    sits: broadband noise and seams shorten the measured period, blur lengthens it. Compare a
+    reconstruction with the truth on the same pixels, and use
+    :attr:`DistortionMap.scale` for the purely geometric scale.
 
     Examples
     --------
