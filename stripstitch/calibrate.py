@@ -540,6 +540,13 @@ def calibrate_from_frames(frames, *, n_blank=None, reference_frames=None, mad_th
     ------
     CalibrationError
         No blank frames found (then record blanks separately, or pass ``n_blank``).
+
+    Notes
+    -----
+    Frames before the finger arrives are not quite blank: the skin curving away from the
+    sensor beyond the pad still adds a little capacitance (a fraction of a code on a typical
+    front end), which ends up in the offset. A separate finger-absent capture avoids it.
+    The indices of the frames used are kept in ``notes["blank_frame_indices"]``.
     """
     f = check_frames(frames)
     if n_blank is not None:
@@ -568,7 +575,8 @@ def calibrate_from_frames(frames, *, n_blank=None, reference_frames=None, mad_th
                                 frames=f[finger] if finger.size >= 2 else None,
                                 mad_threshold=mad_threshold,
                                 notes={"blank_source": source,
-                                       "blank_frames": [int(blank_idx[0]), int(blank_idx[-1])]})
+                                       "blank_frames": [int(blank_idx[0]), int(blank_idx[-1])],
+                                       "blank_frame_indices": [int(i) for i in blank_idx]})
 
 
 # ----------------------------------------------------------------------------------------------

@@ -271,3 +271,33 @@ def test_presence_arrival_and_lift_off_with_blank_calibration():
     good = ~(unit.dead | unit.stuck)
     assert inferred.n_blank_frames >= 10      # frames 0..9 and 70..79 less a 5-frame guard
     assert np.sqrt(np.mean((inferred.offset - truth)[good] ** 2)) < 0.5
+
+
+def test_against_a_simulated_capture():
+    # Truth from the simulator: Capture.contact (fraction of plates on the pad per frame) and
+    # the SensorUnit's fixed pattern (dead/stuck plates, blank level).
+    from stripstitch import simulate
+    sensor = Sensor(n_rows=8, n_cols=96, dead_fraction=0.01, stuck_fraction=0.01)
+    cap = simulate.swipe("left_loop", sensor=sensor, finger_size_mm=(12.0, 9.0), rng=23)
+    p = calibrate.finger_presence(cap.frames)
+    err = p.score - cap.contact
+    assert np.sqrt(np.mean(err ** 2)) < 0.1 and np.abs(err).max() < 0.3
+    inside = np.flatnonzero(cap.contact >= 0.1)
+    # arrival/lift-off: the pad's soft edge reaches the strip a few frames before ridges touch
+    assert abs(p.first - inside[0]) <= 12 and abs(p.last - inside[-1]) <= 12
+    full = cap.contact >= 0.999
+    assert p.partial()[p.first] and np.mean(p.partial()[full]) < 0.5
+    cal = calibrate.calibrate_from_frames(cap.frames)
+    np.testing.assert_array_equal(cal.bad, cap.unit.dead | cap.unit.stuck)
+    good = ~cal.bad
+    # The frames before arrival still see the hovering skin: the noise-free level of those
+    # frames through this unit is blank + gain * (ideal - ideal blank), from the front end's
+    # readout equation (gain * (C + C_residual) * drive / C_F + offset).
+    idx = np.array(cal.notes["blank_frame_indices"])
+    s = cap.sensor
+    hover = cap.ideal_frames[idx].mean(axis=0) - s.to_codes(s.output_v(0.0))
+    truth = _true_blank_codes(cap.unit) + cap.unit.gain * hover
+    # standard error of the mean again (Taylor 1997, section 4.4), 3x for margin
+    sem = np.median(cal.noise[good]) / np.sqrt(cal.n_blank_frames)
+    assert np.sqrt(np.mean((cal.offset - truth)[good] ** 2)) < 3 * sem
+    assert np.sqrt(np.mean((cal.offset - _true_blank_codes(cap.unit))[good] ** 2)) < 1.5
