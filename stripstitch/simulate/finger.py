@@ -42,7 +42,8 @@ _FINGER_RADIUS_UM = 8000.0   # radius of curvature of the fingertip off the pad 
 _PAD_EDGE_UM = 400.0         # half-width of the soft pad edge (assumed)
 _DRY_LIFT_UM = 5.0           # lift of a dry patch (assumed: "a few um")
 _DRY_AREA = 0.35             # area fraction of dry patches (assumed)
-_WET_LEVEL = (0.25, 0.55)    # moisture level range, as a fraction of the valley depth (assumed)
+_WET_LEVEL = (0.25, 0.55)
+_CREST_FLATTEN = 0.2         # crest flattening: > 0 gives the crests a small flat top    # moisture level range, as a fraction of the valley depth (assumed)
 
 
 @dataclass(frozen=True, eq=False)
@@ -379,6 +380,25 @@ def _grow_ridges(theta, period_um, d_along, d_across, rng):
     return out   # the last filtered, normalised field (smooth, ~unit rms)
 
 
+def _monogenic(field):
+    """(field, R1 field, R2 field): the field and its two Riesz transforms, by FFT.
+
+    Felsberg & Sommer, "The monogenic signal", IEEE Trans. Signal Processing 49(12):3136-3144,
+    2001: R_j has transfer function -i k_j / |k|; for a locally 1-D band-pass pattern
+    A cos(phi), sqrt(f^2 + R1^2 + R2^2) = A.
+    """
+    shape = field.shape
+    fshape = (sp_fft.next_fast_len(shape[0], real=True), sp_fft.next_fast_len(shape[1], real=True))
+    spec = sp_fft.rfft2(field, s=fshape)
+    k0 = sp_fft.fftfreq(fshape[0])[:, None]
+    k1 = sp_fft.rfftfreq(fshape[1])[None, :]
+    mod = np.hypot(k0, k1)
+    mod[0, 0] = 1.0
+    r = [sp_fft.irfft2(spec * (-1j * k / mod), s=fshape)[: shape[0], : shape[1]]
+         for k in (k0, k1)]
+    return field, r[0], r[1]
+
+
 # ---------------------------------------------------------------------------------------------
 # public generator
 
@@ -514,17 +534,26 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     theta_c = _orientation(pattern, ca[:, None], cx[None, :], cores, deltas, length_um, width_um)
     interior = (slice(m, m + hc), slice(m, m + wc))
     period_c = _period_map(theta_c.shape, min(da, dx), mean_p, (p_lo, p_hi), gen, interior)
-    grown = _grow_ridges(theta_c, period_c, da, dx, gen)[m:m + hc, m:m + wc]
+    grown = _grow_ridges(theta_c, period_c, da, dx, gen)
+    # monogenic signal (Riesz transform): its amplitude is the local ridge contrast, so the
+    # ratio field / amplitude is the cosine of the local ridge phase -- unit contrast
+    # everywhere, crisp at minutiae (phase singularities) instead of a grey contrast dip
+    parts = [a[m:m + hc, m:m + wc] for a in _monogenic(grown)]
     period_c = period_c[m:m + hc, m:m + wc]
 
     import cv2   # only this step needs OpenCV
 
-    ridge_raw = cv2.resize(np.ascontiguousarray(grown, dtype=np.float64), (w, h),
-                           interpolation=cv2.INTER_CUBIC)
+    y, r1, r2 = (cv2.resize(np.ascontiguousarray(a, dtype=np.float64), (w, h),
+                            interpolation=cv2.INTER_CUBIC) for a in parts)
     period = cv2.resize(np.ascontiguousarray(period_c), (w, h), interpolation=cv2.INTER_LINEAR)
-    # the grown field has ~unit rms, i.e. amplitude ~sqrt(2) for a sinusoid: scale so the
-    # crests saturate at +-1 and round them off with a sine (slope 0 at the crest).
-    ridge = np.sin(0.5 * np.pi * np.clip(ridge_raw / np.sqrt(2.0) * 1.15, -1.0, 1.0))
+    amp = np.sqrt(y * y + r1 * r1 + r2 * r2)
+    cos_phase = y / np.maximum(amp, 1e-12 * max(float(amp.max()), 1e-300))
+    # rounded profile: u = c + a (1 + c)^2 / 4 leaves the valleys (c = -1) unchanged and lifts
+    # the crests past 1, so after the clip they are slightly flattened like pressed skin;
+    # the sine keeps the slope continuous (0 where the flat top begins)
+    u = cos_phase + _CREST_FLATTEN * 0.25 * (1.0 + cos_phase) ** 2
+    ridge = np.sin(0.5 * np.pi * np.clip(u, -1.0, 1.0))
+    del y, r1, r2, amp, cos_phase, u
 
     fa = (np.arange(h) * spacing)[:, None]
     fx = (np.arange(w) * spacing)[None, :]
