@@ -396,6 +396,9 @@ def _cmd_stitch(args, out):
     suffix = Path(args.output).suffix.lower()
     if suffix not in (".tif", ".tiff", ".png"):
         raise _BadInput(f"-o/--output must end in .tif, .tiff or .png; got {args.output!r}")
+    if not 0 <= args.low_percentile < args.high_percentile <= 100:
+        raise _BadInput(f"--low-percentile and --high-percentile must satisfy 0 <= low < high "
+                        f"<= 100; got {args.low_percentile} and {args.high_percentile}")
     stack = _read_stack(args.input, args)
     if stack.pitch_um is None:
         out.note("pitch unknown: assuming 50.8 um (500 ppi); set --pitch-um")

@@ -151,3 +151,27 @@ def test_truncated_npz(seed, cut):
     except io.FormatError:
         return
     np.testing.assert_array_equal(s.frames, frames)
+
+
+@SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), t=st.integers(2, 5), r=st.integers(2, 5), c=st.integers(2, 6),
+       bits=st.sampled_from([(8, 8), (8, 5), (16, 16), (16, 12), (16, 10)]),
+       order_b=st.sampled_from(["little", "big"]), align=st.sampled_from(["low", "high"]),
+       order=st.sampled_from(["row_major", "column_major"]), tr=st.booleans(), fa=st.booleans(),
+       fc=st.booleans(), header=st.sampled_from([0, 4, 12, 20]), offset=st.integers(0, 9),
+       trailer=st.integers(0, 3))
+def test_write_read_roundtrip_property(seed, t, r, c, bits, order_b, align, order, tr, fa, fc,
+                                       header, offset, trailer):
+    rng = np.random.default_rng(seed)
+    frames = rng.integers(0, 1 << bits[1], size=(t, r, c))
+    stamps = np.cumsum(rng.integers(1, 4, t)) / 1000.0        # some frames dropped
+    folder = _folder()
+    io.write_dump(folder / "p.bin", frames, frame_rate_hz=1000.0, timestamps_s=stamps,
+                  container_bits=bits[0], value_bits=bits[1], byte_order=order_b, alignment=align,
+                  order=order, transpose=tr, flip_along=fa, flip_across=fc,
+                  frame_header_bytes=header, data_offset_bytes=offset, frame_trailer_bytes=trailer)
+    s = io.read_frames(folder / "p.bin")
+    np.testing.assert_array_equal(s.frames, frames)
+    np.testing.assert_allclose(s.timestamps_s, stamps, atol=1e-9)
+    steps = np.rint(np.diff(stamps) * 1000).astype(int)
+    assert s.n_dropped == int((steps - 1).sum())
