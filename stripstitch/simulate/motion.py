@@ -159,8 +159,20 @@ class Motion:
         return np.array([math.cos(th), math.sin(th)])
 
     def travel_um(self, t_s):
-        """Signed travel along the swipe direction at times ``t_s`` (clamped to the motion)."""
-        return np.interp(np.asarray(t_s, dtype=np.float64), self.knot_times_s, self.knot_travel_um)
+        """Signed travel along the swipe direction at times ``t_s``.
+
+        Linear between knots; before the first / after the last knot it continues at the
+        first / last segment's speed, so exposure windows at the ends stay symmetric.
+        """
+        t = np.asarray(t_s, dtype=np.float64)
+        kt, kp = self.knot_times_s, self.knot_travel_um
+        out = np.interp(t, kt, kp)
+        if kt.size >= 2:
+            v0 = (kp[1] - kp[0]) / (kt[1] - kt[0])
+            v1 = (kp[-1] - kp[-2]) / (kt[-1] - kt[-2])
+            out = np.where(t < kt[0], kp[0] + v0 * (t - kt[0]), out)
+            out = np.where(t > kt[-1], kp[-1] + v1 * (t - kt[-1]), out)
+        return out
 
     def at(self, t_s):
         """Evaluate the motion at arbitrary times.
@@ -168,8 +180,8 @@ class Motion:
         Parameters
         ----------
         t_s : array_like of float
-            Times in seconds; before the start / after the end the finger rests at its first /
-            last point (tremor continues).
+            Times in seconds; before the start / after the end the travel continues at the
+            first / last speed (see :meth:`travel_um`).
 
         Returns
         -------
