@@ -5,10 +5,12 @@ ValueError subclasses); never any other exception, never a hang (sizes are small
 """
 
 import json
+import shutil
 import tempfile
 from pathlib import Path
 
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from stripstitch import io
@@ -17,8 +19,20 @@ SETTINGS = settings(max_examples=int(__import__("os").environ.get("FUZZ_N", 60))
                     suppress_health_check=[HealthCheck.function_scoped_fixture])
 
 
+_BASE = []
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _cleanup():
+    yield
+    for d in _BASE:
+        shutil.rmtree(d, ignore_errors=True)
+
+
 def _folder():
-    return Path(tempfile.mkdtemp(prefix="fuzz_io_"))
+    if not _BASE:
+        _BASE.append(tempfile.mkdtemp(prefix="fuzz_io_"))
+    return Path(tempfile.mkdtemp(dir=_BASE[0]))
 
 
 json_scalars = st.one_of(st.none(), st.booleans(), st.integers(-2**70, 2**70),
