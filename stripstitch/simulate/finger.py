@@ -124,6 +124,18 @@ class Finger:
         for name in ("spacing_um", "valley_depth_um", "pressure"):
             object.__setattr__(self, name, float(getattr(self, name)))
 
+    @classmethod
+    def _adopt(cls, **fields):
+        """Build from freshly made float64 arrays without copying them (internal fast path:
+        make_finger owns its arrays, so the copy of __post_init__ would only cost time)."""
+        obj = object.__new__(cls)
+        for name, value in fields.items():
+            if isinstance(value, np.ndarray):
+                value = np.ascontiguousarray(value, dtype=np.float64)
+                value.flags.writeable = False
+            object.__setattr__(obj, name, value)
+        return obj
+
     @property
     def shape(self):
         """(H, W): grid size in cells."""
@@ -521,14 +533,15 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     length_um, width_um = h * spacing, w * spacing
     cores, deltas = _singular_points(pattern, length_um, width_um, gen)
 
-    # coarse grid with a margin of ~2 periods all round, covering the fine grid's cell area
+    # coarse grid with a margin of 1.5 periods all round (the Gabor support: FFT wrap-around
+    # stays in the margin), covering the fine grid's cell area
     # exactly so that a centre-aligned resize maps one onto the other
     d_c = min(mean_p / _SAMPLES_PER_PERIOD, p_lo / 4.5, length_um / 8, width_um / 8)
     d_c = max(d_c, spacing)
     hc = max(int(round(length_um / d_c)), 8)
     wc = max(int(round(width_um / d_c)), 8)
     da, dx = length_um / hc, width_um / wc            # exact coarse spacings (um)
-    m = int(np.ceil(2.0 * p_hi / min(da, dx)))
+    m = int(np.ceil(1.5 * p_hi / min(da, dx)))
     ca = (np.arange(-m, hc + m) + 0.5) * da - 0.5 * spacing   # coarse centres in fine coords
     cx = (np.arange(-m, wc + m) + 0.5) * dx - 0.5 * spacing
     theta_c = _orientation(pattern, ca[:, None], cx[None, :], cores, deltas, length_um, width_um)
@@ -593,10 +606,10 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
         soft = 0.1 * depth
         fill = 0.5 * (1.0 - np.tanh((air_gap - level) / soft))
         fluid = np.clip(air_gap * fill * contact, 0.0, air_gap)
-    return Finger(pattern=pattern, spacing_um=spacing, ridge=ridge, height_um=height,
-                  contact=contact, air_gap_um=np.maximum(air_gap, 0.0), fluid_um=fluid,
-                  orientation_rad=theta, period_um=period, cores_um=cores, deltas_um=deltas,
-                  valley_depth_um=depth, pressure=pressure, skin=skin)
+    return Finger._adopt(pattern=pattern, spacing_um=spacing, ridge=ridge, height_um=height,
+                         contact=contact, air_gap_um=np.maximum(air_gap, 0.0), fluid_um=fluid,
+                         orientation_rad=theta, period_um=period, cores_um=cores,
+                         deltas_um=deltas, valley_depth_um=depth, pressure=pressure, skin=skin)
 
 
 def _orientation(pattern, along, across, cores, deltas, length_um, width_um):
