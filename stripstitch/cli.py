@@ -411,17 +411,33 @@ def _cmd_stitch(args, out):
         out.note(f"{stack.n_dropped} dropped frame(s) in {len(stack.dropped_table())} gap(s); "
                  "the timestamps tell the motion estimator")
     cal = _load_calibration(args, stack, out)
+    first = 0
+    if args.trim:
+        presence = _cal.finger_presence(stack.frames, calibration=cal)
+        if not presence.any:
+            raise _Failure("no finger in any frame (nothing to trim to)")
+        first, last = presence.span()
+        if last - first + 1 < 2:
+            raise _Failure(f"the finger is present in one frame only ({first})")
+        sl = slice(first, last + 1)
+        stack = _io.FrameStack(
+            frames=stack.frames[sl], pitch_um=stack.pitch_um, frame_rate_hz=stack.frame_rate_hz,
+            timestamps_s=None if stack.timestamps_s is None else stack.timestamps_s[sl],
+            counters=None if stack.counters is None else stack.counters[sl],
+            source=stack.source, kind=stack.kind, manifest=stack.manifest, notes=stack.notes)
+        out.note(f"trimmed to frames {first}..{last} (finger present)")
     result = _stitch(stack, args, cal)
     meta = _io.write_image(args.output, result.image, pitch_um=result.pitch_um, bits=args.bits,
                            percentiles=(args.low_percentile, args.high_percentile),
                            background=args.background, overwrite=args.force,
                            metadata={"input": stack.source, "verdict": result.report.verdict})
     doc = _report_document(result, stack, cal, meta)
+    doc["first_frame"] = first
     if args.report:
         _io.write_json(args.report, doc, overwrite=args.force)
     if args.trajectory:
         _io.write_trajectory_csv(args.trajectory, result, timestamps_s=stack.timestamps_s,
-                                 overwrite=args.force)
+                                 first_frame=first, overwrite=args.force)
     rep = result.report
     h_mm, w_mm = _image_extent_mm(result)
     summary = {"output": str(args.output), "verdict": rep.verdict, "reasons": list(rep.reasons),
@@ -856,6 +872,10 @@ def build_parser():
                    help="code for pixels without data (default: %(default)s)")
     s.add_argument("--output-pitch-um", type=_positive("--output-pitch-um"), metavar="UM",
                    help="output pixel pitch (default: the sensor pitch)")
+    s.add_argument("--trim", action="store_true",
+                   help="stitch only the frames from the finger's arrival to its lift-off "
+                        "(trajectory frame numbers stay those of the input; positions are "
+                        "relative to the first kept frame)")
     s.set_defaults(func=_cmd_stitch)
 
     s = sub.add_parser("simulate", parents=[common, writing], formatter_class=fmt,

@@ -1347,10 +1347,14 @@ def write_csv(path, table, *, overwrite=False):
         fh.write(buf.getvalue().encode("utf-8"))
 
 
-def write_trajectory_csv(path, result, *, timestamps_s=None, overwrite=False):
+def write_trajectory_csv(path, result, *, timestamps_s=None, first_frame=0, overwrite=False):
     """Write a reconstruction's trajectory (frame, along_px, across_px, angle_deg, confidence,
-    and time_s when known) as CSV."""
+    and time_s when known) as CSV.
+
+    ``first_frame`` (default 0) is added to the frame numbers, for a reconstruction of a
+    trimmed stack whose frame 0 is frame ``first_frame`` of the input."""
     table = dict(result.trajectory_table())
+    table["frame"] = np.asarray(table["frame"]) + int(first_frame)
     if timestamps_s is not None:
         table["time_s"] = np.asarray(timestamps_s, dtype=np.float64)
     write_csv(path, table, overwrite=overwrite)

@@ -232,3 +232,16 @@ def test_python_dash_m_entry_point():
     proc = subprocess.run([sys.executable, "-m", "stripstitch", "--version"], capture_output=True,
                           text=True, timeout=120)
     assert proc.returncode == 0 and proc.stdout.startswith("stripstitch ")
+
+
+def test_stitch_trim_keeps_input_frame_numbers(sim, capsys, tmp_path):
+    d, cap = sim
+    code, _, err = run(capsys, "stitch", d / "b.bin", "--trim", "-o", tmp_path / "t.png",
+                       "--trajectory", tmp_path / "t.csv", "--report", tmp_path / "t.json")
+    assert code in (0, 1), err
+    presence = calibrate.finger_presence(cap.frames)
+    traj = read_csv(tmp_path / "t.csv")
+    assert traj["frame"][0] == presence.first and traj["frame"][-1] == presence.last
+    np.testing.assert_allclose(traj["time_s"], cap.times_s[presence.first:presence.last + 1])
+    assert traj["along_px"][0] == 0.0
+    assert json.loads((tmp_path / "t.json").read_text())["first_frame"] == presence.first
