@@ -740,14 +740,15 @@ def _cmd_demo(args, out):
     out.progress(len(files), len(files), "done")
     out.document({"output": str(outdir), "swipes": rows})
     out.text(f"demo         {len(rows)} swipe(s) from {folder} -> {outdir}/")
-    head = f"{'swipe':<24} {'frames':>6} {'sensor':>7} {'rate Hz':>8} {'verdict':>9} " \
+    wn = max([5] + [len(r["swipe"]) for r in rows])
+    head = f"{'swipe':<{wn}} {'frames':>6} {'sensor':>7} {'rate Hz':>8} {'verdict':>9} " \
            f"{'length mm':>9} {'RMS px':>7}  events"
     out.text(head)
     out.text("-" * len(head))
     for r in rows:
         rms = "-" if r["along_rms_px"] is None else f"{r['along_rms_px']:.3f}"
         rate = "-" if r["rate_hz"] is None else f"{r['rate_hz']:.0f}"
-        out.text(f"{r['swipe']:<24} {r['frames']:>6} {r['sensor']:>7} {rate:>8} "
+        out.text(f"{r['swipe']:<{wn}} {r['frames']:>6} {r['sensor']:>7} {rate:>8} "
                  f"{r['verdict']:>9} {r['length_mm']:>9.2f} {rms:>7}  {r['events']}")
     out.text("(RMS px: along-swipe position error against the simulator's truth; images are "
              "synthetic prints, test data only)")

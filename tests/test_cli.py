@@ -245,3 +245,9 @@ def test_stitch_trim_keeps_input_frame_numbers(sim, capsys, tmp_path):
     np.testing.assert_allclose(traj["time_s"], cap.times_s[presence.first:presence.last + 1])
     assert traj["along_px"][0] == 0.0
     assert json.loads((tmp_path / "t.json").read_text())["first_frame"] == presence.first
+
+
+def test_bundled_demo_data_is_found():
+    folder = cli.find_demo_data()
+    assert folder is not None and folder.name == "demo_data"
+    assert len(sorted(folder.glob("*.npz"))) >= 3
