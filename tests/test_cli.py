@@ -251,3 +251,16 @@ def test_bundled_demo_data_is_found():
     folder = cli.find_demo_data()
     assert folder is not None and folder.name == "demo_data"
     assert len(sorted(folder.glob("*.npz"))) >= 3
+
+
+def test_simulate_from_toml_config(capsys, tmp_path):
+    # TOML parsed by the standard library's tomllib; flags override the file.
+    (tmp_path / "s.toml").write_text('[swipe]\npattern = "arch"\nn_rows = 8\nn_cols = 48\n'
+                                     'finger_size_mm = [10.0, 8.0]\nspeed_mm_s = 80.0\n')
+    code, out, err = run(capsys, "simulate", "-o", tmp_path / "s.npz", "--config",
+                         tmp_path / "s.toml", "--cols", "40", "--seed", "2", "--json")
+    assert code == 0, err
+    doc = json.loads(out)
+    assert (doc["rows"], doc["columns"]) == (8, 40)
+    assert doc["options"]["pattern"] == "arch" and doc["options"]["speed_mm_s"] == 80.0
+    assert io.read_frames(tmp_path / "s.npz").kind == "capture"
