@@ -345,3 +345,21 @@ def test_simulator_properties(rows, cols, bits, speed, rotation, snr, profile, s
     assert cap.snr_db == pytest.approx(snr, abs=1e-9)
     again = swipe(rng=seed, **kw)
     np.testing.assert_array_equal(again.frames, cap.frames)
+
+
+def test_true_image_covers_every_plate_of_every_frame():
+    # DEVELOPERS.md convention: plate (r, c) of frame t sits at c_f + positions[t] + Rot(angles[t]) u
+    # of frame 0's grid; with the origin, every such point must fall inside the true image.
+    cap = swipe(n_rows=8, n_cols=40, finger=small_finger(), frame_rate_hz=1000.0, length_mm=4.0,
+                rotation_deg=-6.0, skew_deg=-8.0, backtracks=[(2.0, 0.4)], rng=9)
+    r, c = cap.frames.shape[1:]
+    cf = np.array([(r - 1) / 2, (c - 1) / 2])
+    rr, cc = np.meshgrid(np.arange(r), np.arange(c), indexing="ij")
+    u = np.stack([rr - cf[0], cc - cf[1]], -1).reshape(-1, 2)
+    th = np.radians(cap.angles)[:, None]
+    along = cf[0] + cap.positions[:, :1] + np.cos(th) * u[:, 0] - np.sin(th) * u[:, 1]
+    across = cf[1] + cap.positions[:, 1:] + np.sin(th) * u[:, 0] + np.cos(th) * u[:, 1]
+    h, w = cap.true_image.shape
+    assert (along + cap.true_origin_px[0]).min() >= 0 and (along + cap.true_origin_px[0]).max() <= h - 1
+    assert (across + cap.true_origin_px[1]).min() >= 0 and (across + cap.true_origin_px[1]).max() <= w - 1
+    np.testing.assert_array_equal(cap.true_origin_px, np.round(cap.true_origin_px))
