@@ -21,14 +21,11 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from stripstitch.simulate.finger import PATTERNS, make_finger  # noqa: E402
 
-SKIN_OF = {"arch": "normal", "tented_arch": "normal", "left_loop": "normal",
-           "right_loop": "normal", "whorl": "normal", "twin_loop": "normal"}
-
 
 def render(seed=2026, out=Path(__file__).resolve().parent / "fingers.png"):
     fig, axes = plt.subplots(2, 3, figsize=(12, 11.5))
     for ax, pattern in zip(axes.ravel(), PATTERNS):
-        f = make_finger(pattern, skin=SKIN_OF[pattern], rng=seed)
+        f = make_finger(pattern, rng=seed)
         step = 2                                      # 25.4 um per displayed pixel
         # ink-like rendering: ridges dark on the pad, fading out where the skin lifts off
         ink = 0.5 * (1.0 + f.ridge[::step, ::step]) * f.contact[::step, ::step]

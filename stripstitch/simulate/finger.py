@@ -6,7 +6,8 @@ The finger is built in four steps, each from a published model or a stated assum
    placed per pattern class (a smooth analytic arch field for the plain arch);
 2. a smooth random ridge-period map around a requested mean;
 3. a ridge pattern grown by iterative, space-variant Gabor filtering of noise steered by the two
-   maps (Cappelli, Erol, Maio & Maltoni 2000), on a coarse grid, then interpolated to the fine grid;
+   maps (Cappelli, Erol, Maio & Maltoni 2000), on a coarse grid, reduced to the cosine of its
+   local phase (monogenic signal, Felsberg & Sommer 2001) and interpolated to the fine grid;
 4. the physical surface: a rounded ridge height profile, an elliptical contact pad whose size
    grows with pressure, the skin curving away from the sensor off the pad, and the skin
    condition (normal, dry, wet).
@@ -42,8 +43,8 @@ _FINGER_RADIUS_UM = 8000.0   # radius of curvature of the fingertip off the pad 
 _PAD_EDGE_UM = 400.0         # half-width of the soft pad edge (assumed)
 _DRY_LIFT_UM = 5.0           # lift of a dry patch (assumed: "a few um")
 _DRY_AREA = 0.35             # area fraction of dry patches (assumed)
-_WET_LEVEL = (0.25, 0.55)
-_CREST_FLATTEN = 0.2         # crest flattening: > 0 gives the crests a small flat top    # moisture level range, as a fraction of the valley depth (assumed)
+_WET_LEVEL = (0.25, 0.55)    # moisture level range, as a fraction of the valley depth (assumed)
+_CREST_FLATTEN = 0.2         # crest flattening: > 0 gives the crests a small flat top
 
 
 @dataclass(frozen=True, eq=False)
@@ -471,8 +472,11 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     soft-clips with tanh; the pattern is grown on a coarse grid of about 7 samples per mean
     period and interpolated (bicubic) to the fine grid. Ridge endings and bifurcations arise
     where the growing pattern cannot follow the maps with continuous ridges.
-    *Surface*: ``ridge`` is the grown field passed through sin(pi/2 clip(., -1, 1)), which
-    rounds the crests; the height is ``valley_depth_um (1 + ridge) / 2``. The 50 um default
+    *Surface*: the grown field y and its two Riesz transforms (the monogenic signal [4]_) give
+    the local ridge phase; ``ridge`` is its cosine c = y / sqrt(y^2 + R1^2 + R2^2) (unit
+    contrast everywhere, sharp minutiae), reshaped by sin(pi/2 clip(c + 0.05 (1 + c)^2, -1, 1)):
+    the valleys stay cosine-round, the crests get a small flat top like pressed skin, and the
+    slope is continuous. The height is ``valley_depth_um (1 + ridge) / 2``. The 50 um default
     depth is a common modelling choice, not a measured value (no source found). The pad is an
     ellipse centred on the grid, half-widths (0.55 + 0.4 pressure) W/2 across and
     (0.6 + 0.35 pressure) H/2 along, with a 0.4 mm soft edge; beyond it the skin lifts as
@@ -490,6 +494,8 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
        doi:10.1109/ICPR.2000.903586 (DOI from memory).
     .. [3] D. Maltoni, D. Maio, A. K. Jain and S. Prabhakar, Handbook of Fingerprint
        Recognition, 2nd ed., Springer 2009, ch. 3 (ridge period about 500 um) and ch. 6.
+    .. [4] M. Felsberg and G. Sommer, "The monogenic signal", IEEE Trans. Signal Processing
+       49(12):3136-3144, 2001. doi:10.1109/78.969520 (DOI from memory).
 
     Examples
     --------
