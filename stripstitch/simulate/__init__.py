@@ -112,12 +112,12 @@ def swipe(pattern="right_loop", *, profile="constant", n_rows=8, n_cols=192, fra
     """
     rng = np.random.default_rng(rng)
     seeds = rng.integers(0, 2 ** 63 - 1, size=4)
-    if finger is None:
-        finger = make_finger(pattern, size_mm=finger_size_mm, pressure=pressure, skin=skin, rng=seeds[0])
     if sensor is None:
         sensor = Sensor(n_rows=n_rows, n_cols=n_cols)
     elif not isinstance(sensor, Sensor):
         raise TypeError(f"sensor must be a Sensor or None; got {type(sensor).__name__}")
+    if finger is None:
+        finger = make_finger(pattern, size_mm=finger_size_mm, pressure=pressure, skin=skin, rng=seeds[0])
     start, pad_length_mm = swipe_extent_um(finger, sensor)
     motion = make_motion(profile, frame_rate_hz=frame_rate_hz, speed_mm_s=speed_mm_s,
                          length_mm=pad_length_mm if length_mm is None else length_mm, start_um=start,
