@@ -363,3 +363,24 @@ def test_true_image_covers_every_plate_of_every_frame():
     assert (along + cap.true_origin_px[0]).min() >= 0 and (along + cap.true_origin_px[0]).max() <= h - 1
     assert (across + cap.true_origin_px[1]).min() >= 0 and (across + cap.true_origin_px[1]).max() <= w - 1
     np.testing.assert_array_equal(cap.true_origin_px, np.round(cap.true_origin_px))
+
+
+def test_truth_agrees_with_scikit_image_phase_correlation():
+    # Outside reference for the sign convention: skimage.registration.phase_cross_correlation
+    # (Guizar-Sicairos et al., Opt. Lett. 33(2):156, 2008) returns the shift that registers the
+    # moving image (frame t+1) onto the reference (frame t): shifting frame t+1 by s gives
+    # frame t, i.e. frames[t+1][r] ~ frames[t][r + s], so s must equal the truth step.
+    from skimage.registration import phase_cross_correlation
+
+    sensor = quiet_sensor(n_rows=16, n_cols=96)
+    cap = swipe(sensor=sensor, finger=small_finger(), frame_rate_hz=1000.0, speed_mm_s=127.0, skew_deg=5.0,
+                snr_db=None, exposure_s=0.0, rng=2)
+    full = np.flatnonzero(cap.contact == 1.0)
+    errors = []
+    for t in full[:-1][:20]:
+        s, _, _ = phase_cross_correlation(cap.ideal_frames[t], cap.ideal_frames[t + 1], upsample_factor=20,
+                                          normalization=None)
+        errors.append(s - (cap.positions[t + 1] - cap.positions[t]))
+    errors = np.abs(np.array(errors))
+    assert len(errors) >= 10
+    assert np.median(errors[:, 0]) < 0.15 and np.median(errors[:, 1]) < 0.15   # 2.5 px along, 0.22 across
