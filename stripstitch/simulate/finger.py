@@ -45,6 +45,8 @@ _DRY_LIFT_UM = 5.0           # lift of a dry patch (assumed: "a few um")
 _DRY_AREA = 0.35             # area fraction of dry patches (assumed)
 _WET_LEVEL = (0.25, 0.55)    # moisture level range, as a fraction of the valley depth (assumed)
 _CREST_FLATTEN = 0.2         # crest flattening: > 0 gives the crests a small flat top
+_RING_RADIUS = 0.8           # orientation-free growth within ~this many periods of a singularity
+_RING_GAIN = 1.0             # gain of the ring filter relative to the oriented ones
 
 
 @dataclass(frozen=True, eq=False)
@@ -354,8 +356,14 @@ def _bin_weights(value, n_bins, periodic):
     return weights
 
 
-def _grow_ridges(theta, period_um, d_along, d_across, rng):
-    """Iterative Gabor growth on the (coarse) grid of ``theta`` and ``period_um``."""
+def _grow_ridges(theta, period_um, d_along, d_across, rng, isotropic=None):
+    """Iterative Gabor growth on the (coarse) grid of ``theta`` and ``period_um``.
+
+    ``isotropic`` (same shape, in [0, 1]) blends in a ring (orientation-free) band-pass
+    filter: near singular points the orientation turns faster than an elongated Gabor
+    filter can follow, and letting the pattern choose its own orientation there makes the
+    ridges turn round the core instead of converging on it.
+    """
     shape = theta.shape
     p_lo, p_hi = float(period_um.min()), float(period_um.max())
     if _N_FREQ_BINS > 1 and p_hi > p_lo * 1.02:
@@ -374,6 +382,15 @@ def _grow_ridges(theta, period_um, d_along, d_across, rng):
     used = [o for o in range(_N_ORIENT_BINS) if w_o[o].any()]
     sig_norm = 1.0 * np.mean(period_um) / np.sqrt(d_along * d_across)  # ~1 period, in cells
 
+    if isotropic is not None and np.any(isotropic > 0):
+        ka = sp_fft.fftfreq(fshape[0], d=d_along)[:, None]
+        kx = sp_fft.rfftfreq(fshape[1], d=d_across)[None, :]
+        kr = np.hypot(ka, kx)
+        rings = np.array([np.exp(-(kr - f) ** 2 / (2 * (f / (2 * np.pi * _SIGMA_NORMAL)) ** 2))
+                          * (1.0 - np.exp(-kr ** 2 / (2 * (0.35 * f) ** 2))) for f in freqs])
+    else:
+        isotropic = None
+
     x = rng.standard_normal(shape)
     for it in range(_N_ITER):
         spec = sp_fft.rfft2(x, s=fshape)
@@ -384,6 +401,13 @@ def _grow_ridges(theta, period_um, d_along, d_across, rng):
                 y = sp_fft.irfft2(spec * bank[o, i], s=fshape)[: shape[0], : shape[1]]
                 acc += w_f[i] * y
             out += w_o[o] * acc
+        if isotropic is not None:
+            iso = np.zeros(shape)
+            for i in range(len(freqs)):
+                iso += w_f[i] * sp_fft.irfft2(spec * rings[i], s=fshape)[: shape[0], : shape[1]]
+            # ring filters pass every orientation: scale to the oriented filters' gain on
+            # a pattern that fits (about the tangential width ratio)
+            out = (1.0 - isotropic) * out + isotropic * iso * _RING_GAIN
         # local contrast normalisation (unit local rms), then a soft clip: the growth
         # saturates to ridge/valley plateaus like the clipping step of Cappelli et al.
         rms = np.sqrt(ndimage.gaussian_filter(out * out, sig_norm, mode="reflect"))
@@ -469,8 +493,11 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     field instead. *Ridges*: iterative Gabor filtering of white noise [2]_: each pass filters
     the field with 16 orientation x 3 frequency Gabor filters by FFT, blends the outputs per
     cell by linear interpolation between neighbouring bins, normalises the local contrast and
-    soft-clips with tanh; the pattern is grown on a coarse grid of about 7 samples per mean
-    period and interpolated (bicubic) to the fine grid. Ridge endings and bifurcations arise
+    soft-clips with tanh; within about 0.8 period of a core or delta the oriented output is
+    blended (Gaussian weight) with a ring band-pass filter, so that the pattern turns round
+    the singular point instead of converging on it (our addition). The pattern is grown on a
+    coarse grid of about 7 samples per mean period and interpolated (bicubic) to the fine
+    grid. Ridge endings and bifurcations arise
     where the growing pattern cannot follow the maps with continuous ridges.
     *Surface*: the grown field y and its two Riesz transforms (the monogenic signal [4]_) give
     the local ridge phase; ``ridge`` is its cosine c = y / sqrt(y^2 + R1^2 + R2^2) (unit
@@ -553,7 +580,12 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     theta_c = _orientation(pattern, ca[:, None], cx[None, :], cores, deltas, length_um, width_um)
     interior = (slice(m, m + hc), slice(m, m + wc))
     period_c = _period_map(theta_c.shape, min(da, dx), mean_p, (p_lo, p_hi), gen, interior)
-    grown = _grow_ridges(theta_c, period_c, da, dx, gen)
+    singular = np.concatenate([cores, deltas]) if len(cores) + len(deltas) else np.zeros((0, 2))
+    near = np.zeros(theta_c.shape)
+    for a0, x0 in singular:
+        d2 = (ca[:, None] - a0) ** 2 + (cx[None, :] - x0) ** 2
+        near = np.maximum(near, np.exp(-d2 / (2 * (_RING_RADIUS * mean_p) ** 2)))
+    grown = _grow_ridges(theta_c, period_c, da, dx, gen, isotropic=near)
     # monogenic signal (Riesz transform): its amplitude is the local ridge contrast, so the
     # ratio field / amplitude is the cosine of the local ridge phase -- unit contrast
     # everywhere, crisp at minutiae (phase singularities) instead of a grey contrast dip
