@@ -214,10 +214,14 @@ def test_bad_arguments(kwargs, exc, match):
 @given(profile=st.sampled_from(PROFILES), speed=st.floats(20.0, 300.0), length=st.floats(1.0, 8.0),
        fr=st.sampled_from([1000.0, 2000.0, 4000.0]), skew=st.floats(-20.0, 20.0),
        rotation=st.floats(-8.0, 8.0), stall=st.floats(0.0, 1.0), back=st.floats(0.0, 1.0),
-       seed=st.integers(0, 2 ** 32 - 1))
-def test_motion_properties(profile, speed, length, fr, skew, rotation, stall, back, seed):
-    kw = dict(frame_rate_hz=fr, speed_mm_s=speed, length_mm=length, skew_deg=skew, rotation_deg=rotation,
-              stalls=[(stall * length, 0.01)], backtracks=[(back * length, 0.2)], rng=seed)
+       fast=st.one_of(st.none(), st.floats(0.0, 0.9)), seed=st.integers(0, 2 ** 32 - 1))
+def test_motion_properties(profile, speed, length, fr, skew, rotation, stall, back, fast, seed):
+    # A too-fast segment (default 12 rows per frame for 8 rows) of 1.5 mm spans at least two
+    # frame steps, so it must show as a gap.
+    kw = dict(frame_rate_hz=fr, speed_mm_s=speed, length_mm=length + (0 if fast is None else 2.0),
+              skew_deg=skew, rotation_deg=rotation, stalls=[(stall * length, 0.01)],
+              backtracks=[(back * length, 0.2)], too_fast=[] if fast is None else [(fast * length, 1.5)],
+              rng=seed)
     m = make_motion(profile, **kw)
     t = m.n_frames
     assert t >= 2
@@ -227,13 +231,23 @@ def test_motion_properties(profile, speed, length, fr, skew, rotation, stall, ba
     pos = m.positions_px()
     np.testing.assert_array_equal(pos[0], 0.0)
     assert not m.centre_um.flags.writeable
-    # Continuity: no too-fast segment, so per-frame steps are bounded by the fastest documented
-    # profile speed (1.8x mean) plus the tremor speed 2 pi f A.
+    # Continuity: outside too-fast segments (steps within a gap event or next to one), per-frame steps are bounded by the fastest documented profile speed (1.8x mean)
+    # plus the tremor speed 2 pi f A. Steps inside gap events reach n_rows (8) or more.
     bound = (1.8 * speed * 1e3 + 2 * np.pi * 12.0 * m.tremor_um) / fr / PITCH
-    assert np.abs(np.diff(pos, axis=0)).max() <= bound * (1 + 1e-9)
+    step = np.abs(np.diff(pos, axis=0)).max(1)
+    near_gap = np.zeros(t - 1, bool)
     for e in m.events:
         assert e.kind in EVENT_KINDS and 0 <= e.first_frame <= e.last_frame < t
-    assert not [e for e in m.events if e.kind == "gap"]
+        if e.kind == "gap":
+            near_gap[max(0, e.first_frame - 1):e.last_frame + 2] = True
+            assert np.all(np.abs(np.diff(pos[e.first_frame:e.last_frame + 1, 0])) >= 8)
+    assert np.all(step[~near_gap] <= bound * (1 + 1e-9))
+    # Every step of n_rows or more is flagged (fast profiles at 1 kHz can gap without a
+    # too-fast segment: 1.8 x 300 mm/s is 10.6 rows per frame), and a too-fast segment always is.
+    big = np.flatnonzero(np.abs(np.diff(pos[:, 0])) >= 8)
+    assert np.all(near_gap[big])
+    if fast is not None:
+        assert near_gap.any()
     # Determinism by seed.
     again = make_motion(profile, **kw)
     np.testing.assert_array_equal(again.centre_um, m.centre_um)
