@@ -217,11 +217,11 @@ def test_bad_arguments(kwargs, exc, match):
        fast=st.one_of(st.none(), st.floats(0.0, 0.9)), seed=st.integers(0, 2 ** 32 - 1))
 def test_motion_properties(profile, speed, length, fr, skew, rotation, stall, back, fast, seed):
     # A too-fast segment (default 12 rows per frame for 8 rows) of 1.5 mm spans at least two
-    # frame steps, so it must show as a gap.
+    # frame steps, so it must show as a gap; it is placed after the stall and the backtrack.
     kw = dict(frame_rate_hz=fr, speed_mm_s=speed, length_mm=length + (0 if fast is None else 2.0),
               skew_deg=skew, rotation_deg=rotation, stalls=[(stall * length, 0.01)],
-              backtracks=[(back * length, 0.2)], too_fast=[] if fast is None else [(fast * length, 1.5)],
-              rng=seed)
+              backtracks=[(back * length, 0.2)],
+              too_fast=[] if fast is None else [(length + 0.5 * fast, 1.5)], rng=seed)
     m = make_motion(profile, **kw)
     t = m.n_frames
     assert t >= 2

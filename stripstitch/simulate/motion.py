@@ -368,7 +368,7 @@ def make_motion(profile="constant", *, frame_rate_hz=4000.0, speed_mm_s=100.0, l
         ``duration_s``. Default is ().
     backtracks : sequence of (position_mm, distance_mm), optional
         At ``position_mm`` the finger reverses by ``distance_mm`` (raised-cosine excursion,
-        peak reverse speed equal to the local forward speed), then continues. Default is ().
+        peak reverse speed equal to the forward speed on the way in), then continues. Default is ().
     too_fast : sequence of (start_mm, length_mm[, speed_mm_s]), optional
         Stretches of the forward travel covered at ``speed_mm_s`` (default: 1.5 x ``n_rows``
         rows per frame, i.e. gaps). Default is ().
@@ -469,7 +469,9 @@ def make_motion(profile="constant", *, frame_rate_hz=4000.0, speed_mm_s=100.0, l
     t_fwd = np.concatenate([[0.0], np.cumsum(np.diff(grid) / v_mid)])
 
     def local_speed(p):
-        return float(np.interp(p, mids, v_mid)) if mids.size else v_base
+        """Speed of the forward path on its way into travel p (the approach speed)."""
+        i = int(np.clip(np.searchsorted(grid, p, side="left") - 1, 0, v_mid.size - 1))
+        return float(v_mid[i])
 
     # 2. Insert stalls and backtracks in time, in order of position.
     incidents = sorted([(p * 1e3, 0, d) for p, d in stall_list] + [(p * 1e3, 1, d * 1e3) for p, d in back_list],
