@@ -303,9 +303,10 @@ def expand_grid(grid, **fixed):
 
 
 def case_id(case):
-    """Stable 16-hex-digit id of a case (hash of its parameters, without ``case_id``)."""
+    """Stable id of a case: "c" + 16 hex digits of a hash of its parameters (without
+    ``case_id``); the letter keeps CSV readers from taking it for a number."""
     body = {k: case[k] for k in sorted(case) if k != "case_id"}
-    return hashlib.sha1(json.dumps(body, sort_keys=True).encode()).hexdigest()[:16]
+    return "c" + hashlib.sha1(json.dumps(body, sort_keys=True).encode()).hexdigest()[:16]
 
 
 @functools.lru_cache(maxsize=16)
@@ -483,7 +484,7 @@ def read_table(path):
         return SweepTable(tuple(t.to_pylist()), tuple(t.column_names))
     with open(path, newline="") as fh:
         r = csv.DictReader(fh)
-        rows = tuple({k: _parse(v) for k, v in row.items()} for row in r)
+        rows = tuple({k: (v if k == "case_id" else _parse(v)) for k, v in row.items()} for row in r)
         return SweepTable(rows, tuple(r.fieldnames or ()))
 
 

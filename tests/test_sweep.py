@@ -75,6 +75,7 @@ def test_local_processes_match_serial_and_resume(tmp_path):
     for r in serial.rows:
         assert back[r["case_id"]] == dict(r)
     assert first.rows[0]["case_id"] in back
+    assert all(isinstance(k, str) and k.startswith("c") for k in back)   # ids stay strings
 
 
 def test_resume_from_journal_of_interrupted_run(tmp_path):
