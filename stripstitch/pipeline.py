@@ -19,43 +19,83 @@ __all__ = ["stitch"]
 MODES = ("default", "fast")
 
 
-def _pick_partners(chain_pos, failed, targets_px, time_lags):
-    """Choose long-baseline partners along the chain of contact frames.
+def _pick_partners(chain_pos, failed, targets, *, max_lag=2048, chunk=256):
+    """Choose partners along the chain of contact frames whose displacement is nearly whole.
 
-    For each chain index k and each target displacement D, the partner is the farthest frame
-    on a ladder of lags whose coarse displacement from k stays within D, not crossing a failed
-    link; ``time_lags`` add partners at fixed lags where the displacement is small (stalls).
+    Two frames whose relative displacement is an integer number of pixels sample the finger
+    on the same grid, so the aliasing of the sharp ridge edges (a plate samples a ridge profile
+    much sharper than its pitch) cancels between them; at half-pixel displacements it does
+    not, and the shift estimate picks up an error of the order of a few hundredths of a pixel.
+    For each frame and each integer target displacement ``n`` (along the swipe, either
+    direction) the partner is the frame, within ``max_lag`` and not across a failed link,
+    whose coarse displacement is closest to (n, round(across)). Target 0 pairs frames of a
+    stall with the latest frame still in place.
+
+    Returns
+    -------
+    (P, 2) int array of chain indices (i < j), and (P,) the distance of each pair's
+    displacement from the nearest whole pixel (max over both axes).
     """
     n = len(chain_pos)
-    lags = np.unique(np.round(np.geomspace(1, max(2, n - 1), 40)).astype(np.int64))
-    lags = lags[lags < n]
-    # Failed links are cumulative-summed so a pair crossing one is recognised.
     fail_cum = np.concatenate([[0], np.cumsum(failed.astype(np.int64))])
-    k = np.arange(n)
-    out = []
-    for target in targets_px:
-        best = np.full(n, -1, dtype=np.int64)
-        for lag in lags:
-            j = k + lag
-            ok = j < n
-            jj = np.minimum(j, n - 1)
-            disp = np.abs(chain_pos[jj] - chain_pos[k])
-            ok &= (disp[:, 0] <= target) & (disp[:, 1] <= max(target, 3.0))
-            ok &= fail_cum[jj] == fail_cum[k]
-            best = np.where(ok, jj, best)
-        sel = best > k + 1
-        out.append(np.stack([k[sel], best[sel]], 1))
-    for lag in time_lags:
-        j = k + lag
-        ok = j < n
+    k_lag = int(min(max_lag, n - 1))
+    if k_lag < 2:
+        return np.zeros((0, 2), dtype=np.int64), np.zeros(0)
+    lags = np.arange(1, k_lag + 1)
+    out_i, out_j, out_c = [], [], []
+    for s in range(0, n, chunk):
+        k = np.arange(s, min(n, s + chunk))
+        j = k[:, None] + lags[None, :]
+        valid = j < n
         jj = np.minimum(j, n - 1)
-        disp = np.abs(chain_pos[jj] - chain_pos[k])
-        ok &= (disp[:, 0] <= targets_px[-1]) & (fail_cum[jj] == fail_cum[k])
-        out.append(np.stack([k[ok], jj[ok]], 1))
-    if not out:
-        return np.zeros((0, 2), dtype=np.int64)
-    pairs = np.unique(np.concatenate(out), axis=0)
-    return pairs
+        valid &= fail_cum[jj] == fail_cum[k][:, None]
+        disp = chain_pos[jj] - chain_pos[k][:, None, :]
+        da = np.abs(disp[..., 0])
+        fa = np.abs(disp[..., 1] - np.round(disp[..., 1]))
+        for target in targets:
+            if target == 0:
+                cost = np.hypot(da, disp[..., 1])
+                ok = valid & (cost < 0.1) & (lags[None, :] >= 16)
+                # the latest frame still in place
+                score = np.where(ok, lags[None, :], -1)
+                best = np.argmax(score, axis=1)
+                sel = score[np.arange(len(k)), best] > 0
+                c = cost[np.arange(len(k)), best]
+            else:
+                cost = np.maximum(np.abs(da - target), fa)
+                cost = np.where(valid & (np.abs(disp[..., 1]) <= max(target, 3.0)), cost, np.inf)
+                best = np.argmin(cost, axis=1)
+                c = cost[np.arange(len(k)), best]
+                sel = np.isfinite(c) & (c < 0.5)
+            out_i.append(k[sel])
+            out_j.append(jj[np.arange(len(k)), best][sel])
+            out_c.append(c[sel])
+    pi = np.concatenate(out_i)
+    pj = np.concatenate(out_j)
+    pc = np.concatenate(out_c)
+    keep = pj > pi + 1
+    pairs = np.stack([pi[keep], pj[keep]], 1)
+    pairs, first = np.unique(pairs, axis=0, return_index=True)
+    return pairs, pc[keep][first]
+
+
+def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
+    """Add a model-error covariance to each pair's noise covariance and invert back.
+
+    The noise-only information (from the Gauss-Newton Hessian and residual) ignores errors
+    that do not average out over a pair: the aliasing of ridge edges, which vanishes at
+    whole-pixel displacements and is largest near half a pixel, and interpolation error.
+    Their allowance is ``(floor + alias * 2 d)^2`` per axis, d the distance of the
+    displacement from the nearest whole pixel (0..0.5).
+    """
+    d = np.abs(shift - np.round(shift))
+    s = floor_px + alias_px * 2.0 * d                           # (P, 2)
+    eye = np.eye(2)[None]
+    reg = info + eye * 1e-12 * (np.trace(info, axis1=1, axis2=2)[:, None, None] + 1e-12)
+    cov = np.linalg.inv(reg) + eye * (s ** 2)[:, :, None]
+    out = np.linalg.inv(cov)
+    out[np.trace(info, axis1=1, axis2=2) <= 0] = 0.0
+    return out
 
 
 def _confidence(frame_info, contact, pair_ok_frac):
@@ -211,9 +251,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                               max_across=max_across_px, prior=trend)
     atlas = _reg._Atlas(prep.z)
     grads = _reg._template_gradients(prep.z)
-    iters = 3 if fast else 5
     est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=rotation,
-                               iterations=iters, smooth_first=not fast, atlas=atlas, grads=grads)
+                               iterations=2 if fast else 3, atlas=atlas, grads=grads)
     # A link fails when nothing overlaps: the coarse NCC is at noise level or the refined
     # overlap is too small to place the frame.
     link_ok = est_c.ok & (est_c.ncc > 0.5) & (score > 0.3)
@@ -223,48 +262,68 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     chain_steps = np.where(np.isfinite(chain_steps), chain_steps, fill)
     chain_pos = np.vstack([[0.0, 0.0], np.cumsum(chain_steps, axis=0)])
 
-    # ---- longer baselines ----
-    reach = 0.7 * (r_n - 1)
-    targets = [reach] if fast else [0.4 * (r_n - 1), reach]
-    lags = () if fast else (32, 256)
-    lp = _pick_partners(chain_pos, ~link_ok, targets, lags)
-    pairs = cpairs[link_ok]
-    init = est_c.shift[link_ok]
-    if len(lp):
-        lpairs = chain[lp]
-        linit = chain_pos[lp[:, 1]] - chain_pos[lp[:, 0]]
-        pairs = np.concatenate([pairs, lpairs])
-        init = np.concatenate([init, linit])
+    # ---- longer baselines, at nearly whole-pixel displacements ----
+    # Longest target: at least two rows of overlap. Pass 1 uses short targets only (the
+    # chain it predicts them from drifts where half-pixel steps are aliased); pass 2 picks
+    # the long baselines from pass 1's solved trajectory.
+    reach = max(1, min(r_n - 2, int(np.floor(0.75 * (r_n - 1)))))
+    short_targets = sorted({1, min(2, reach)})
+    long_targets = sorted({0, 1, max(1, reach // 2), reach})
+    iters = 2 if fast else 3
+
+    def build_pairs(cpos, targets):
+        """Successive links that held, plus partners picked from chain positions ``cpos``;
+        every partner's start comes from a coarse search around the predicted shift."""
+        lp, _ = _pick_partners(cpos, ~link_ok, targets)
+        pairs = cpairs[link_ok]
+        init = est_c.shift[link_ok]
+        if len(lp):
+            lpairs = chain[lp]
+            pred = cpos[lp[:, 1]] - cpos[lp[:, 0]]
+            linit, _, _ = _reg.coarse_shifts(zn, lpairs, max_along=max_along,
+                                             max_across=max_across_px + 4, prior=pred,
+                                             prior_window_px=1.5)
+            pairs = np.concatenate([pairs, lpairs])
+            init = np.concatenate([init, linit])
+        return pairs, init
 
     def solve(pairs, init, init_angle=None):
         est = _reg.refine_shifts(prep, pairs, init, init_angle=init_angle,
                                  estimate_rotation=rotation, iterations=iters,
-                                 smooth_first=not fast, atlas=atlas, grads=grads)
+                                 atlas=atlas, grads=grads)
         good = est.ok & (est.ncc > 0.5) & (np.abs(est.shift - init).max(axis=1) < 1.5)
-        info = np.where(good[:, None, None], est.info, 0.0)
+        info = _with_model_error(est.info, est.shift)
+        info = np.where(good[:, None, None], info, 0.0)
         if rotation:
-            ang = _traj.solve_angles(t_n, pairs, est.angle_rad, np.where(good, est.angle_info, 0.0),
-                                     dt_frames, sigma_acc_rad=1e-5)
+            ang = _traj.solve_angles(t_n, pairs, est.angle_rad,
+                                     np.where(good, est.angle_info, 0.0), dt_frames,
+                                     sigma_acc_rad=1e-5)
         else:
             ang = np.zeros(t_n)
         tr = _traj.solve_positions(t_n, pairs, est.shift, info, ang, dt_frames,
                                    sigma_acc_px=motion_prior_px)
         return est, good, tr
 
+    pairs, init = build_pairs(chain_pos, long_targets if fast else short_targets)
     est, good, tr = solve(pairs, init)
     prep_used = prep
     if not fast:
-        # Re-estimate the fixed pattern against the fused image and refine again.
+        # Second pass: the fixed pattern re-estimated against the fused image, partners
+        # re-picked from the solved trajectory (the successive chain drifts where aliasing
+        # biases half-pixel steps), and everything refined again.
         prep2 = _refit_fixed_pattern(x, prep, tr.positions, np.degrees(tr.angles_rad))
         if prep2 is not None:
             prep = prep2
+            zn = _reg._row_normalise(prep.z, prep.plate_ok)
             atlas = _reg._Atlas(prep.z)
             grads = _reg._template_gradients(prep.z)
-            rot_i = _traj.rot(-tr.angles_rad[pairs[:, 0]])
-            init2 = np.einsum("pab,pb->pa", rot_i, tr.positions[pairs[:, 1]] - tr.positions[pairs[:, 0]])
+        # Solved positions in frame 0's axes -> chain positions for partner picking; each
+        # pass picks from a better trajectory.
+        for _ in range(2):
+            pairs, init = build_pairs(tr.positions[chain], long_targets)
             init_ang = tr.angles_rad[pairs[:, 1]] - tr.angles_rad[pairs[:, 0]]
-            est, good, tr = solve(pairs, init2, init_ang)
-            prep_used = prep
+            est, good, tr = solve(pairs, init, init_ang)
+        prep_used = prep
 
     positions = tr.positions
     angles_deg = np.degrees(tr.angles_rad)
