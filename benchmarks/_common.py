@@ -21,7 +21,16 @@ def environment():
     import scipy
     import skimage
 
-    return {"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
+    commit = os.environ.get("STRIPSTITCH_COMMIT")
+    if not commit:
+        import subprocess
+
+        try:
+            commit = subprocess.run(["git", "-C", HERE, "rev-parse", "--short", "HEAD"], capture_output=True,
+                                    text=True, timeout=10).stdout.strip() or None
+        except (OSError, subprocess.SubprocessError):
+            commit = None
+    return {"commit": commit, "python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
             "scikit-image": skimage.__version__, "opencv": cv2.__version__,
             "machine": platform.machine(), "cpu_count": os.cpu_count(),
             "date_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
