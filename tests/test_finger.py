@@ -386,3 +386,18 @@ def test_orientation_field_shapes_must_broadcast():
     with pytest.raises(ValueError, match=r"along_um and across_um must broadcast"):
         orientation_field(np.zeros(3), np.zeros(4))
     assert math.isclose(float(orientation_field(0.0, 1.0)), 0.0)
+
+
+def test_finger_constructor_copies_and_checks_shapes():
+    z = np.zeros((4, 5))
+    kw = dict(pattern="arch", spacing_um=10.0, ridge=z, height_um=z, contact=z, air_gap_um=z,
+              fluid_um=z, orientation_rad=z, period_um=z + 460.0, cores_um=np.zeros((0, 2)),
+              deltas_um=np.zeros((0, 2)), valley_depth_um=50.0, pressure=0.5, skin="normal")
+    f = Finger(**kw)
+    z[0, 0] = 1.0                                   # the caller's array is not shared
+    assert f.ridge[0, 0] == 0.0 and not f.ridge.flags.writeable
+    assert f.shape == (4, 5) and f.size_mm == pytest.approx((0.04, 0.05))
+    with pytest.raises(ValueError, match=r"contact must have the shape of ridge \(4, 5\)"):
+        Finger(**{**kw, "contact": np.zeros((3, 5))})
+    with pytest.raises(ValueError, match=r"ridge must be a 2-D \(H, W\) array"):
+        Finger(**{**kw, "ridge": np.zeros(5)})
