@@ -295,6 +295,23 @@ def test_npz_reader_rejects_other_files(tmp_path):
     np.savez(p, frames=np.zeros((2, 2, 2)))
     with pytest.raises(ValueError, match="is not a stripstitch capture archive"):
         Capture.from_npz(p)
+    np.savez(p, frames=np.zeros((2, 2, 2)), header=np.array('{"format": "stripstitch-capture", "format_version": 1}'))
+    with pytest.raises(ValueError, match="is a damaged stripstitch capture archive"):
+        Capture.from_npz(p)
+    np.savez(p, frames=np.zeros((2, 2, 2)), header=np.array('{"format": "stripstitch-capture", "format_version": 9}'))
+    with pytest.raises(ValueError, match="has format_version 9; this reader understands 1"):
+        Capture.from_npz(p)
+
+
+def test_noiseless_capture_has_infinite_snr_and_round_trips(tmp_path):
+    sensor = quiet_sensor(amp_noise_v_rms=0.0, temperature_K=0.0, hold_F=None)
+    m = make_motion(frame_rate_hz=1000.0, speed_mm_s=20.0, length_mm=0.1, start_um=(1900.0, 1900.0))
+    cap = capture(pattern_finger(), sensor, m, rng=0)
+    assert cap.snr_db == math.inf and cap.noise_v_rms == 0.0
+    cap.to_npz(tmp_path / "c.npz")
+    assert Capture.from_npz(tmp_path / "c.npz").snr_db == math.inf
+    with pytest.raises(ValueError, match="snr_db cannot be met"):
+        capture(flat_finger(0.0), quiet_sensor(), m, snr_db=20.0, rng=0)
 
 
 def test_simulator_does_not_import_the_reconstruction():

@@ -187,7 +187,8 @@ class Capture:
         header = {
             "format": NPZ_FORMAT, "format_version": NPZ_VERSION, "axis0": "along_swipe",
             "pitch_um": self.pitch_um, "frame_rate_hz": self.frame_rate_hz,
-            "n_frames": self.n_frames, "snr_db": self.snr_db, "noise_v_rms": self.noise_v_rms,
+            "n_frames": self.n_frames, "noise_v_rms": self.noise_v_rms,
+            "snr_db": self.snr_db if math.isfinite(self.snr_db) else str(self.snr_db),   # "inf", "-inf"
             "events": [e.to_dict() for e in self.events],
             "motion_events": [e.to_dict() for e in self.motion.events],
             "motion": _plain(motion_scalars), "motion_params": _plain(dict(self.motion.params)),
@@ -213,6 +214,13 @@ class Capture:
         if header.get("format_version") != NPZ_VERSION:
             raise ValueError(f"path {os.fspath(path)!r} has format_version {header.get('format_version')!r}; "
                              f"this reader understands {NPZ_VERSION}")
+        try:
+            return cls._from_arrays(arrays, header, Sensor, SensorUnit)
+        except (KeyError, TypeError) as exc:
+            raise ValueError(f"path {os.fspath(path)!r} is a damaged stripstitch capture archive: {exc!r}") from exc
+
+    @classmethod
+    def _from_arrays(cls, arrays, header, Sensor, SensorUnit):
         sensor = _sensor_from_dict(header["sensor"], Sensor)
         unit_kw = {k[5:]: v for k, v in arrays.items() if k.startswith("unit_")}
         unit = SensorUnit(sensor=sensor, **unit_kw)
@@ -225,7 +233,7 @@ class Capture:
                    angles=arrays["angles"], times_s=arrays["times_s"], true_image=arrays["true_image"],
                    true_origin_px=arrays["true_origin_px"], contact=arrays["contact"],
                    events=tuple(_event(e) for e in header["events"]),
-                   snr_db=np.nan if header["snr_db"] is None else header["snr_db"],
+                   snr_db=float(header["snr_db"]),
                    noise_v_rms=header["noise_v_rms"], finger=None, sensor=sensor, unit=unit, motion=motion,
                    finger_info=header["finger"], options=header["options"])
 
@@ -504,17 +512,28 @@ def capture(finger, sensor, motion, *, snr_db=None, exposure_steps=4, rng=None):
 
     # Noise for the requested SNR (signal: ideal amplifier output over in-contact plates).
     ideal_v = np.asarray(sensor.output_v(sense), dtype=np.float64)
-    signal_std = float(np.std(ideal_v[in_contact] if in_contact.any() else ideal_v))
+    signal = ideal_v[in_contact] if in_contact.any() else ideal_v
+    signal_std = float(np.std(signal))
+    if signal_std <= 1e-12 * float(np.abs(signal).max(initial=0.0)):
+        signal_std = 0.0                          # uniform up to rounding
     if snr_db is not None:
         ktc = float(dataclasses.replace(sensor, amp_noise_v_rms=0.0).noise_v_rms())
+        if signal_std == 0:
+            raise ValueError(f"snr_db cannot be met (got {snr_db!r}): the ideal signal does not vary over the "
+                             "in-contact plates (a uniform finger?); pass snr_db=None")
         target = signal_std / 10.0 ** (snr_db / 20.0)
         if target < ktc:
-            best = 20 * math.log10(signal_std / ktc) if ktc > 0 and signal_std > 0 else float("inf")
+            best = 20 * math.log10(signal_std / ktc)
             raise ValueError(f"snr_db must be at most {best:.2f} dB for this sensor and swipe (kT/C noise "
                              f"{ktc:.3e} V rms alone limits it); got {snr_db!r}")
         sensor = dataclasses.replace(sensor, amp_noise_v_rms=math.sqrt(target ** 2 - ktc ** 2))
     noise = float(sensor.noise_v_rms())
-    achieved = 20 * math.log10(signal_std / noise) if noise > 0 and signal_std > 0 else float("inf")
+    if noise == 0:
+        achieved = float("inf")
+    elif signal_std == 0:
+        achieved = float("-inf")
+    else:
+        achieved = 20 * math.log10(signal_std / noise)
     unit = sensor.realize(rng)
     readout = unit.readout(sense, rng=rng)
 
