@@ -174,6 +174,25 @@ def test_half_covered_plate_gives_half():
                                rtol=1e-12)
 
 
+def test_plate_integral_matches_scipy_uniform_filter():
+    # Reference: scipy.ndimage.uniform_filter (box mean over whole cells). With a plate exactly
+    # 5 cells wide (50.8 um plate on a 10.16 um grid) the area integral is the 5 x 5 box mean
+    # times the plate area; interior cells only (the filters' borders differ).
+    rng = np.random.default_rng(4)
+    gap = ndimage.gaussian_filter(rng.uniform(0.0, 60.0, (120, 90)), 2.0)
+    f = SimpleNamespace(air_gap_um=gap, fluid_um=0.2 * gap, spacing_um=10.16)
+    sensor = Sensor(plate_um=50.8, lateral_blur=False)
+    ours = plate_integral_map(f, sensor)
+    ref = ndimage.uniform_filter(sensor.capacitance_density_F_m2(gap, 0.2 * gap), size=5) * sensor.plate_area_m2
+    np.testing.assert_allclose(ours[5:-5, 5:-5], ref[5:-5, 5:-5], rtol=1e-12)
+    # A fractional plate (46 um = 4.53 cells) lies between the 3- and 5-cell box integrals
+    # (the density is positive, so a larger box integrates more).
+    frac = plate_integral_map(f, dataclasses.replace(sensor, plate_um=46.0))[5:-5, 5:-5]
+    box3 = ndimage.uniform_filter(sensor.capacitance_density_F_m2(gap, 0.2 * gap), size=3)[5:-5, 5:-5]
+    assert np.all(frac < ours[5:-5, 5:-5] * (1 + 1e-12))
+    assert np.all(frac > box3 * (3 * 10.16e-6) ** 2 * (1 - 1e-12))
+
+
 def test_off_finger_plates_see_the_far_gap():
     sensor = quiet_sensor()
     f = flat_finger(0.0, shape=(100, 100))
