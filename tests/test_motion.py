@@ -262,3 +262,15 @@ def test_human_motion_depends_on_seed():
     a = make_motion("human", length_mm=4.0, rng=1)
     b = make_motion("human", length_mm=4.0, rng=2)
     assert not np.array_equal(a.knot_travel_um, b.knot_travel_um)
+
+
+def test_velocity_matches_numerical_derivative():
+    # numpy.gradient (central differences) of the evaluated path as the reference derivative.
+    m = make_motion("human", speed_mm_s=100.0, length_mm=5.0, skew_deg=7.0, rng=8)
+    t = np.linspace(0.005, m.duration_s - 0.005, 3001)
+    c, _ = m.at(t)
+    num = np.gradient(c, t, axis=0)
+    np.testing.assert_allclose(m.velocity_um_s(t)[1:-1], num[1:-1], rtol=0, atol=0.01 * 100e3)
+    const = make_motion(speed_mm_s=80.0, length_mm=2.0, skew_deg=30.0)
+    np.testing.assert_allclose(const.velocity_um_s([0.001, 0.02]),
+                               [[80e3 * math.cos(math.radians(30)), 80e3 * math.sin(math.radians(30))]] * 2)

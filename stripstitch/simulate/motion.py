@@ -203,6 +203,23 @@ class Motion:
         angle = self.rotation_deg * 0.5 * (1.0 - np.cos(np.pi * frac))     # smooth ramp 0 -> total
         return centre, angle
 
+    def velocity_um_s(self, t_s):
+        """True velocity (along, across) of the finger point under the sensor centre, um/s.
+
+        The path's slope at each time (one-sided at knots: the segment that starts there)
+        along the swipe direction, plus the tremor's derivative; shape (N, 2).
+        """
+        t = np.atleast_1d(np.asarray(t_s, dtype=np.float64)).ravel()
+        kt, kp = self.knot_times_s, self.knot_travel_um
+        slope = np.diff(kp) / np.diff(kt)
+        i = np.clip(np.searchsorted(kt, t, side="right") - 1, 0, slope.size - 1)
+        vel = slope[i][:, None] * self.direction
+        if self.tremor_um > 0:
+            w = 2 * np.pi * self.tremor_hz
+            vel = vel + np.stack([self.tremor_um * w * np.cos(w * t + self.tremor_phase[0]),
+                                  0.5 * self.tremor_um * w * np.cos(w * t + self.tremor_phase[1])], -1)
+        return vel
+
     def stretch_displacement_um(self, points_um, t_s):
         """Elastic skin displacement (along, across) in micrometres at finger points and times.
 
