@@ -53,8 +53,8 @@ def swipe_extent_um(finger, sensor, *, margin_um=250.0):
 def swipe(pattern="right_loop", *, profile="constant", n_rows=8, n_cols=192, frame_rate_hz=4000.0,
           speed_mm_s=100.0, snr_db=30.0, skew_deg=0.0, rotation_deg=0.0, stalls=(), backtracks=(),
           too_fast=(), finger_size_mm=(20.0, 14.0), length_mm=None, drop_frames=(), tremor_um=None,
-          stretch_um=0.0, exposure_s=None, pressure=0.5, skin="normal", finger=None, sensor=None,
-          rng=None):
+          stretch_um=0.0, exposure_s=None, exposure_steps=4, pressure=0.5, skin="normal", finger=None,
+          sensor=None, rng=None):
     """Simulate one swipe in one call: finger, sensor, motion and capture.
 
     Parameters
@@ -85,6 +85,9 @@ def swipe(pattern="right_loop", *, profile="constant", n_rows=8, n_cols=192, fra
         a number: that travel, starting at the same point. Default is None.
     tremor_um, stretch_um, exposure_s : optional
         Passed to :func:`make_motion`. Defaults are None, 0.0, None.
+    exposure_steps : int, optional
+        Sub-steps averaged within each exposure (see :func:`capture`; 1 is fastest).
+        Default is 4.
     pressure : float, optional
         Finger pressure in [0, 1]. Default is 0.5.
     skin : {"normal", "dry", "wet"}, optional
@@ -124,4 +127,4 @@ def swipe(pattern="right_loop", *, profile="constant", n_rows=8, n_cols=192, fra
                          skew_deg=skew_deg, rotation_deg=rotation_deg, stalls=stalls, backtracks=backtracks,
                          too_fast=too_fast, drop_frames=drop_frames, tremor_um=tremor_um, stretch_um=stretch_um,
                          exposure_s=exposure_s, n_rows=sensor.n_rows, pitch_um=sensor.pitch_um, rng=seeds[1])
-    return capture(finger, sensor, motion, snr_db=snr_db, rng=seeds[2])
+    return capture(finger, sensor, motion, snr_db=snr_db, exposure_steps=exposure_steps, rng=seeds[2])
