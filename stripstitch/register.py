@@ -456,6 +456,9 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
     ia_all, ib_all = pairs[:, 0], pairs[:, 1]
     hess = np.zeros((p_n, n_par, n_par))
     grad = np.zeros((p_n, n_par))
+    # A ~ (1 + gamma) B: A's gradient is (1 + gamma) times B's, so the geometric columns are
+    # scaled by the gain found in the previous iteration (else a brighter frame converges slowly).
+    gscale = np.ones(p_n, dtype=np.float32)
     for it in range(max(1, iterations)):
         last = it == max(1, iterations) - 1
         hess[:] = 0.0
@@ -523,9 +526,10 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
                     # one sampled is (-theta (u1 - u1_block), theta u0).
                     av = av - tm * gb0 * (u1v - ucb) + tm * gb1 * u0v
                     r0 = (av - bv) * wmask
-                    cols = [gb0, gb1]
+                    gs = gscale[mem][:, None, None]
+                    cols = [gs * gb0, gs * gb1]
                     if estimate_rotation:
-                        cols.append(gb1 * u0v - gb0 * u1v)
+                        cols.append(gs * (gb1 * u0v - gb0 * u1v))
                     cols += [bv, np.broadcast_to(np.float32(1.0), bv.shape)]
                     jac = np.stack([c * wmask for c in cols], axis=1).reshape(m, n_par, -1)
                     r0f = r0.reshape(m, -1)
@@ -548,6 +552,7 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
         if last:
             # Residual sum of squares at the least-squares minimum: r'r - g' H^-1 g.
             rss = np.maximum(rr + np.einsum("mp,mp->m", grad, step), 0.0)
+        gscale = np.clip(1.0 - step[:, n_par - 2], 0.1, 10.0).astype(np.float32)
         sh += np.clip(step[:, :2], -1.0, 1.0)
         if estimate_rotation:
             th += np.clip(step[:, 2], -0.02, 0.02)

@@ -41,6 +41,8 @@ _SIGMA_NORMAL = 0.42         # Gabor envelope across the ridges, in periods (Cap
 _SIGMA_TANGENT = 0.75        # Gabor envelope along the ridges, in periods (longer: continuity)
 _FINGER_RADIUS_UM = 8000.0   # radius of curvature of the fingertip off the pad (assumed)
 _PAD_EDGE_UM = 400.0         # half-width of the soft pad edge (assumed)
+_INDENT_MIN = 0.15           # skin indentation on the pad at zero pressure, fraction of valley depth (assumed)
+_INDENT_SPAN = 0.35          # extra indentation at full pressure (assumed)
 _DRY_LIFT_UM = 5.0           # lift of a dry patch (assumed: "a few um")
 _DRY_AREA = 0.35             # area fraction of dry patches (assumed)
 _WET_LEVEL = (0.25, 0.55)    # moisture level range, as a fraction of the valley depth (assumed)
@@ -73,7 +75,9 @@ class Finger:
         pad, a smooth step between. It does not depend on the skin condition.
     air_gap_um : (H, W) ndarray of float64
         Air gap (>= 0) between a flat sensor surface and the skin when the finger is pressed:
-        ``valley_depth_um - height_um`` on the pad (0 on touching ridge crests), plus the lift
+        ``max(valley_depth_um - height_um - indent, 0)`` on the pad, where the indentation
+        ``valley_depth_um * (0.15 + 0.35 * pressure)`` flattens the ridge crests into contact
+        plateaus (0 where the ridges touch), plus the lift
         of dry patches, plus the lift of the skin curving away from the sensor off the pad
         (growing smoothly to several hundred um).
     fluid_um : (H, W) ndarray of float64
@@ -626,7 +630,14 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     contact = 1.0 - t * t * (3.0 - 2.0 * t)                        # smoothstep
     lift = np.maximum(dist + _PAD_EDGE_UM, 0.0) ** 2 / (2 * _FINGER_RADIUS_UM)
 
-    air_gap = (depth - height) + lift
+    # Pressed skin flattens where the undeformed surface would pass through the flat sensor
+    # (truncation model of a soft surface on a rigid flat, as in Greenwood & Williamson's
+    # treatment of contact; from memory): on the pad the skin is pushed in by an indentation
+    # that grows with pressure, so ridge crests become contact plateaus. At pressure 0.5 the
+    # plateaus are about 40 % of the ridge period (about 180 um at 460 um), inside the 100 to
+    # 300 um ridge widths of the Handbook of Fingerprint Recognition (2nd ed., ch. 3).
+    indent = depth * (_INDENT_MIN + _INDENT_SPAN * pressure) * contact
+    air_gap = np.maximum((depth - height) - indent, 0.0) + lift
     fluid = np.zeros((h, w))
     if skin == "dry":
         # patches about a ridge width across (150 um correlation length, assumed), drawn on
