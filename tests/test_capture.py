@@ -420,3 +420,16 @@ def test_truth_agrees_with_scikit_image_phase_correlation():
     errors = np.abs(np.array(errors))
     assert len(errors) >= 10
     assert np.median(errors[:, 0]) < 0.15 and np.median(errors[:, 1]) < 0.15   # 2.5 px along, 0.22 across
+
+
+def test_adc_clips_at_both_ends():
+    # A narrow ADC input range (0.1-0.3 V) puts valleys below and ridges above it: delivered
+    # codes clip to 0 and 2**bits - 1 while the ideal (unclipped) codes run past both ends.
+    sensor = quiet_sensor(adc_range_v=(0.1, 0.3), adc_bits=8)
+    cap = swipe(sensor=sensor, finger=small_finger(), frame_rate_hz=1000.0, snr_db=None, rng=1)
+    assert cap.ideal_frames.min() < 0 and cap.ideal_frames.max() > 255
+    assert int(cap.frames.min()) == 0 and int(cap.frames.max()) == 255
+    margin = 6 * cap.noise_v_rms / sensor.lsb_v                 # six noise sigmas, in codes
+    np.testing.assert_array_equal(cap.frames[cap.ideal_frames < -margin], 0)
+    np.testing.assert_array_equal(cap.frames[cap.ideal_frames > 255 + margin], 255)
+    assert (cap.ideal_frames < -margin).sum() > 100 and (cap.ideal_frames > 255 + margin).sum() > 100
