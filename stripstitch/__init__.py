@@ -1,8 +1,11 @@
 """Reconstruct geometrically true fingerprint images from swipe-strip capacitive sensor frames."""
 
 from ._types import Event, QualityReport, Reconstruction, ReconstructionError, LowOverlapWarning
+from .pipeline import stitch
+from . import calibrate, evaluate, io, mosaic, register, report, simulate, trajectory
 
 __version__ = "0.1.0"
 
-__all__ = ["Event", "QualityReport", "Reconstruction", "ReconstructionError", "LowOverlapWarning",
-           "__version__"]
+__all__ = ["stitch", "Event", "QualityReport", "Reconstruction", "ReconstructionError",
+           "LowOverlapWarning", "calibrate", "evaluate", "io", "mosaic", "register", "report",
+           "simulate", "trajectory", "__version__"]

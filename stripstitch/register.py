@@ -91,9 +91,7 @@ def prepare(frames, *, frame_weights=None):
     lo = float(np.percentile(texture0, 5))
     hi = float(np.percentile(texture0, 90))
     thresh = max(0.2 * hi, min(3.0 * lo, 0.5 * hi))
-    contact = texture0 > thresh
-    if contact.sum() < 2:
-        contact = texture0 >= np.sort(texture0)[-min(2, t_n)]
+    contact = texture0 > max(thresh, 1e-9 * (np.abs(x).max() + 1.0))
     dif = np.diff(x, axis=0)
     w = contact.astype(np.float64)
     if frame_weights is not None:
@@ -102,6 +100,9 @@ def prepare(frames, *, frame_weights=None):
     if w_sum <= 0:
         w = contact.astype(np.float64)
         w_sum = w.sum()
+    if w_sum <= 0:                      # no finger anywhere: uniform weights, caller decides
+        w = np.ones(t_n)
+        w_sum = float(t_n)
     wn = w / w_sum
     mean_c = np.einsum("t,trc->rc", wn, x)
     spread = np.sqrt(np.einsum("t,trc->rc", wn, (x - mean_c) ** 2))

@@ -1,0 +1,182 @@
+"""stitch(): trajectories and images against ground truth built by construction, events, errors.
+
+Frames are cut from a band-limited periodic texture at known positions by exact Fourier
+shifts (scipy.ndimage.fourier_shift, an outside reference), so the truth is exact.
+"""
+
+import numpy as np
+import pytest
+
+import stripstitch
+from conftest import band_texture, cut_frames
+from stripstitch import ReconstructionError, stitch
+
+
+@pytest.fixture(scope="module")
+def tex():
+    return band_texture((700, 96), seed=3)
+
+
+def _run(tex, steps, **kw):
+    pos = np.vstack([[0.0, 0.0], np.cumsum(np.asarray(steps, float), 0)])
+    pos[:, 0] += -pos[:, 0].min()
+    pos -= pos[0]
+    frames = cut_frames(tex, pos + [max(0.0, -np.min(pos[:, 0])) + 20.0, 0.0])
+    return pos, frames, stitch(frames, **kw)
+
+
+def _span_error(res, pos):
+    return np.ptp(res.positions[:, 0]) / np.ptp(pos[:, 0]) - 1.0
+
+
+def test_whole_pixel_speed_rebuilds_the_source(tex):
+    pos, frames, res = _run(tex, np.tile([2.0, 0.0], (79, 1)))
+    assert res.positions.dtype == np.float64 and res.positions[0].tolist() == [0.0, 0.0]
+    np.testing.assert_allclose(res.positions, pos, atol=0.03)
+    # The image equals the texture window it came from (Pearson correlation, numpy).
+    # frame 0 plate (0, 0) is texture pixel (28, 8) (cut_frames origin (8, 8), +20 along)
+    # and image pixel origin_px.
+    r0, c0 = np.round(res.origin_px).astype(int)
+    img = res.image[r0:, c0:c0 + 64]
+    src = tex[28:28 + img.shape[0], 8:8 + img.shape[1]]
+    ok = np.isfinite(img)
+    assert ok.mean() > 0.95
+    # 0.99: bilinear splatting blurs slightly (a tent kernel of one pixel).
+    assert np.corrcoef(img[ok], src[ok])[0, 1] > 0.99
+    assert res.report.verdict == "usable"
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16, np.uint8])
+def test_subpixel_speed_any_dtype(tex, dtype):
+    steps = np.tile([1.37, 0.21], (149, 1))
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0])
+    raw = (frames - frames.min()) / np.ptp(frames)
+    scale = {np.uint8: 250.0, np.uint16: 4000.0}.get(dtype, 1.0)
+    res = stitch((raw * scale).astype(dtype))
+    # Geometric-accuracy yardstick: the interim 500 ppi scanner spec allows 1.5 % over long
+    # distances (EFTS Appendix G, REFERENCE-VALUES.md section 4); we ask for 0.2 %.
+    assert abs(_span_error(res, pos)) < 0.002
+    tol = 0.15 if dtype is np.uint8 else 0.1       # 8-bit quantisation adds noise
+    err = res.positions - pos
+    assert np.sqrt((err ** 2).mean(0)).max() < tol
+    assert np.isfinite(res.image[res.weight >= 0.05]).all()
+
+
+def test_slow_swipe_does_not_drift(tex):
+    # 0.05 px per frame for 800 frames: a chain of successive estimates would accumulate
+    # its per-step bias 800 times; references at whole-pixel baselines keep the error small.
+    pos, frames, res = _run(tex, np.tile([0.05, 0.0], (799, 1)))
+    err = res.positions - pos
+    assert np.abs(err).max() < 0.25                     # measured: 0.18 px after 800 frames
+    assert abs(_span_error(res, pos)) < 0.01
+
+
+@pytest.mark.xfail(strict=True, reason="known defect: a 150-frame stall derails the trajectory "
+                   "(44 px error); see issue 3")
+def test_stall_and_backtrack_reported(tex):
+    steps = np.concatenate([np.tile([1.0, 0.0], (60, 1)), np.zeros((150, 2)),
+                            np.tile([1.0, 0.0], (40, 1)), np.tile([-0.8, 0.0], (20, 1)),
+                            np.tile([1.0, 0.0], (60, 1))])
+    pos, frames, res = _run(tex, steps, frame_rate_hz=4000.0)
+    err = res.positions - pos
+    assert np.abs(err).max() < 0.3
+    stalls = res.events_of("stall")
+    backs = res.events_of("backtrack")
+    assert len(stalls) == 1 and 50 <= stalls[0].first_frame <= 80 and 190 <= stalls[0].last_frame <= 220
+    assert len(backs) == 1 and 240 <= backs[0].first_frame <= 260
+    assert backs[0].details["distance_px"] == pytest.approx(16.0, abs=2.0)
+    # The backtracked stretch is placed where it belongs: positions revisit earlier rows.
+    assert res.positions[270, 0] < res.positions[250, 0]
+
+
+@pytest.mark.xfail(strict=True, reason="known defect: a 12-row jump on an 8-row strip is matched "
+                   "to a spurious overlap instead of being reported as a gap; see issue 3")
+def test_too_fast_gap_reported_not_invented(tex):
+    # A jump of 12 rows between two frames of an 8-row strip leaves 4 rows never seen.
+    steps = np.concatenate([np.tile([1.5, 0.0], (40, 1)), [[12.0, 0.0]], np.tile([1.5, 0.0], (40, 1))])
+    pos, frames, res = _run(tex, steps)
+    gaps = res.events_of("gap")
+    assert len(gaps) == 1 and gaps[0].first_frame == 40 and gaps[0].last_frame == 41
+    assert gaps[0].details["reason"] == "too_fast"
+    # The motion prior carries the placement across at the previous speed; the band between
+    # stays empty (NaN) rather than invented.
+    assert res.report.n_gaps == 1 and res.report.verdict == "unusable"
+    rows_nan = np.isnan(res.image).all(axis=1)
+    assert rows_nan.any()
+
+
+def test_dropped_frames_with_timestamps(tex):
+    steps = np.tile([1.0, 0.1], (99, 1))
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0])
+    keep = np.setdiff1d(np.arange(100), [50, 51, 52])
+    ts = keep / 4000.0
+    res = stitch(frames[keep], timestamps_s=ts)
+    gaps = res.events_of("gap")
+    assert gaps and gaps[0].details["reason"] == "dropped_frames" and gaps[0].details["dropped_frames"] == 3
+    err = res.positions - (pos[keep] - pos[keep][0])
+    assert np.abs(err).max() < 0.1
+    assert res.frame_rate_hz == pytest.approx(4000.0)
+
+
+def test_slanted_swipe_reported_as_skew(tex):
+    ang = np.deg2rad(12.0)
+    pos, frames, res = _run(tex, np.tile([1.2 * np.cos(ang), 1.2 * np.sin(ang)], (149, 1)))
+    sk = res.events_of("skew")
+    assert len(sk) == 1 and sk[0].details["skew_deg"] == pytest.approx(12.0, abs=0.5)
+    assert res.report.skew_deg == pytest.approx(12.0, abs=0.5)
+
+
+def test_output_pitch_resamples_to_500_ppi(tex):
+    steps = np.tile([1.5, 0.0], (79, 1))
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0])
+    native = stitch(frames, pitch_um=50.0)
+    res = stitch(frames, pitch_um=50.0, output_pitch_um=50.8)
+    np.testing.assert_allclose(res.ppi, 500.0)          # 25400 / 50.8 (definition of ppi)
+    ratio = res.image.shape[0] / native.image.shape[0]
+    assert ratio == pytest.approx(50.0 / 50.8, abs=0.02)
+
+
+def test_public_api_and_result_is_frozen(tex):
+    assert stripstitch.stitch is stitch
+    pos, frames, res = _run(tex, np.tile([1.0, 0.0], (39, 1)))
+    with pytest.raises(ValueError, match="read-only"):
+        res.positions[0, 0] = 1.0
+    d = res.report.to_dict()
+    assert d["verdict"] in ("usable", "unusable") and "swipe_length_mm" in d
+    assert all(e.to_dict()["kind"] for e in res.events) or not res.events
+
+
+def test_no_finger_raises():
+    rng = np.random.default_rng(0)
+    with pytest.raises(ReconstructionError, match="no finger"):
+        stitch(np.full((50, 8, 64), 14.0) + 0.0 * rng.standard_normal((50, 8, 64)))
+
+
+@pytest.mark.parametrize("frames, kw, match", [
+    (np.zeros((8, 64)), {}, r"frames must have shape \(n_frames"),
+    (np.zeros((1, 8, 64)), {}, "at least 2 frames"),
+    (np.zeros((5, 1, 64)), {}, "at least 2 rows"),
+    (np.full((5, 8, 64), np.nan), {}, "NaN or inf"),
+    (np.zeros((5, 8, 64)), {"mode": "turbo"}, "mode must be one of"),
+    (np.zeros((5, 8, 64)), {"pitch_um": -1.0}, "pitch_um must be a finite number > 0"),
+    (np.zeros((5, 8, 64)), {"timestamps_s": [0, 1, 1, 2, 3]}, "strictly increasing"),
+    (np.zeros((5, 8, 64)), {"timestamps_s": [0, 1, 2]}, r"timestamps_s must have shape \(5\)"),
+])
+def test_bad_input_errors(frames, kw, match):
+    with pytest.raises((ValueError, TypeError), match=match):
+        stitch(frames, **kw)
+
+
+@pytest.mark.xfail(strict=True, reason="known limitation: on simulated capacitive frames "
+                   "(aliased ridge edges, ridges along the swipe on a 64-column strip) the "
+                   "coarse search fails on about a third of successive pairs; see issue 3")
+def test_simulated_swipe_span_within_one_percent():
+    from stripstitch import simulate
+    cap = simulate.swipe("right_loop", rng=2, n_cols=64, finger_size_mm=(12.0, 8.0), snr_db=30.0)
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz)
+    c = cap.contact > 0.5
+    span = np.ptp(res.positions[c, 0]) / np.ptp(cap.positions[c, 0]) - 1.0
+    assert abs(span) < 0.01
