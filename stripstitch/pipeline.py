@@ -242,13 +242,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
     zn = _reg._row_normalise(prep.z, prep.plate_ok)
     max_along = r_n - 1
-    coarse, score, _ = _reg.coarse_shifts(zn, cpairs, max_along=max_along,
-                                          max_across=max_across_px)
-    if len(coarse) >= 5:
-        trend = np.stack([ndimage.median_filter(coarse[:, k], size=9, mode="nearest")
-                          for k in range(2)], 1)
-        coarse, score, _ = _reg.coarse_shifts(zn, cpairs, max_along=max_along,
-                                              max_across=max_across_px, prior=trend)
+    pool = max(2, int(round(0.002 * frame_rate_hz))) if frame_rate_hz else 8
+    coarse, score, _ = _reg.coarse_chain(zn, cpairs, max_along=max_along,
+                                         max_across=max_across_px, pool=pool)
     atlas = _reg._Atlas(prep.z)
     grads = _reg._template_gradients(prep.z)
     est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=rotation,

@@ -82,9 +82,11 @@ def prepare(frames, *, frame_weights=None):
     t_n, r_n = x.shape[0], x.shape[1]
     # Per-plate median over time removes most of the fixed pattern robustly; what is left per
     # frame is finger texture plus temporal noise: its spread tells contact from no contact.
-    med = np.median(x, axis=0)
-    resid = x - med
-    texture0 = np.sqrt(np.mean(resid ** 2, axis=(1, 2)))
+    # Texture within each frame (differences between neighbouring columns): ridge edges
+    # dominate it when a finger is on, fixed pattern and noise when not. A measure relative
+    # to each plate's median over time would call a long stall "no contact" (the median
+    # then is the stalled finger).
+    texture0 = np.sqrt(np.mean(np.diff(x, axis=2) ** 2, axis=(1, 2)))
     # Contact: texture well above the quietest frames (blank frames show only noise) and not
     # far below the typical frame. Frame differences are no noise estimate while the finger
     # moves, so only the texture spread itself is used.
@@ -162,7 +164,7 @@ def _next_fast_len(n):
 
 
 def coarse_shifts(zn, pairs, *, max_along, max_across, prior=None, prior_window_px=1.5,
-                  chunk=2048):
+                  chunk=2048, return_surfaces=False):
     """Integer-pixel search by normalised cross-correlation, with a parabolic sub-pixel start.
 
     Parameters
@@ -200,6 +202,7 @@ def coarse_shifts(zn, pairs, *, max_along, max_across, prior=None, prior_window_
     shift = np.zeros((p_n, 2))
     score = np.zeros(p_n)
     nsel = np.zeros(p_n, dtype=np.int64)
+    surfaces = np.zeros((p_n, len(d), len(e)), dtype=np.float32) if return_surfaces else None
     fz = sfft.rfft2(zn, s=(n_r, n_c), axes=(1, 2), workers=1)
     for s in range(0, p_n, chunk):
         pi = pairs[s:s + chunk, 0]
@@ -207,6 +210,8 @@ def coarse_shifts(zn, pairs, *, max_along, max_across, prior=None, prior_window_
         # corr[d, e] = sum A[r + d, c + e] B[r, c]  (A = frame i, B = frame j)
         corr = sfft.irfft2(fz[pi] * np.conj(fz[pj]), s=(n_r, n_c), axes=(1, 2), workers=1)
         surf = corr[:, d % n_r][:, :, e % n_c] / n_ov[None]
+        if surfaces is not None:
+            surfaces[s:s + chunk] = surf
         lcb = surf - 2.0 / np.sqrt(n_ov)[None]
         flat = lcb.reshape(len(pi), -1)
         if prior is not None:
@@ -241,6 +246,8 @@ def coarse_shifts(zn, pairs, *, max_along, max_across, prior=None, prior_window_
         shift[s:s + chunk, 1] = e[ke] + sub[:, 1]
         score[s:s + chunk] = surf[idx, kd, ke]
         nsel[s:s + chunk] = n_ov[kd, ke]
+    if return_surfaces:
+        return shift, score, nsel, surfaces
     return shift, score, nsel
 
 
@@ -391,7 +398,8 @@ def _column_blocks(c_n, n_blocks):
 
 
 def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation=True,
-                  iterations=3, atlas=None, grads=None, chunk=512, smooth_first=None):
+                  iterations=3, atlas=None, grads=None, chunk=512, smooth_first=None,
+                  prior_px=0.5):
     """Refine pairwise shifts by inverse-compositional Gauss-Newton (Lucas-Kanade).
 
     For each pair (i, j), with B = frame j on its own pixel grid and A = frame i, minimise
@@ -422,6 +430,11 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
         Estimate theta (else held at ``init_angle``). Default is True.
     iterations : int
         Gauss-Newton iterations. Default is 3.
+    prior_px : float or None
+        Standard deviation of a weak Gaussian prior of the shift around its start, so that
+        along an ambiguous direction (ridges parallel to the shift: the aperture problem) the
+        estimate stays at its start instead of wandering; the returned information excludes
+        it. Default is 0.5. None disables it.
 
     Returns
     -------
@@ -460,10 +473,13 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
     # A ~ (1 + gamma) B: A's gradient is (1 + gamma) times B's, so the geometric columns are
     # scaled by the gain found in the previous iteration (else a brighter frame converges slowly).
     gscale = np.ones(p_n, dtype=np.float32)
+    sh0 = sh.copy()
     for it in range(max(1, iterations)):
         last = it == max(1, iterations) - 1
         hess[:] = 0.0
         grad[:] = 0.0
+        rr_it = np.zeros(p_n)
+        nv_it = np.zeros(p_n)
         if last:
             rr = np.zeros(p_n)
             nv = np.zeros(p_n)
@@ -534,6 +550,8 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
                     cols += [bv, np.broadcast_to(np.float32(1.0), bv.shape)]
                     jac = np.stack([c * wmask for c in cols], axis=1).reshape(m, n_par, -1)
                     r0f = r0.reshape(m, -1)
+                    rr_it[mem] += np.einsum("mn,mn->m", r0f, r0f)
+                    nv_it[mem] += float(wmask.sum())
                     hess[mem] += np.matmul(jac, np.transpose(jac, (0, 2, 1)))
                     grad[mem] += np.matmul(jac, r0f[..., None])[..., 0]
                     if last:
@@ -549,7 +567,17 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
                         sab[mem] += np.einsum("mn,mn->m", af, bf)
         tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
         hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
-        step = -np.linalg.solve(hreg, grad[..., None])[..., 0]
+        gtot = grad
+        if prior_px is not None:
+            # Prior precision in the Hessian's units: residual variance / prior variance.
+            var_it = np.maximum(rr_it, 1e-12) / np.maximum(nv_it, 1.0)
+            lam = var_it / prior_px ** 2
+            hreg = hreg.copy()
+            hreg[:, 0, 0] += lam
+            hreg[:, 1, 1] += lam
+            gtot = grad.copy()
+            gtot[:, :2] += lam[:, None] * (sh - sh0)
+        step = -np.linalg.solve(hreg, gtot[..., None])[..., 0]
         if last:
             # Residual sum of squares at the least-squares minimum: r'r - g' H^-1 g.
             rss = np.maximum(rr + np.einsum("mp,mp->m", grad, step), 0.0)
@@ -586,3 +614,51 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
     # Noise sits in both frames; the residual variance is about twice one frame's.
     return PairEstimates(pairs=pairs, shift=sh, angle_rad=th, info=info, angle_info=ainfo,
                          sigma=np.sqrt(var / 2.0), n_valid=nv.astype(np.int64), ncc=ncc, ok=okp)
+
+
+def coarse_chain(zn, pairs, *, max_along, max_across, pool=8, penalty=0.005):
+    """Coarse shifts of successive frames, pooling evidence over neighbouring pairs.
+
+    Where ridges run straight over the whole strip, a single pair's correlation surface is
+    flat along the ridges (the aperture problem) and its peak is a guess. At kHz frame rates
+    the finger's velocity hardly changes over a few frames, so the surfaces of the
+    ``2 * pool + 1`` neighbouring pairs are averaged and each pair's coarse shift is the
+    pooled peak (parabolic sub-pixel fit), with a small quadratic penalty on sideways motion
+    (``penalty`` NCC units per px^2: a finger drifts sideways far less than it travels, and
+    the penalty decides only between nearly equal peaks). The Gauss-Newton refinement then
+    starts from there.
+
+    Returns
+    -------
+    shift : (P, 2) float64
+    score : (P,) float64
+        The pair's own NCC at the chosen integer shift.
+    pooled_score : (P,) float64
+        The pooled NCC at the peak.
+    """
+    _, _, _, surf = coarse_shifts(zn, pairs, max_along=max_along, max_across=max_across,
+                                  return_surfaces=True)
+    p_n = len(pairs)
+    r_n, c_n = zn.shape[1], zn.shape[2]
+    d = np.arange(-max_along, max_along + 1)
+    e = np.arange(-max_across, max_across + 1)
+    n_ov = (r_n - np.abs(d))[:, None] * (c_n - np.abs(e))[None, :]
+    lcb_pen = (2.0 / np.sqrt(n_ov)).astype(np.float32)
+    pooled = ndimage.uniform_filter1d(surf, 2 * pool + 1, axis=0, mode="nearest") if pool > 0 \
+        else surf
+    # Penalised peak on the pooled surface upsampled 4x by cubic interpolation: with oblique
+    # ridges the correlation is a ridge line between lattice points, and the best point on it
+    # (least sideways motion) is rarely a lattice point.
+    up = 4
+    score_s = pooled - lcb_pen[None]
+    fine = ndimage.zoom(score_s, (1, up, up), order=3, mode="nearest", grid_mode=False)
+    fd = np.linspace(d[0], d[-1], fine.shape[1])
+    fe = np.linspace(e[0], e[-1], fine.shape[2])
+    fine -= (penalty * fe.astype(np.float32) ** 2)[None, None, :]
+    k = np.argmax(fine.reshape(p_n, -1), axis=1)
+    kd, ke = np.unravel_index(k, fine.shape[1:])
+    shift = np.stack([fd[kd], fe[ke]], 1)
+    idx = np.arange(p_n)
+    id0 = np.clip(np.rint(shift[:, 0]).astype(int) - d[0], 0, len(d) - 1)
+    ie0 = np.clip(np.rint(shift[:, 1]).astype(int) - e[0], 0, len(e) - 1)
+    return shift, surf[idx, id0, ie0].astype(np.float64), pooled[idx, id0, ie0].astype(np.float64)
