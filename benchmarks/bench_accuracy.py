@@ -73,11 +73,11 @@ def make_capture(name, seed=0):
 
 COLUMNS = ["case", "method", "n_frames", "span_error_pct", "along_rms_px", "along_max_px",
            "across_rms_px", "rotation_rms_deg", "increment_rms_along_px", "crb_rms_along_px",
-           "ncc", "ssim", "distortion_rms_px", "scale_along", "period_ratio_along",
+           "ncc", "ssim", "overlap_fraction", "distortion_rms_px", "scale_along", "period_ratio_along",
            "period_ratio_across", "gap_true", "gap_detected", "gap_false", "stall_detected",
            "backtrack_detected", "verdict", "seconds"]
 HEADERS = ["case", "method", "T", "span err %", "along rms", "along max", "across rms",
-           "rot rms deg", "incr rms", "CRB rms", "NCC", "SSIM", "dist rms", "scale along",
+           "rot rms deg", "incr rms", "CRB rms", "NCC", "SSIM", "covered", "dist rms", "scale along",
            "period along", "period across", "gaps", "gaps found", "false gaps", "stalls found",
            "backtr found", "verdict", "s"]
 
@@ -133,7 +133,8 @@ def main(argv=None):
           "Positions in sensor pixels (50.8 um); errors over frames with contact >= 0.5, relative to "
           "frame 0; CRB = Cramer-Rao bound per pair (Robinson & Milanfar 2004), doubled for noise in "
           "both frames; image metrics after the best global translation; period = measured ridge "
-          "period ratio reconstruction / truth; scale = geometric scale from the block distortion map.\n\n"
+          "period ratio reconstruction / truth; scale = geometric scale from the block distortion map; "
+          "NCC and SSIM are over the covered pixels only (covered = fraction of the true image).\n\n"
           + t1 + "\n\n## Per method\n\n" + t2 + "\n")
     print()
     print(t1)
