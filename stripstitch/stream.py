@@ -1,0 +1,955 @@
+"""Streaming stitcher: frames in one at a time, final image rows and events out as they happen.
+
+``StreamingStitcher(**options)`` takes the options of :func:`stripstitch.stitch`; ``push(frame)``
+takes one (R, C) frame and returns a :class:`StreamUpdate` (image rows that are final, events
+found); ``finish()`` returns the same :class:`~stripstitch.Reconstruction` type as ``stitch``.
+
+Working memory is a fixed window (preallocated ring buffers, sizes in :meth:`memory_layout`):
+
+* ``window_frames`` frames (raw, prepared, twice-upsampled, gradients) and the pairs among them;
+* an accumulator strip of ``accumulator_rows`` x ``accumulator_cols`` output pixels (value and
+  weight) that scrolls with the finger.
+
+Per batch of ``batch_frames`` new frames: coarse NCC search and Gauss-Newton refinement of the
+successive pairs and of whole-pixel partners looking back within the window (the registration
+stage of the batch path), a robust least-squares solve of the window's positions with the
+frames that already left the solve held fixed, and fusion of the frames that become frozen.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+from scipy.special import erf
+
+from . import register as _reg
+from . import report as _report
+from . import trajectory as _traj
+from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
+from ._validate import check_choice, check_frame, check_int, check_positive
+
+__all__ = ["StreamingStitcher", "StreamUpdate"]
+
+MODES = ("default", "fast")
+
+
+@dataclass(frozen=True, eq=False)
+class StreamUpdate:
+    """What one ``push`` (or ``finish``) made final.
+
+    Attributes
+    ----------
+    rows : (K, W) ndarray of float64
+        Image rows that will not change any more (NaN where no data), in output pixels; K may
+        be 0. Rows come in order of ``row_index``.
+    weight : (K, W) ndarray of float64
+        Fusion weight behind each pixel of ``rows``.
+    row_index : (K,) ndarray of int64
+        Absolute output-grid row of each row (row 0 holds frame 0's plate row 0; negative
+        before it). Column j of a row is absolute output column ``j + first_col``.
+    first_col : int
+        Absolute output column of ``rows[:, 0]`` (column 0 holds frame 0's plate column 0).
+    events : tuple of Event
+        Events found since the previous update (gap, stall, backtrack, low_confidence,
+        no_contact with ``details["where"] == "lifted"`` when the finger left).
+    frames_frozen : int
+        Number of frames whose placement is final so far.
+    """
+
+    rows: np.ndarray
+    weight: np.ndarray
+    row_index: np.ndarray
+    first_col: int
+    events: tuple
+    frames_frozen: int
+
+    def __post_init__(self):
+        object.__setattr__(self, "rows", _frozen_array(self.rows))
+        object.__setattr__(self, "weight", _frozen_array(self.weight))
+        object.__setattr__(self, "row_index", _frozen_array(self.row_index, dtype=np.int64))
+        object.__setattr__(self, "events", tuple(self.events))
+        object.__setattr__(self, "first_col", int(self.first_col))
+        object.__setattr__(self, "frames_frozen", int(self.frames_frozen))
+
+
+class _RingAtlas:
+    """Stand-in for ``register._Atlas`` whose upsampled frames live in a ring buffer."""
+
+    def __init__(self, u, r_n, c_n):
+        self.u = u
+        self.r_n, self.c_n = r_n, c_n
+
+
+class StreamingStitcher:
+    """Stitch a swipe frame by frame in bounded memory.
+
+    Parameters
+    ----------
+    pitch_um : float, optional
+        Plate pitch in micrometres. Default is 50.8.
+    frame_rate_hz : float, optional
+        Nominal frame rate (speeds, stall detection). Default None (derived from the
+        timestamps given to ``push``, else times in frames).
+    timestamps_s : None
+        Accepted for symmetry with ``stitch``; pass per-frame times to ``push`` instead.
+        Default None.
+    calibration : object with ``apply(frames)``, optional
+        Applied to each frame before anything else. Default None.
+    mode : {"default", "fast"}
+        ``"fast"`` uses fewer partners and Gauss-Newton iterations. Default "default".
+    output_pitch_um : float or (2,) float, optional
+        Output pitch. Default None (the sensor pitch).
+    estimate_rotation : bool, optional
+        Accepted for symmetry with ``stitch``; the streaming path holds angles at 0.
+        Default True.
+    motion_prior_px : float, optional
+        Acceleration prior (px per frame squared). Default as ``stitch``.
+    max_across_px : int, optional
+        Largest lateral step searched between successive frames. Default C // 8 in 3..12.
+    window_frames : int, optional
+        Frames held for pairing and the sliding solve. Default 64.
+    batch_frames : int, optional
+        Frames estimated together; latency of a placement is up to ``window_frames``
+        frames. Default 16.
+    hold_rows : int, optional
+        Output rows held behind the frames still being solved, for backtracking (a
+        backtrack farther than this loses its samples on rows already handed out).
+        Default 64.
+    drift_cols : int, optional
+        Output columns on each side of the sensor width kept for lateral drift. Default 64.
+    fixed_pattern_frames : int, optional
+        Without finger-absent frames at the start, the fixed pattern is estimated from a
+        running mean over frames in contact, used once this many have been averaged (before
+        that only the mean level is removed). Default 512.
+    keep_history : bool, optional
+        Keep emitted rows and the per-frame trajectory so that ``finish()`` can return a
+        Reconstruction. With False, nothing grows with the swipe and ``finish()`` raises;
+        use ``flush()``. Default True.
+
+    Notes
+    -----
+    Fixed pattern: the per-plate mean of the finger-absent frames seen before the finger
+    arrived (at least 8), else the high-pass part of a running per-plate mean over frames in
+    contact (as ``register.prepare`` does over the whole swipe) once ``fixed_pattern_frames``
+    frames are in it; with a ``calibration`` the fixed pattern is taken as removed. Contact: the spatial texture
+    of a frame against the largest texture seen so far, decided when the frame is frozen.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy import ndimage
+    >>> tex = ndimage.gaussian_filter(np.random.default_rng(0).standard_normal((400, 64)), 2.0)
+    >>> s = StreamingStitcher()
+    >>> rows = sum(len(s.push(tex[2 * t: 2 * t + 8]).rows) for t in range(100))
+    >>> res = s.finish()
+    >>> bool(np.allclose(np.diff(res.positions[:, 0]), 2.0, atol=0.05))
+    True
+    """
+
+    def __init__(self, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, calibration=None,
+                 mode="default", output_pitch_um=None, estimate_rotation=True,
+                 motion_prior_px=None, max_across_px=None, window_frames=64, batch_frames=16,
+                 hold_rows=64, drift_cols=64, fixed_pattern_frames=512, keep_history=True):
+        self.pitch_um = check_positive(pitch_um, name="pitch_um")
+        self.frame_rate_hz = check_positive(frame_rate_hz, name="frame_rate_hz", allow_none=True)
+        if timestamps_s is not None:
+            raise ValueError("timestamps_s must be None for StreamingStitcher; pass each frame's "
+                             "time as push(frame, timestamp_s=...)")
+        self.mode = check_choice(mode, MODES, name="mode")
+        if calibration is not None and not hasattr(calibration, "apply"):
+            raise TypeError("calibration must have an apply(frames) method (a "
+                            f"stripstitch.calibrate.Calibration); got {type(calibration).__name__}")
+        self.calibration = calibration
+        if output_pitch_um is None:
+            self.out_pitch_um = np.array([self.pitch_um, self.pitch_um])
+        else:
+            self.out_pitch_um = np.broadcast_to(np.asarray(output_pitch_um, dtype=np.float64),
+                                                (2,)).copy()
+            for k in range(2):
+                check_positive(float(self.out_pitch_um[k]), name="output_pitch_um")
+        self.estimate_rotation = bool(estimate_rotation)
+        self.motion_prior_px = check_positive(motion_prior_px, name="motion_prior_px",
+                                              allow_none=True)
+        self.max_across_px = check_int(max_across_px, name="max_across_px", lo=1,
+                                       allow_none=True)
+        self.window = check_int(window_frames, name="window_frames", lo=8, hi=4096)
+        self.batch = check_int(batch_frames, name="batch_frames", lo=1, hi=self.window // 2)
+        self.hold_rows = check_int(hold_rows, name="hold_rows", lo=0)
+        self.drift_cols = check_int(drift_cols, name="drift_cols", lo=0)
+        self.fixed_pattern_frames = check_int(fixed_pattern_frames, name="fixed_pattern_frames",
+                                              lo=1)
+        self.keep_history = bool(keep_history)
+        self._shape = None
+        self._finished = False
+
+    # ------------------------------------------------------------------ set-up
+    def _setup(self, shape):
+        r_n, c_n = shape
+        if r_n < 3 or c_n < 8:
+            raise ValueError(f"frame must have at least 3 rows and 8 columns; got shape {shape}")
+        self._shape = (r_n, c_n)
+        w = self.window
+        if self.max_across_px is None:
+            self.max_across_px = int(np.clip(c_n // 8, 3, 12))
+        fr = self.frame_rate_hz
+        if self.motion_prior_px is None:
+            mp = (20.0 / fr ** 2 / (self.pitch_um * 1e-6)) if fr else 0.05
+            self.motion_prior_px = float(max(mp, 1e-3))
+        # Frame rings (slot = frame index % window).
+        self._raw = np.zeros((w, r_n, c_n), np.float64)
+        self._z = np.zeros((w, r_n, c_n), np.float32)
+        self._zn = np.zeros((w, r_n, c_n), np.float32)
+        self._up = np.zeros((w, 2 * r_n - 1 + 2 * _reg._PAD, 2 * c_n - 1 + 2 * _reg._PAD),
+                            np.float32)
+        self._g0 = np.zeros((w, r_n, c_n), np.float32)
+        self._g1 = np.zeros((w, r_n, c_n), np.float32)
+        self._pos = np.zeros((w, 2))
+        self._time = np.zeros(w)
+        self._tex = np.zeros(w)
+        self._frame_info = np.zeros((w, 2, 2))
+        self._okfrac = np.zeros(w)
+        self._link_ok = np.ones(w, bool)          # link (t-1, t) held
+        # Pair store: at most (n_targets + 1) pairs per frame within the window.
+        self._targets = self._pick_targets(r_n)
+        pmax = w * (len(self._targets) + 1)
+        self._p_ij = np.zeros((pmax, 2), np.int64)   # absolute frame indices
+        self._p_shift = np.zeros((pmax, 2))
+        self._p_info = np.zeros((pmax, 2, 2))
+        self._p_good = np.zeros(pmax, bool)
+        self._n_pairs = 0
+        # Accumulator strip (ring over absolute output rows).
+        pr = self.pitch_um / self.out_pitch_um                 # output px per sensor px
+        self._pitch_px = 1.0 / pr
+        span = int(np.ceil(self.window * r_n * pr[0])) + int(np.ceil(r_n * pr[0])) + 4
+        self._acc_h = span + 2 * self.hold_rows
+        self._col0 = -self.drift_cols
+        self._acc_w = int(np.ceil(c_n * pr[1])) + 2 * self.drift_cols + 2
+        self._acc = np.zeros((self._acc_h, self._acc_w))
+        self._wacc = np.zeros((self._acc_h, self._acc_w))
+        self._band = None                         # [lo, hi) absolute rows live in the strip
+        self._sealed = [False, False]             # rows emitted below lo / above hi
+        self._dropped = 0
+        # Fixed pattern and contact.
+        self._fp_sum = np.zeros((r_n, c_n))
+        self._fp_n = 0
+        self._blank_sum = np.zeros((r_n, c_n))
+        self._blank_n = 0
+        self._seen_contact = False
+        self._offset = None
+        self._scale = None
+        self._plate_ok = np.ones((r_n, c_n), bool)
+        self._tex_hi = 0.0
+        self._noise_sigma = 0.0
+        # Counters.
+        self._n = 0                # frames pushed
+        self._n_est = 0            # frames whose pairs are estimated
+        self._n_frozen = 0
+        self._last_t = None
+        # Online event state.
+        self._ev_contact = False
+        self._ev_stall_start = None
+        self._ev_stall_sent = False
+        self._ev_back_start = None
+        self._ev_back_sent = False
+        self._ev_low_start = None
+        self._ev_low_sent = False
+        self._ev_dir = 0.0
+        # History (grows with the swipe; only with keep_history).
+        self._h_pos, self._h_conf, self._h_contact, self._h_tex = [], [], [], []
+        self._h_link_ok, self._h_time = [], []
+        self._h_rows = []          # (row_index, values, weight)
+
+    @staticmethod
+    def _pick_targets(r_n):
+        reach = max(1, min(r_n - 2, int(np.floor(0.75 * (r_n - 1)))))
+        return tuple(sorted({0, 1, max(1, reach // 2), reach}))
+
+    def memory_layout(self):
+        """Sizes of the working buffers (they do not grow with the swipe).
+
+        Returns
+        -------
+        dict
+            ``window_frames``, ``frame_shape``, ``accumulator_rows``, ``accumulator_cols``,
+            ``max_pairs`` and ``bytes`` (total of the preallocated arrays).
+        """
+        if self._shape is None:
+            raise RuntimeError("memory_layout() needs the geometry: push a frame first")
+        arrays = (self._raw, self._z, self._zn, self._up, self._g0, self._g1, self._pos,
+                  self._time, self._tex, self._frame_info, self._okfrac, self._link_ok,
+                  self._p_ij, self._p_shift, self._p_info, self._p_good, self._acc, self._wacc)
+        return {"window_frames": self.window, "frame_shape": list(self._shape),
+                "accumulator_rows": self._acc_h, "accumulator_cols": self._acc_w,
+                "max_pairs": len(self._p_ij), "bytes": int(sum(a.nbytes for a in arrays))}
+
+    # ------------------------------------------------------------------ public
+    def push(self, frame, *, timestamp_s=None):
+        """Add one frame; return the rows and events that became final.
+
+        Parameters
+        ----------
+        frame : (R, C) array_like
+            One raw frame, any real dtype; the first frame sets the geometry.
+        timestamp_s : float, optional
+            The frame's time in seconds (strictly increasing). Default None (uniform).
+
+        Returns
+        -------
+        StreamUpdate
+        """
+        if self._finished:
+            raise RuntimeError("push() after finish(): start a new StreamingStitcher")
+        x = check_frame(frame, shape=self._shape)
+        if self._shape is None:
+            self._setup(x.shape)
+        if self.calibration is not None:
+            x = np.asarray(self.calibration.apply(x[None]), dtype=np.float64)[0]
+        if timestamp_s is not None:
+            t = check_positive(timestamp_s, name="timestamp_s", allow_zero=True)
+            if self._last_t is not None and t <= self._last_t:
+                raise ValueError(f"timestamp_s must be strictly increasing; got {t!r} after "
+                                 f"{self._last_t!r}")
+        else:
+            t = float(self._n)
+        if self._n == 0:
+            self._uses_times = timestamp_s is not None
+        elif self._uses_times != (timestamp_s is not None):
+            raise ValueError("timestamp_s must be given for every frame or for none; frame "
+                             f"{self._n} differs from the first")
+        self._last_t = t
+        s = self._n % self.window
+        self._raw[s] = x
+        self._time[s] = t
+        self._n += 1
+        events, rows = [], []
+        if self._n - self._n_est >= self.batch:
+            self._process(events, rows)
+        return self._update(events, rows)
+
+    def flush(self):
+        """Estimate, solve, freeze and fuse everything pushed so far; return the final update.
+
+        After ``flush()`` the stitcher is finished (no more frames).
+        """
+        if self._shape is None:
+            raise ReconstructionError("no frames were pushed")
+        events, rows = [], []
+        if not self._finished:
+            if self._n > self._n_est:
+                self._process(events, rows, final=True)
+            else:
+                self._freeze(self._n, events, rows)
+                self._emit(rows, everything=True)
+            self._finished = True
+        return self._update(events, rows)
+
+    def finish(self):
+        """Flush and return the whole swipe as a :class:`~stripstitch.Reconstruction`.
+
+        Events and the report are recomputed over the whole trajectory with the batch
+        path's rules (``report.find_events``, ``report.make_report``).
+        """
+        if not self.keep_history:
+            raise RuntimeError("finish() needs keep_history=True; with keep_history=False "
+                               "use flush() and keep the rows handed out by push()")
+        if self._shape is None:
+            raise ReconstructionError("no frames were pushed")
+        if self._n < 2:
+            raise ReconstructionError(f"no finger found: need at least 2 frames; got {self._n}")
+        self.flush()
+        pos = np.array(self._h_pos).reshape(-1, 2)
+        conf = np.array(self._h_conf)
+        tex = np.array(self._h_tex)
+        contact = self._contact_of(tex)
+        if contact.sum() < 2:
+            raise ReconstructionError("no finger found: fewer than two frames show finger "
+                                      f"texture (of {len(tex)} frames)")
+        conf = np.where(contact, conf, 0.0)
+        times = np.array(self._h_time)
+        fr = self.frame_rate_hz
+        if self._uses_times:
+            dts = np.diff(times)
+            if fr is None:
+                fr = float(1.0 / np.median(dts))
+            dt_frames = dts * fr
+            times = times - times[0]
+        else:
+            dt_frames = np.ones(len(times) - 1)
+            times = np.arange(len(times)) / fr if fr else np.arange(len(times), dtype=float)
+        link_ok = np.array(self._h_link_ok, dtype=bool)
+        link_failed = ~link_ok[1:] & contact[1:] & contact[:-1]
+        r_n = self._shape[0]
+        image, weight, origin = self._assemble()
+        angles = np.zeros(len(pos))
+        events = _report.find_events(positions=pos, angles_deg=angles, confidence=conf,
+                                     contact=contact, link_failed=link_failed,
+                                     link_dt_frames=dt_frames, times_s=times, frame_rate_hz=fr,
+                                     n_rows=r_n, pitch_um=self.pitch_um)
+        rep = _report.make_report(events=events, positions=pos, angles_deg=angles,
+                                  confidence=conf, contact=contact, times_s=times,
+                                  frame_rate_hz=fr, n_rows=r_n, pitch_um=self.pitch_um,
+                                  image=image)
+        options = {"pitch_um": self.pitch_um, "frame_rate_hz": fr, "mode": self.mode,
+                   "output_pitch_um": self.out_pitch_um.tolist(), "estimate_rotation": False,
+                   "motion_prior_px": self.motion_prior_px, "max_across_px": self.max_across_px,
+                   "timestamps": self._uses_times, "calibration": self.calibration is not None,
+                   "streaming": True, "window_frames": self.window,
+                   "batch_frames": self.batch, "hold_rows": self.hold_rows,
+                   "drift_cols": self.drift_cols, "dropped_samples": int(self._dropped)}
+        return Reconstruction(image=image, positions=pos, angles=angles, confidence=conf,
+                              events=events, report=rep, weight=weight, origin_px=origin,
+                              pitch_um=self.out_pitch_um, sensor_pitch_um=self.pitch_um,
+                              frame_rate_hz=fr if fr else float("nan"), options=options)
+
+    # ------------------------------------------------------------------ internals
+    def _update(self, events, rows):
+        c_w = self._acc_w if self._shape is not None else 0
+        if rows:
+            idx = np.concatenate([r[0] for r in rows])
+            val = np.concatenate([r[1] for r in rows])
+            wt = np.concatenate([r[2] for r in rows])
+            if self.keep_history:
+                self._h_rows.append((idx, val, wt))
+        else:
+            idx = np.zeros(0, np.int64)
+            val = np.zeros((0, c_w))
+            wt = np.zeros((0, c_w))
+        return StreamUpdate(rows=val, weight=wt, row_index=idx,
+                            first_col=self._col0 if self._shape is not None else 0,
+                            events=tuple(events), frames_frozen=self._n_frozen)
+
+    def _contact_of(self, tex):
+        hi = max(self._tex_hi, 1e-12)
+        return tex > 0.35 * hi
+
+    def _slots(self, a, b):
+        return np.arange(a, b) % self.window
+
+    def _texture(self, x):
+        """Spatial texture of frames (rms of the across-swipe high-pass), fixed pattern removed."""
+        fp = self._blank_sum / self._blank_n if self._blank_n >= 8 else 0.0
+        d = np.diff(x - fp, axis=-1)
+        return np.sqrt(np.mean(d * d, axis=(-2, -1)))
+
+    def _prepare_batch(self, a, b):
+        """Fixed pattern, contact and prepared frames for frames a..b-1 (in their slots)."""
+        sl = self._slots(a, b)
+        x = self._raw[sl]
+        tex = self._texture(x)
+        self._tex_hi = max(self._tex_hi, float(tex.max()))
+        contact = self._contact_of(tex)
+        self._tex[sl] = tex
+        if not self._seen_contact:
+            # Frames before the first contact are finger-absent: they show the fixed pattern.
+            first = int(np.argmax(contact)) if contact.any() else len(contact)
+            if first:
+                self._blank_sum += x[:first].sum(0)
+                self._blank_n += first
+            if contact.any():
+                self._seen_contact = True
+                if self._blank_n >= 8:   # texture again, now against the blank mean
+                    tex = self._texture(x)
+                    self._tex[sl] = tex
+                    contact = self._contact_of(tex)
+        if contact.any():
+            self._fp_sum += x[contact].sum(0)
+            self._fp_n += int(contact.sum())
+        if self.calibration is not None:
+            self._offset = np.full(self._shape, float(x.mean())) if self._offset is None \
+                else self._offset
+        elif self._offset is None or self._blank_n < 8:
+            if self._blank_n >= 8:
+                off = self._blank_sum / self._blank_n
+            elif self._fp_n >= self.fixed_pattern_frames:
+                mean_c = self._fp_sum / self._fp_n
+                r_n = self._shape[0]
+                smooth = ndimage.gaussian_filter(mean_c, sigma=(min(2.0, r_n / 4.0), 4.0),
+                                                 mode="nearest")
+                off = mean_c - smooth + mean_c.mean()
+            else:
+                # Too few frames for a running mean free of finger texture (a static trace
+                # of the texture pulls shifts towards zero): the level only.
+                off = np.full(self._shape, float(x.mean()))
+            self._offset = off
+        xc = x - self._offset
+        if self._scale is None and contact.any():
+            spread = np.sqrt(np.mean((xc[contact] - xc[contact].mean(0)) ** 2, axis=0))
+            med = float(np.median(spread))
+            self._scale = max(med, 1e-12)
+            self._plate_ok = spread > 0.25 * med
+        scale = self._scale if self._scale is not None else max(float(xc.std()), 1e-12)
+        z = (xc / scale).astype(np.float32)
+        z[:, ~self._plate_ok] = 0.0
+        self._z[sl] = z
+        self._zn[sl] = _reg._row_normalise(z, self._plate_ok)
+        self._up[sl] = _reg._Atlas(z).u
+        g0, g1 = _reg._template_gradients(z)
+        self._g0[sl] = g0
+        self._g1[sl] = g1
+        if len(z) > 1:
+            dz = np.diff(z, axis=0)[:, self._plate_ok]
+            if dz.size:
+                self._noise_sigma = float(np.median(np.abs(dz)) * 1.4826 / np.sqrt(2.0))
+        return contact
+
+    def _prep_obj(self):
+        return _reg.Prepared(z=self._z, plate_ok=self._plate_ok,
+                             offset=np.zeros(self._shape), gain=np.ones(self._shape),
+                             contact=np.ones(self.window, bool), texture=self._tex,
+                             noise_sigma=self._noise_sigma)
+
+    def _process(self, events, rows, final=False):
+        a, b = self._n_est, self._n
+        w = self.window
+        fast = self.mode == "fast"
+        iters = 2 if fast else 3
+        contact = self._prepare_batch(a, b)
+        prep = self._prep_obj()
+        atlas = _RingAtlas(self._up, *self._shape)
+        grads = (self._g0, self._g1)
+        r_n = self._shape[0]
+        max_along = r_n - 1
+        mx = self.max_across_px
+        lo_frame = max(0, b - w)
+        # ---- successive pairs for the new frames ----
+        js = np.arange(max(a, 1), b)
+        steps = np.zeros((len(js), 2))
+        ok = np.zeros(len(js), bool)
+        if len(js):
+            cp = np.stack([(js - 1) % w, js % w], 1)
+            coarse, score, _ = _reg.coarse_shifts(self._zn, cp, max_along=max_along,
+                                                  max_across=mx)
+            if len(coarse) >= 5:
+                hist = self._pos[(np.arange(max(lo_frame, a - 8), a)) % w]
+                prev = np.diff(hist, axis=0) if len(hist) > 1 else np.zeros((0, 2))
+                trend_src = np.concatenate([prev, coarse])
+                trend = np.stack([ndimage.median_filter(trend_src[:, k], size=9, mode="nearest")
+                                  for k in range(2)], 1)[len(prev):]
+                free, free_score = coarse, score
+                coarse, score, _ = _reg.coarse_shifts(self._zn, cp, max_along=max_along,
+                                                      max_across=mx, prior=trend)
+            else:
+                free, free_score = coarse, score
+            est = _reg.refine_shifts(prep, cp, coarse, estimate_rotation=False,
+                                     iterations=iters, atlas=atlas, grads=grads)
+            # Without frames ahead, the trend lags a sudden change of speed (stall ending,
+            # backtrack): where the prior moved the peak, the free peak is refined too and
+            # the better match kept.
+            alt = np.flatnonzero(np.abs(free - coarse).max(axis=1) > 0.5)
+            if len(alt):
+                est2 = _reg.refine_shifts(prep, cp[alt], free[alt], estimate_rotation=False,
+                                          iterations=iters, atlas=atlas, grads=grads)
+                better = est2.ok & (est2.ncc > est.ncc[alt] + 0.02)
+                if better.any():
+                    k = alt[better]
+                    est = _replace_rows(est, k, est2, better)
+                    score = score.copy()
+                    score[k] = free_score[k]
+            ok = est.ok & (est.ncc > 0.5) & (score > 0.3)
+            ok &= contact[js - a] & self._contact_of(self._tex[(js - 1) % w])
+            steps = np.where(ok[:, None], est.shift, np.nan)
+            self._link_ok[js % w] = ok
+            self._store_pairs(np.stack([js - 1, js], 1)[ok], est.shift[ok], est.info[ok],
+                              np.ones(int(ok.sum()), bool))
+        if a == 0:
+            self._link_ok[0] = True
+            self._pos[0] = 0.0
+        # Predicted positions: chain of successive steps; failed links bridged by the
+        # recent median step.
+        recent = self._recent_steps(lo_frame, a)
+        good_steps = steps[np.isfinite(steps).all(1)]
+        pool = np.concatenate([recent, good_steps]) if len(recent) or len(good_steps) else None
+        fill = np.median(pool, axis=0) if pool is not None and len(pool) else np.zeros(2)
+        steps = np.where(np.isfinite(steps), steps, fill)
+        if len(js):
+            base = self._pos[(js[0] - 1) % w]
+            self._pos[js % w] = base + np.cumsum(steps, axis=0)
+        # ---- partners within the window, at nearly whole-pixel displacements ----
+        lp = self._partners(lo_frame, a, b)
+        if len(lp):
+            sl = lp % w
+            pred = self._pos[sl[:, 1]] - self._pos[sl[:, 0]]
+            linit, _, _ = _reg.coarse_shifts(self._zn, sl, max_along=max_along,
+                                             max_across=mx + 4, prior=pred, prior_window_px=1.5)
+            est = _reg.refine_shifts(prep, sl, linit, estimate_rotation=False, iterations=iters,
+                                     atlas=atlas, grads=grads)
+            good = est.ok & (est.ncc > 0.5) & (np.abs(est.shift - linit).max(axis=1) < 1.5)
+            self._store_pairs(lp[good], est.shift[good], est.info[good], np.ones(int(good.sum()),
+                                                                                  bool))
+        self._n_est = b
+        # ---- sliding-window solve ----
+        self._solve(lo_frame, b)
+        # ---- freeze and fuse ----
+        upto = b if final else max(self._n_frozen, b - (w - self.batch))
+        self._freeze(upto, events, rows)
+        self._emit(rows, everything=final)
+
+    def _recent_steps(self, lo, a):
+        if a - lo < 2:
+            return np.zeros((0, 2))
+        k = np.arange(max(lo + 1, a - 16), a)
+        okk = self._link_ok[k % self.window]
+        st = self._pos[k % self.window] - self._pos[(k - 1) % self.window]
+        return st[okk]
+
+    def _partners(self, lo, a, b):
+        """Pairs (i, j), j new, i earlier within the window, at whole-pixel displacements
+        (pipeline._pick_partners' rule, looking back only)."""
+        w = self.window
+        j = np.arange(max(a, 1), b)
+        if len(j) == 0:
+            return np.zeros((0, 2), np.int64)
+        i = np.arange(lo, b)
+        pj = self._pos[j % w]
+        pi = self._pos[i % w]
+        lag = j[:, None] - i[None, :]
+        valid = lag >= 2
+        # Not across a failed link.
+        fails = ~self._link_ok[i % w]
+        fails[0] = False
+        fc = np.cumsum(fails)
+        fcj = fc[j - lo]
+        valid &= fc[None, :] == fcj[:, None]
+        disp = pj[:, None, :] - pi[None, :, :]
+        da = np.abs(disp[..., 0])
+        fa = np.abs(disp[..., 1] - np.round(disp[..., 1]))
+        out = []
+        targets = self._targets
+        if self.mode == "fast":
+            targets = tuple(t for t in targets if t != 0)
+        rows_idx = np.arange(len(j))
+        for target in targets:
+            if target == 0:
+                cost = np.hypot(da, disp[..., 1])
+                okm = valid & (cost < 0.1) & (lag >= 16)
+                score = np.where(okm, lag, -1)
+                best = np.argmax(score, axis=1)
+                sel = score[rows_idx, best] > 0
+            else:
+                cost = np.maximum(np.abs(da - target), fa)
+                cost = np.where(valid & (np.abs(disp[..., 1]) <= max(target, 3.0)), cost, np.inf)
+                best = np.argmin(cost, axis=1)
+                c = cost[rows_idx, best]
+                sel = np.isfinite(c) & (c < 0.5)
+            out.append(np.stack([i[best[sel]], j[sel]], 1))
+        pairs = np.concatenate(out) if out else np.zeros((0, 2), np.int64)
+        return np.unique(pairs, axis=0) if len(pairs) else pairs
+
+    def _store_pairs(self, ij, shift, info, good):
+        if len(ij) == 0:
+            return
+        # Drop pairs that reach outside the window first (compaction).
+        n = self._n_pairs
+        lo = max(0, self._n - self.window)
+        keep = np.flatnonzero(self._p_ij[:n, 0] >= lo)
+        m = len(keep)
+        if m < n:
+            self._p_ij[:m] = self._p_ij[keep]
+            self._p_shift[:m] = self._p_shift[keep]
+            self._p_info[:m] = self._p_info[keep]
+            self._p_good[:m] = self._p_good[keep]
+        k = min(len(ij), len(self._p_ij) - m)
+        self._p_ij[m:m + k] = ij[:k]
+        self._p_shift[m:m + k] = shift[:k]
+        self._p_info[m:m + k] = _with_model_error(info[:k], shift[:k])
+        self._p_good[m:m + k] = good[:k]
+        self._n_pairs = m + k
+
+    def _solve(self, lo, b):
+        w = self.window
+        n = b - lo
+        if n < 2:
+            return
+        np_ = self._n_pairs
+        ij = self._p_ij[:np_]
+        inwin = (ij[:, 0] >= lo) & (ij[:, 1] < b) & self._p_good[:np_]
+        pairs = ij[inwin] - lo
+        shift = self._p_shift[:np_][inwin]
+        info = self._p_info[:np_][inwin]
+        # Frozen frames inside the window are held by stiff pairs to the window's first frame.
+        nf = self._n_frozen - lo
+        base = self._pos[lo % w].copy()
+        if nf >= 2:
+            k = np.arange(1, nf)
+            fpairs = np.stack([np.zeros_like(k), k], 1)
+            fshift = self._pos[(k + lo) % w] - base
+            finfo = np.broadcast_to(np.eye(2) * 1e8, (len(k), 2, 2))
+            pairs = np.concatenate([pairs, fpairs])
+            shift = np.concatenate([shift, fshift])
+            info = np.concatenate([info, finfo])
+        init_w = np.ones(len(pairs))
+        if self._uses_times:
+            tt = self._time[self._slots(lo, b)]
+            fr = self.frame_rate_hz or float(1.0 / np.median(np.diff(tt)))
+            dt = np.diff(tt) * fr
+        else:
+            dt = np.ones(n - 1)
+        # Frames whose chain is broken and no pair reaches keep their predicted step (the
+        # motion prior carries them).
+        tr = _traj.solve_positions(n, pairs, shift, info, np.zeros(n), dt,
+                                   sigma_acc_px=self.motion_prior_px, init_weight=init_w)
+        newpos = tr.positions + base
+        start = max(self._n_frozen, lo)
+        sl = self._slots(start, b)
+        self._pos[sl] = newpos[start - lo:]
+        # Confidence inputs (pairs only, without the stiff anchors).
+        n_real = int(inwin.sum())
+        pw = tr.pair_weight[:n_real]
+        preal = pairs[:n_real]
+        fi = np.zeros((n, 2, 2))
+        np.add.at(fi, preal[:, 0], pw[:, None, None] * info[:n_real])
+        np.add.at(fi, preal[:, 1], pw[:, None, None] * info[:n_real])
+        kept = np.zeros(n)
+        total = np.zeros(n)
+        np.add.at(kept, preal.ravel(), np.repeat(pw, 2))
+        np.add.at(total, preal.ravel(), 1.0)
+        self._frame_info[sl] = fi[start - lo:]
+        self._okfrac[sl] = np.where(total > 0, kept / np.maximum(total, 1), 0.0)[start - lo:]
+
+    def _confidence(self, sl, contact):
+        fi = self._frame_info[sl]
+        ev = np.linalg.eigvalsh(0.5 * (fi + np.transpose(fi, (0, 2, 1))))
+        lam = np.maximum(ev[:, 0], 0.0)
+        sigma = 1.0 / np.sqrt(np.maximum(lam, 1e-12))
+        conf = erf(0.25 / (np.sqrt(2.0) * sigma)) * np.clip(self._okfrac[sl], 0, 1)
+        return np.clip(np.where(contact, conf, 0.0), 0.0, 1.0)
+
+    def _freeze(self, upto, events, rows):
+        a = self._n_frozen
+        if upto <= a:
+            return
+        sl = self._slots(a, upto)
+        contact = self._contact_of(self._tex[sl])
+        conf = self._confidence(sl, contact)
+        pos = self._pos[sl]
+        if self.keep_history:
+            self._h_pos.extend(pos.tolist())
+            self._h_conf.extend(conf.tolist())
+            self._h_contact.extend(contact.tolist())
+            self._h_tex.extend(self._tex[sl].tolist())
+            self._h_link_ok.extend(self._link_ok[sl].tolist())
+            self._h_time.extend(self._time[sl].tolist())
+        self._online_events(a, upto, pos, conf, contact, events)
+        # Fusion: the batch path's values (prepared frames back in input units) and weights.
+        fw = (contact & (conf > 0.05)).astype(np.float64)
+        if not fw.any() and contact.any() and self._n_frozen == 0:
+            fw = contact.astype(np.float64)
+        scale = self._scale if self._scale is not None else 1.0
+        level = float(np.mean(self._offset)) if self._offset is not None else 0.0
+        vals = self._z[sl].astype(np.float64) * scale + level
+        wts = fw[:, None, None] * self._plate_ok[None].astype(np.float64)
+        self._splat(vals, pos, wts)
+        self._n_frozen = upto
+
+    def _splat(self, vals, pos, wts):
+        r_n, c_n = self._shape
+        q0 = (pos[:, 0, None, None] + np.arange(r_n)[None, :, None]) / self._pitch_px[0]
+        q1 = (pos[:, 1, None, None] + np.arange(c_n)[None, None, :]) / self._pitch_px[1]
+        q0, q1 = np.broadcast_arrays(q0, q1)
+        keep = wts > 0
+        if not keep.any():
+            return
+        q0, q1, v, wv = q0[keep], q1[keep], vals[keep], wts[keep]
+        i0 = np.floor(q0).astype(np.int64)
+        i1 = np.floor(q1).astype(np.int64)
+        a0 = q0 - i0
+        a1 = q1 - i1
+        lo_r, hi_r = int(i0.min()), int(i0.max()) + 2
+        self._extend_band(lo_r, hi_r, rows_out=None)
+        blo, bhi = self._band
+        j1 = i1 - self._col0
+        h, wd = self._acc_h, self._acc_w
+        # Accumulate over the rows touched only, then add into the strip's ring rows.
+        span = hi_r - lo_r
+        loc_acc = np.zeros(span * wd)
+        loc_w = np.zeros(span * wd)
+        for di, wa in ((0, 1.0 - a0), (1, a0)):
+            for dj, wb in ((0, 1.0 - a1), (1, a1)):
+                rr = i0 + di
+                cc = j1 + dj
+                ok = (rr >= blo) & (rr < bhi) & (cc >= 0) & (cc < wd)
+                self._dropped += int((~ok & (wa * wb > 0)).sum())
+                ww = (wv * wa * wb)[ok]
+                idx = (rr[ok] - lo_r) * wd + cc[ok]
+                loc_acc += np.bincount(idx, weights=ww * v[ok], minlength=span * wd)
+                loc_w += np.bincount(idx, weights=ww, minlength=span * wd)
+        ring = np.arange(lo_r, hi_r) % h
+        self._acc[ring] += loc_acc.reshape(span, wd)
+        self._wacc[ring] += loc_w.reshape(span, wd)
+
+    def _extend_band(self, lo_r, hi_r, rows_out):
+        """Grow the live band [lo, hi) towards rows not yet handed out, within the strip."""
+        h = self._acc_h
+        if self._band is None:
+            lo_r = max(lo_r, hi_r - h)
+            self._band = [lo_r, hi_r]
+            return
+        blo, bhi = self._band
+        if lo_r < blo and not self._sealed[0]:
+            blo = max(lo_r, bhi - h)
+        if hi_r > bhi and not self._sealed[1]:
+            bhi = min(hi_r, blo + h)
+        self._band = [blo, bhi]
+
+    def _emit(self, rows, everything=False):
+        """Hand out rows of the band that no unfrozen frame (nor a backtrack within
+        ``hold_rows``) can reach any more."""
+        if self._band is None:
+            return
+        blo, bhi = self._band
+        if everything:
+            cut_lo, cut_hi = bhi, bhi
+        else:
+            w = self.window
+            r_n = self._shape[0]
+            if self._n_frozen < self._n_est:
+                p = self._pos[self._slots(self._n_frozen, self._n_est), 0]
+            else:
+                p = self._pos[[(self._n_est - 1) % w], 0]
+            # Rows the unsolved frames may still reach: their current span plus the
+            # frames to come (at most one frame height per frame beyond the last solved).
+            ahead = (self._n - self._n_est + self.batch) * r_n
+            amin = float(p.min()) - ahead
+            amax = float(p.max()) + r_n + ahead
+            cut_lo = int(np.floor(amin / self._pitch_px[0])) - self.hold_rows
+            cut_hi = int(np.ceil(amax / self._pitch_px[0])) + self.hold_rows
+            # The live band must stay inside the strip: hand out the far side if needed.
+        out = []
+        if cut_lo > blo:
+            top = min(cut_lo, bhi)
+            out.append(self._take(blo, top))
+            blo = top
+            self._sealed[0] = True
+        if not everything and cut_hi < bhi and bhi > blo:
+            bot = max(cut_hi, blo)
+            out.append(self._take(bot, bhi))
+            bhi = bot
+            self._sealed[1] = True
+        self._band = [blo, bhi]
+        rows.extend(o for o in out if len(o[0]))
+
+    def _take(self, r0, r1):
+        h = self._acc_h
+        idx = np.arange(r0, r1)
+        sl = idx % h
+        acc = self._acc[sl]
+        wacc = self._wacc[sl]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            img = np.where(wacc >= 0.05, acc / np.where(wacc > 0, wacc, 1.0), np.nan)
+        self._acc[sl] = 0.0
+        self._wacc[sl] = 0.0
+        return idx, img, wacc
+
+    def _assemble(self):
+        parts = self._h_rows
+        if not parts:
+            raise ReconstructionError("no image rows: no frame in contact was placed")
+        idx = np.concatenate([p[0] for p in parts])
+        val = np.concatenate([p[1] for p in parts])
+        wt = np.concatenate([p[2] for p in parts])
+        order = np.argsort(idx, kind="stable")
+        idx, val, wt = idx[order], val[order], wt[order]
+        r0, r1 = int(idx[0]), int(idx[-1]) + 1
+        img = np.full((r1 - r0, self._acc_w), np.nan)
+        wimg = np.zeros((r1 - r0, self._acc_w))
+        img[idx - r0] = val
+        wimg[idx - r0] = wt
+        rows = np.flatnonzero(wimg.max(axis=1) >= 0.05)
+        cols = np.flatnonzero(wimg.max(axis=0) >= 0.05)
+        if not rows.size:
+            raise ReconstructionError("no image rows: no frame in contact was placed")
+        a, b = rows[0], rows[-1] + 1
+        c, d = cols[0], cols[-1] + 1
+        origin = np.array([-(r0 + a), -(self._col0 + c)], dtype=np.float64)
+        return img[a:b, c:d], wimg[a:b, c:d], origin
+
+    def _online_events(self, a, b, pos, conf, contact, events):
+        """Simple per-frame detectors on frozen frames (the final list comes from
+        ``report.find_events`` in ``finish``)."""
+        fr = self.frame_rate_hz
+        r_n = self._shape[0]
+        if fr:
+            v_stall = 2.0 * 1e3 / self.pitch_um / fr
+            min_len = max(8, int(round(0.01 * fr)))
+        else:
+            v_stall, min_len = 0.01, 40
+        half = 8
+        w = self.window
+        for k in range(b - a):
+            t = a + k
+            lk = self._link_ok[t % w]
+            if t > 0 and not lk and contact[k]:
+                events.append(Event("gap", t - 1, t, {"reason": "too_fast", "live": True}))
+            if contact[k]:
+                self._ev_contact = True
+            elif self._ev_contact:
+                self._ev_contact = False
+                events.append(Event("no_contact", t, t, {"where": "lifted", "live": True}))
+            if t >= half:
+                v = (self._pos[t % w] - self._pos[(t - half) % w]) / half
+            else:
+                v = np.zeros(2)
+            if abs(pos[k, 0]) > 2 * r_n and self._ev_dir == 0.0:
+                self._ev_dir = float(np.sign(pos[k, 0]))
+            # stall
+            if contact[k] and t >= half and np.hypot(*v) < v_stall:
+                if self._ev_stall_start is None:
+                    self._ev_stall_start, self._ev_stall_sent = t, False
+                if not self._ev_stall_sent and t - self._ev_stall_start + 1 >= min_len:
+                    events.append(Event("stall", self._ev_stall_start, t, {"live": True}))
+                    self._ev_stall_sent = True
+            else:
+                self._ev_stall_start = None
+            # backtrack
+            if self._ev_dir and contact[k] and self._ev_dir * v[0] < -v_stall:
+                if self._ev_back_start is None:
+                    self._ev_back_start, self._ev_back_sent = t, False
+                s0 = self._ev_back_start
+                dist = self._ev_dir * (self._hist_pos(s0) - pos[k, 0])
+                if not self._ev_back_sent and dist >= 1.0:
+                    events.append(Event("backtrack", s0, t, {"distance_px": round(float(dist), 2),
+                                                             "live": True}))
+                    self._ev_back_sent = True
+            else:
+                self._ev_back_start = None
+            # low confidence
+            if contact[k] and conf[k] < 0.5:
+                if self._ev_low_start is None:
+                    self._ev_low_start, self._ev_low_sent = t, False
+                if not self._ev_low_sent and t - self._ev_low_start + 1 >= 3:
+                    events.append(Event("low_confidence", self._ev_low_start, t, {"live": True}))
+                    self._ev_low_sent = True
+            else:
+                self._ev_low_start = None
+
+    def _hist_pos(self, t):
+        if t >= self._n - self.window:
+            return float(self._pos[t % self.window, 0])
+        return float(self._pos[(self._n - self.window) % self.window, 0])
+
+
+def _replace_rows(est, k, est2, sel):
+    """PairEstimates ``est`` with rows ``k`` taken from rows ``sel`` of ``est2``."""
+    fields = {}
+    for name in ("pairs", "shift", "angle_rad", "info", "angle_info", "sigma", "n_valid", "ncc",
+                 "ok"):
+        arr = np.array(getattr(est, name))
+        arr[k] = getattr(est2, name)[sel]
+        fields[name] = arr
+    return _reg.PairEstimates(**fields)
+
+
+def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
+    """Model-error allowance added to each pair's covariance (as the batch path does):
+    ``(floor + alias * 2 d)^2`` per axis, d the distance of the shift from a whole pixel."""
+    d = np.abs(shift - np.round(shift))
+    s = floor_px + alias_px * 2.0 * d
+    eye = np.eye(2)[None]
+    tr = np.trace(info, axis1=1, axis2=2)
+    reg = info + eye * 1e-12 * (tr[:, None, None] + 1e-12)
+    cov = np.linalg.inv(reg) + eye * (s ** 2)[:, :, None]
+    out = np.linalg.inv(cov)
+    out[tr <= 0] = 0.0
+    return out
