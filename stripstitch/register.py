@@ -90,10 +90,19 @@ def prepare(frames, *, frame_weights=None):
     # Contact: texture well above the quietest frames (blank frames show only noise) and not
     # far below the typical frame. Frame differences are no noise estimate while the finger
     # moves, so only the texture spread itself is used.
-    lo = float(np.percentile(texture0, 5))
-    hi = float(np.percentile(texture0, 90))
-    thresh = max(0.2 * hi, min(3.0 * lo, 0.5 * hi))
-    contact = texture0 > max(thresh, 1e-9 * (np.abs(x).max() + 1.0))
+    # Two classes (no finger / finger) by Otsu's threshold on log texture (Otsu 1979, via
+    # scikit-image), used only when the classes really separate (means more than 3x apart);
+    # otherwise every frame with any texture counts as contact.
+    from skimage.filters import threshold_otsu
+    floor = 1e-9 * (np.abs(x).max() + 1.0)
+    lt = np.log(texture0 + floor)
+    thresh = floor
+    if t_n >= 4 and np.ptp(lt) > 0:
+        th = threshold_otsu(lt)
+        lo_c, hi_c = lt[lt <= th], lt[lt > th]
+        if lo_c.size and hi_c.size and hi_c.mean() - lo_c.mean() > np.log(3.0):
+            thresh = float(np.exp(th))
+    contact = texture0 > thresh
     dif = np.diff(x, axis=0)
     w = contact.astype(np.float64)
     if frame_weights is not None:
@@ -568,10 +577,11 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
         tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
         hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
         gtot = grad
-        if prior_px is not None:
-            # Prior precision in the Hessian's units: residual variance / prior variance.
-            var_it = np.maximum(rr_it, 1e-12) / np.maximum(nv_it, 1.0)
-            lam = var_it / prior_px ** 2
+        if prior_px is not None and it > 0:
+            # Prior precision in the Hessian's units: residual variance after the previous
+            # iteration's fit / prior variance (none in the first iteration, whose residual
+            # still holds the misalignment).
+            lam = var_prev / prior_px ** 2
             hreg = hreg.copy()
             hreg[:, 0, 0] += lam
             hreg[:, 1, 1] += lam
@@ -581,6 +591,9 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
         if last:
             # Residual sum of squares at the least-squares minimum: r'r - g' H^-1 g.
             rss = np.maximum(rr + np.einsum("mp,mp->m", grad, step), 0.0)
+        var_prev = np.maximum(rr_it + np.einsum("mp,mp->m", grad, -np.linalg.solve(
+            hess + np.eye(n_par)[None] * 1e-9 * tr, grad[..., None])[..., 0]), 0.0) \
+            / np.maximum(nv_it - n_par, 1.0)
         gscale = np.clip(1.0 - step[:, n_par - 2], 0.1, 10.0).astype(np.float32)
         sh += np.clip(step[:, :2], -1.0, 1.0)
         if estimate_rotation:
