@@ -143,7 +143,10 @@ def _pair_shifts_opencv(frames):
     import cv2
 
     f = np.ascontiguousarray(frames, dtype=np.float64)
-    win = cv2.createHanningWindow((f.shape[2], f.shape[1]), cv2.CV_64F)
+    if f.shape[1] >= 4:
+        win = cv2.createHanningWindow((f.shape[2], f.shape[1]), cv2.CV_64F)
+    else:   # a Hann window over 2-3 rows is (nearly) all zero: window across only
+        win = np.ascontiguousarray(np.tile(np.hanning(f.shape[2]), (f.shape[1], 1)))
     out = np.empty((f.shape[0] - 1, 2))
     for t in range(f.shape[0] - 1):
         # cv2.phaseCorrelate(a, b) returns (dx, dy) with b(x) = a(x - (dx, dy)); our
@@ -151,6 +154,10 @@ def _pair_shifts_opencv(frames):
         (dx, dy), _ = cv2.phaseCorrelate(f[t], f[t + 1], win)
         out[t] = (-dy, -dx)
     return out
+
+
+#: Largest image (pixels) a reference chain is fused into; beyond it ``image`` is None.
+_MAX_FUSED_PIXELS = 20_000_000
 
 
 def reference_chain(frames, *, library="skimage", upsample_factor=20, normalization=None,
@@ -163,8 +170,8 @@ def reference_chain(frames, *, library="skimage", upsample_factor=20, normalizat
         Frame stack, axis 0 of a frame along the swipe.
     library : {"skimage", "opencv"}, optional
         ``skimage.registration.phase_cross_correlation`` (upsampled DFT, [1]_) or
-        ``cv2.phaseCorrelate`` (Hann window, 3x3 weighted-centroid sub-pixel peak). Default is
-        "skimage".
+        ``cv2.phaseCorrelate`` (Hann window from ``cv2.createHanningWindow``; across only for
+        frames under 4 rows, where it would be all zero). Default is "skimage".
     upsample_factor : int, optional
         skimage's sub-pixel factor (1/upsample_factor px). Default is 20.
     normalization : {None, "phase"}, optional
@@ -175,7 +182,8 @@ def reference_chain(frames, *, library="skimage", upsample_factor=20, normalizat
     pitch_um : float, optional
         Sensor pitch, recorded as the output pitch. Default is 50.8.
     fuse : bool, optional
-        Fuse an image with :func:`stripstitch.mosaic.fuse`. Default is True.
+        Fuse an image with :func:`stripstitch.mosaic.fuse` (skipped, ``image`` None, when the
+        trajectory would need more than 20 million pixels). Default is True.
 
     Returns
     -------
@@ -209,7 +217,8 @@ def reference_chain(frames, *, library="skimage", upsample_factor=20, normalizat
               else _pair_shifts_opencv(arr))
     pos = np.vstack([np.zeros((1, 2)), np.cumsum(shifts, axis=0)])
     image = weight = origin = None
-    if fuse:
+    extent = (np.ptp(pos[:, 0]) + arr.shape[1]) * (np.ptp(pos[:, 1]) + arr.shape[2])
+    if fuse and extent <= _MAX_FUSED_PIXELS:     # a runaway chain gets no image, not 4 GB
         from .mosaic import fuse as _fuse
 
         m = _fuse(arr, pos)
