@@ -211,6 +211,7 @@ class StreamingStitcher:
         self._frame_info = np.zeros((w, 2, 2))
         self._okfrac = np.zeros(w)
         self._link_ok = np.ones(w, bool)          # link (t-1, t) held
+        self._fz_pos = np.zeros((w, 2))           # positions of the latest frozen frames
         # Pair store: at most (n_targets + 1) pairs per frame within the window.
         self._targets = self._pick_targets(r_n)
         pmax = w * (len(self._targets) + 1)
@@ -256,6 +257,7 @@ class StreamingStitcher:
         self._ev_low_start = None
         self._ev_low_sent = False
         self._ev_dir = 0.0
+        self._back_from = 0.0
         # History (grows with the swipe; only with keep_history).
         self._h_pos, self._h_conf, self._h_contact, self._h_tex = [], [], [], []
         self._h_link_ok, self._h_time = [], []
@@ -731,6 +733,7 @@ class StreamingStitcher:
             self._h_tex.extend(self._tex[sl].tolist())
             self._h_link_ok.extend(self._link_ok[sl].tolist())
             self._h_time.extend(self._time[sl].tolist())
+        self._fz_pos[sl] = pos
         self._online_events(a, upto, pos, conf, contact, events)
         # Fusion: the batch path's values (prepared frames back in input units) and weights.
         fw = (contact & (conf > 0.05)).astype(np.float64)
@@ -877,6 +880,7 @@ class StreamingStitcher:
             v_stall, min_len = 0.01, 40
         half = 8
         w = self.window
+        fz = self._fz_pos          # frozen positions of the last ``window`` frames
         for k in range(b - a):
             t = a + k
             lk = self._link_ok[t % w]
@@ -888,7 +892,7 @@ class StreamingStitcher:
                 self._ev_contact = False
                 events.append(Event("no_contact", t, t, {"where": "lifted", "live": True}))
             if t >= half:
-                v = (self._pos[t % w] - self._pos[(t - half) % w]) / half
+                v = (fz[t % w] - fz[(t - half) % w]) / half
             else:
                 v = np.zeros(2)
             if abs(pos[k, 0]) > 2 * r_n and self._ev_dir == 0.0:
@@ -906,8 +910,9 @@ class StreamingStitcher:
             if self._ev_dir and contact[k] and self._ev_dir * v[0] < -v_stall:
                 if self._ev_back_start is None:
                     self._ev_back_start, self._ev_back_sent = t, False
+                    self._back_from = float(fz[(t - half) % w, 0]) if t >= half else 0.0
                 s0 = self._ev_back_start
-                dist = self._ev_dir * (self._hist_pos(s0) - pos[k, 0])
+                dist = self._ev_dir * (self._back_from - pos[k, 0])
                 if not self._ev_back_sent and dist >= 1.0:
                     events.append(Event("backtrack", s0, t, {"distance_px": round(float(dist), 2),
                                                              "live": True}))
@@ -923,11 +928,6 @@ class StreamingStitcher:
                     self._ev_low_sent = True
             else:
                 self._ev_low_start = None
-
-    def _hist_pos(self, t):
-        if t >= self._n - self.window:
-            return float(self._pos[t % self.window, 0])
-        return float(self._pos[(self._n - self.window) % self.window, 0])
 
 
 def _replace_rows(est, k, est2, sel):

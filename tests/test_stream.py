@@ -6,6 +6,7 @@ every placement can be checked against the positions the frames were cut at, and
 ``stitch`` on the same frames is a second, independent reference.
 """
 
+import functools
 import sys
 from pathlib import Path
 
@@ -20,9 +21,14 @@ from stripstitch._types import Reconstruction, ReconstructionError  # noqa: E402
 from stripstitch.stream import StreamingStitcher, StreamUpdate  # noqa: E402
 
 
+@functools.lru_cache(maxsize=None)
+def _texture():
+    return band_texture((700, 96), seed=3)
+
+
 @pytest.fixture(scope="module")
 def tex():
-    return band_texture((700, 96), seed=3)
+    return _texture()
 
 
 def _ramp(n):
@@ -37,11 +43,12 @@ def _speeds(kind, t_n):
         return np.full(t_n, 1.37), np.full(t_n, 0.21)
     if kind == "varying":
         return 1.5 + 0.5 * np.sin(t / 23.0), 0.15 * np.cos(t / 31.0)
-    if kind == "stall":
+    if kind in ("stall", "long_stall"):
+        n = 40 if kind == "stall" else 80
         v = np.full(t_n, 1.6)
         v[80:110] = 1.6 * (1.0 - _ramp(30))
-        v[110:150] = 0.0
-        v[150:180] = 1.6 * _ramp(30)
+        v[110:110 + n] = 0.0
+        v[110 + n:140 + n] = 1.6 * _ramp(30)
         return v, np.zeros(t_n)
     if kind == "backtrack":
         v = np.full(t_n, 1.5)
@@ -53,6 +60,13 @@ def _speeds(kind, t_n):
 
 
 def _swipe(tex, kind, t_n=320):
+    assert tex is _texture()
+    return _swipe_cached(kind, t_n)
+
+
+@functools.lru_cache(maxsize=None)
+def _swipe_cached(kind, t_n):
+    tex = _texture()
     va, vc = _speeds(kind, t_n)
     pos = np.zeros((t_n, 2))
     pos[1:, 0] = np.cumsum(va[1:])
@@ -101,11 +115,11 @@ def test_stream_equals_batch_and_truth(tex, kind):
     assert isinstance(res, Reconstruction)
     # Against ground truth: every frame within 0.25 px (measured: at most 0.18 px).
     assert np.abs(res.positions - pos).max() < 0.25
-    # Against the batch path, per axis, wherever the batch itself is right (within 0.25 px
+    # Against the batch path, per axis, wherever the batch itself is right (within 0.15 px
     # of the truth). Measured: the batch slips sideways by 0.5-3 px after the start of the
     # "stall" and in "varying" (a batch defect, reported), so there only its along-swipe
     # positions and the frames before the slip are compared.
-    good = np.abs(batch.positions - pos) < 0.25
+    good = np.abs(batch.positions - pos) < 0.15
     assert good[:, 0].mean() > 0.5
     for k in range(2):
         np.testing.assert_allclose(res.positions[good[:, k], k], batch.positions[good[:, k], k],
@@ -119,3 +133,107 @@ def test_stream_equals_batch_and_truth(tex, kind):
         assert np.corrcoef(a, b)[0, 1] >= 0.99          # Pearson correlation (numpy)
     # Rows were handed out during the swipe, not only at the end.
     assert sum(len(u.rows) for u in updates) > 0.1 * res.image.shape[0]
+
+
+def test_events_arrive_during_the_swipe(tex):
+    pos, frames, _ = _swipe(tex, "backtrack")
+    rng = np.random.default_rng(5)
+    blank = 0.01 * rng.standard_normal((100,) + frames.shape[1:])    # finger lifted
+    s = StreamingStitcher()
+    live = []
+    for t, f in enumerate(np.concatenate([frames, blank])):
+        live += [(t, e) for e in s.push(f).events]
+    backs = [(t, e) for t, e in live if e.kind == "backtrack"]
+    # Truth: the finger moves backwards over frames ~118..162 (speed < 0 there).
+    assert len(backs) == 1
+    t_seen, ev = backs[0]
+    assert 110 <= ev.first_frame <= 150 and t_seen < 250       # reported before the end
+    lifted = [(t, e) for t, e in live if e.kind == "no_contact"]
+    assert lifted and lifted[0][1].details["where"] == "lifted"
+    assert lifted[0][1].first_frame == pytest.approx(len(frames), abs=1)
+    # Latency: at most one window plus one batch of frames (64 + 16).
+    assert lifted[0][0] - len(frames) <= 80
+    res = s.finish()
+    assert len(res.events_of("backtrack")) == 1
+    nc = res.events_of("no_contact")
+    assert nc and nc[-1].first_frame == len(frames) and nc[-1].details["where"] == "end"
+
+
+def test_stall_reported_live(tex):
+    pos, frames, _ = _swipe(tex, "long_stall")
+    s = StreamingStitcher(frame_rate_hz=4000.0)
+    live = [e for f in frames for e in s.push(f).events]
+    stalls = [e for e in live if e.kind == "stall"]
+    # Truth: speed 0 over frames 110..189 (below 2 mm/s, 0.0098 px/frame at 4 kHz, from
+    # about frame 105 to 193).
+    assert len(stalls) == 1 and 100 <= stalls[0].first_frame <= 125
+    assert stalls[0].last_frame < 190                  # reported while the finger stands
+
+
+def test_memory_does_not_grow_with_the_swipe(tex):
+    _, frames, _ = _swipe(tex, "steady")
+    s = StreamingStitcher(keep_history=False)
+    for f in frames[:100]:
+        s.push(f)
+    before = s.memory_layout()
+    for f in frames[100:]:
+        s.push(f)
+    assert s.memory_layout() == before
+    # Window of 64 frames of 8 x 64 plates; strip of 64 frames x 8 rows + 2 x 64 held rows.
+    assert before["accumulator_rows"] == 64 * 8 + 8 + 4 + 2 * 64
+    assert before["accumulator_cols"] == 64 + 2 * 64 + 2
+    with pytest.raises(RuntimeError, match="keep_history=True"):
+        s.finish()
+    last = s.flush()
+    assert isinstance(last, StreamUpdate) and last.frames_frozen == len(frames)
+
+
+def test_rows_handed_out_are_the_final_image(tex):
+    _, frames, _ = _swipe(tex, "steady", t_n=200)
+    s = StreamingStitcher()
+    ups = [s.push(f) for f in frames]
+    res = s.finish()
+    got = [u for u in ups if len(u.rows)]
+    assert got
+    u = got[0]
+    assert not u.rows.flags.writeable
+    r = int(u.row_index[0] + res.origin_px[0])
+    c = int(u.first_col + res.origin_px[1])
+    row = u.rows[0]
+    ok = np.isfinite(row)
+    img_row = res.image[r]
+    lo = max(0, -c)
+    np.testing.assert_array_equal(row[lo:lo + res.image.shape[1]][ok[lo:lo + res.image.shape[1]]],
+                                  img_row[:len(row) - lo][ok[lo:lo + res.image.shape[1]]])
+
+
+@pytest.mark.parametrize("kw, exc, match", [
+    ({"window_frames": 4}, ValueError, "window_frames"),
+    ({"batch_frames": 40}, ValueError, "batch_frames"),
+    ({"mode": "turbo"}, ValueError, "mode"),
+    ({"pitch_um": -1.0}, ValueError, "pitch_um"),
+    ({"timestamps_s": [0.0, 1.0]}, ValueError, "push"),
+    ({"calibration": 3}, TypeError, "calibration"),
+])
+def test_bad_options(kw, exc, match):
+    with pytest.raises(exc, match=match):
+        StreamingStitcher(**kw)
+
+
+def test_bad_frames():
+    s = StreamingStitcher()
+    with pytest.raises(ValueError, match="shape"):
+        s.push(np.zeros(5))
+    s.push(np.zeros((8, 64)))
+    with pytest.raises(ValueError, match=r"first frame \(8, 64\)"):
+        s.push(np.zeros((8, 32)))
+    with pytest.raises(TypeError, match="real numeric"):
+        s.push(np.full((8, 64), "a"))
+    with pytest.raises(ValueError, match="every frame or for none"):
+        s.push(np.zeros((8, 64)), timestamp_s=1.0)
+    t = StreamingStitcher()
+    t.push(np.zeros((8, 64)), timestamp_s=1.0)
+    with pytest.raises(ValueError, match="strictly increasing"):
+        t.push(np.zeros((8, 64)), timestamp_s=1.0)
+    with pytest.raises(ReconstructionError, match="no frames"):
+        StreamingStitcher().finish()
