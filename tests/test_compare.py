@@ -64,10 +64,10 @@ def test_band_stretched_by_5_percent(ref):
     c = compare(_warp(ref, rows[rows < 319]), ref)
     band = c.local_scale_pct[125:180]
     outside = np.concatenate([c.local_scale_pct[20:80], c.local_scale_pct[230:290]])
-    assert np.nanmedian(band) == pytest.approx(5.0, abs=0.5)
-    assert np.nanmax(np.abs(outside)) < 0.5
+    assert np.nanmedian(band) == pytest.approx(5.0, abs=0.2)       # measured 5.000
+    assert np.nanmax(np.abs(outside)) < 0.2                          # measured 0.001
     assert c.missing_rows == 0 and c.duplicated_rows == 0
-    assert c.scale_along_pct == pytest.approx(5 / 314 * 100, abs=0.3)    # 5 extra rows
+    assert c.scale_along_pct == pytest.approx(5 / 314 * 100, abs=0.05)   # 5 extra rows
     assert c.ncc > 0.99
 
 
@@ -77,7 +77,7 @@ def test_shear(ref, s):
     cols = np.arange(128)[None, :] + s * np.arange(h)[:, None]
     img = _warp(ref, np.arange(h), cols)
     c = compare(img, ref)
-    assert c.shear == pytest.approx(s, abs=0.002)
+    assert c.shear == pytest.approx(s, abs=0.002)     # measured within 0.0007 (edge wrap)
     assert c.shear_deg == pytest.approx(np.degrees(np.arctan(s)), abs=0.12)
     assert abs(c.scale_along_pct) < 0.2
 
@@ -85,7 +85,7 @@ def test_shear(ref, s):
 def test_global_scale(ref):
     rows = np.arange(0, 318, 1 / 1.02)          # 2 % stretched along the swipe
     c = compare(_warp(ref, rows), ref)
-    assert c.scale_along_pct == pytest.approx(2.0, abs=0.15)
+    assert c.scale_along_pct == pytest.approx(2.0, abs=0.05)       # measured 1.998
 
 
 def test_local_distortion_field(ref):
