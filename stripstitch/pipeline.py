@@ -251,7 +251,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                iterations=2 if fast else 3, atlas=atlas, grads=grads)
     # A link fails when nothing overlaps: the coarse NCC is at noise level or the refined
     # overlap is too small to place the frame.
-    link_ok = est_c.ok & (est_c.ncc > 0.5) & (score > 0.3)
+    # (The refined NCC decides: the coarse score is taken at the pooled shift, which lags
+    # where the velocity changes abruptly, e.g. when a stall begins.)
+    link_ok = est_c.ok & (est_c.ncc > 0.5)
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
     # Coarse chain positions (failed links bridged by the neighbours' median step).
     fill = np.nanmedian(chain_steps, axis=0) if np.isfinite(chain_steps).any() else np.zeros(2)
@@ -283,7 +285,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             init = np.concatenate([init, linit])
         return pairs, init
 
-    def solve(pairs, init, init_angle=None):
+    def solve(pairs, init, init_angle=None, rotation=rotation):
         est = _reg.refine_shifts(prep, pairs, init, init_angle=init_angle,
                                  estimate_rotation=rotation, iterations=iters,
                                  atlas=atlas, grads=grads)
@@ -301,7 +303,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         return est, good, tr
 
     pairs, init = build_pairs(chain_pos, long_targets if fast else short_targets)
-    est, good, tr = solve(pairs, init)
+    # Over the short baselines of the first pass a narrow strip hardly measures rotation, and
+    # a wrong angle would turn every later placement: angles come from the later passes.
+    est, good, tr = solve(pairs, init, rotation=False if not fast else rotation)
     prep_used = prep
     if not fast:
         # Second pass: the fixed pattern re-estimated against the fused image, partners
@@ -321,8 +325,18 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             est, good, tr = solve(pairs, init, init_ang)
         prep_used = prep
 
-    positions = tr.positions
+    positions = tr.positions.copy()
     angles_deg = np.degrees(tr.angles_rad)
+    # Across a link with no overlap (too fast, no dropped frame to explain it) the frames moved
+    # by at least the strip's height: the motion prior alone would place them too close and
+    # overlay rows that were never seen together. Push what follows out to R rows.
+    direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
+    for (i, j), okk in zip(cpairs, link_ok):
+        if okk or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
+            continue
+        step = direction * (positions[j, 0] - positions[i, 0])
+        if step < r_n:
+            positions[j:, 0] += direction * (r_n - step)
     # Pairs kept per frame, for confidence.
     kept = np.zeros(t_n)
     total = np.zeros(t_n)

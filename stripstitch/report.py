@@ -74,11 +74,13 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     # Gaps: failed links, and dropped frames.
     for a, b in _runs(link_failed):
         step = positions[b + 1] - positions[a]
-        missing = max(0.0, abs(float(step[0])) - (n_rows - 1))
+        missing = max(0.0, abs(float(step[0])) - n_rows)
         dropped = float(np.sum(np.maximum(link_dt_frames[a:b + 1] - 1.0, 0.0)))
         events.append(Event("gap", a, b + 1, {
             "reason": "dropped_frames" if dropped >= 0.5 else "too_fast",
-            "missing_rows": round(missing, 2), "dropped_frames": int(round(dropped)),
+            # Without overlap the true step is not measured: placed at least n_rows apart.
+            "missing_rows": round(missing, 2), "missing_rows_known": False,
+            "dropped_frames": int(round(dropped)),
             "step_px": [round(float(step[0]), 3), round(float(step[1]), 3)]}))
     for a, b in _runs((link_dt_frames > 1.5) & ~link_failed):
         dropped = float(np.sum(link_dt_frames[a:b + 1] - 1.0))
@@ -172,6 +174,7 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
     rotation = float(angles_deg[last] - angles_deg[first])
     gaps = [e for e in events if e.kind == "gap"]
     gap_rows = float(sum(e.details.get("missing_rows", 0.0) for e in gaps))
+    unbridged = [e for e in gaps if not e.details.get("bridged", False)]
     finite = np.isfinite(image)
     rows_any = finite.any(axis=1)
     cols_any = finite.any(axis=0)
@@ -180,13 +183,21 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
     mean_conf = float(np.mean(confidence[idx]))
     reasons = []
     verdict = "usable"
-    if gap_rows > 0.5:
+    too_fast = [e for e in unbridged if e.details.get("reason") == "too_fast"]
+    lost = [e for e in unbridged if e.details.get("reason") != "too_fast"]
+    if too_fast:
         verdict = "unusable"
-        reasons.append(f"swipe too fast: {len(gaps)} gap(s), about {gap_rows:.0f} row(s) of "
-                       "finger not seen; swipe more slowly")
-    elif gaps:
-        reasons.append(f"{len(gaps)} gap(s) bridged by the motion model (dropped frames); "
-                       "placement there is less certain")
+        reasons.append(f"swipe too fast: {len(too_fast)} place(s) where successive frames do "
+                       "not overlap, so an unknown stretch of finger was not seen; swipe more "
+                       "slowly")
+    if lost:
+        verdict = "unusable"
+        reasons.append(f"{len(lost)} gap(s) after dropped frames with no overlap; an unknown "
+                       "stretch of finger was not seen")
+    bridged = [e for e in gaps if e.details.get("bridged", False)]
+    if bridged:
+        reasons.append(f"{len(bridged)} run(s) of dropped frames bridged by overlap; placement "
+                       "there is less certain")
     if length_mm < min_length_mm:
         verdict = "unusable"
         reasons.append(f"swipe too short: {length_mm:.1f} mm of finger seen "
