@@ -293,8 +293,12 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         info = _with_model_error(est.info, est.shift)
         info = np.where(good[:, None, None], info, 0.0)
         if rotation:
-            ang = _traj.solve_angles(t_n, pairs, est.angle_rad,
-                                     np.where(good, est.angle_info, 0.0), dt_frames,
+            # Model-error floor for the angle: it comes from along-swipe shifts of column
+            # blocks a quarter of the width apart, each good to about 0.05 px at best
+            # (aliasing), whatever the noise says.
+            floor_rad = 0.05 / max(c_n / 4.0, 1.0)
+            ainfo = np.where(good, 1.0 / (1.0 / np.maximum(est.angle_info, 1e-30) + floor_rad ** 2), 0.0)
+            ang = _traj.solve_angles(t_n, pairs, est.angle_rad, ainfo, dt_frames,
                                      sigma_acc_rad=1e-5)
         else:
             ang = np.zeros(t_n)
