@@ -71,7 +71,7 @@ def main(argv=None):
     heads = ["case", "stage", "T", "s", "frames/s", "real-time factor", "speed vs skimage chain",
              "speed vs OpenCV chain", "peak MB (tracemalloc)"]
     t = table(rows, cols, heads)
-    md = (f"# Throughput{' (quick)' if args.quick else ''}\n\nOne core per process, best of {repeat}. "
+    md = (f"# Throughput{' (quick)' if args.quick else ''}\n\nOne process on a shared 2-core machine (numerical libraries may use both cores), best of {repeat}; chain times include fusing the image with stripstitch.mosaic.fuse. "
           f"Finger generation ({FINGER_MM[0]:g} x {FINGER_MM[1]:g} mm at 12.7 um): {t_finger:.2f} s "
           f"(not included in 'simulate capture'). 'speed vs ... chain' = chain time / stage time "
           f"(> 1: faster than the chain). Max resident set size of the run: {rss_mb:.0f} MB.\n\n"
