@@ -8,7 +8,8 @@ white noise at 30 dB SNR and 8-bit quantisation; so that 100 000 frames need no 
 100 m long. Series: T = 100 ... 100 000 frames (8 x 192), C = 64 ... 512 columns (T = 1000,
 8 rows), R = 2 ... 64 rows (T = 1000, 128 columns). Each point is timed once (best of 2 below
 2000 frames) and its peak traced allocation measured in a second run (tracemalloc; skipped
-above --max-memory-frames). The fitted exponent is the least-squares log-log slope. Mode
+above --max-memory-frames), and a point whose peak, extrapolated from the previous points of
+its series, exceeds --memory-budget-mb (default 4000) is skipped and listed. The fitted exponent is the least-squares log-log slope. Mode
 "default" stops at --max-default-frames (default 10 000; --full: 100 000); mode "fast" runs the
 whole series. Writes benchmarks/results/scaling.json/.md.
 """
@@ -66,6 +67,9 @@ def main(argv=None):
     ap.add_argument("--full", action="store_true", help="mode 'default' up to 100 000 frames too")
     ap.add_argument("--max-default-frames", type=int, default=10000)
     ap.add_argument("--max-memory-frames", type=int, default=30000)
+    ap.add_argument("--memory-budget-mb", type=float, default=4000.0,
+                    help="skip points whose peak memory, extrapolated from the previous points of "
+                         "the series, exceeds this")
     args = ap.parse_args(argv)
     max_default = 100000 if args.full else args.max_default_frames
     if args.quick:
@@ -77,11 +81,23 @@ def main(argv=None):
     series = ([("T", n, (n, 8, 192)) for n in t_series]
               + [("C", c, (1000, 8, c)) for c in c_series]
               + [("R", r, (1000, r, 128)) for r in r_series])
-    rows = []
+    rows, skipped = [], []
     for mode in ("fast", "default"):
         for axis, value, shape in series:
             if mode == "default" and shape[0] > max_default:
                 continue
+            prev = [r for r in rows if r["mode"] == mode and r["axis"] == axis and r["peak_traced_mb"]]
+            if prev:
+                last = prev[-1]
+                expo = max(1.0, loglog_slope([r["value"] for r in prev], [r["peak_traced_mb"] for r in prev])
+                           if len(prev) >= 2 else 1.0)
+                predicted = last["peak_traced_mb"] * (value / last["value"]) ** expo
+                if predicted > args.memory_budget_mb:
+                    skipped.append({"mode": mode, "axis": axis, "value": value,
+                                    "predicted_peak_mb": predicted})
+                    print(f"{mode:8s} {axis}={value:<7d} skipped: predicted peak {predicted:.0f} MB "
+                          f"> budget {args.memory_budget_mb:.0f} MB", flush=True)
+                    continue
             frames = synthetic_frames(*shape)
             secs, res = best_time(lambda: _stitch(frames, mode), repeat=2 if shape[0] < 2000 else 1)
             truth = np.arange(shape[0])[:, None] * np.array([0.5, 0.05])
@@ -107,14 +123,18 @@ def main(argv=None):
     t1 = table(rows, ["mode", "axis", "T", "R", "C", "seconds", "frames_per_s", "peak_traced_mb",
                       "position_rms_px"])
     t2 = table(fits, ["mode", "axis", "range", "time_exponent", "memory_exponent"])
+    t3 = table(skipped, ["mode", "axis", "value", "predicted_peak_mb"]) if skipped else "none"
     md = (f"# Scaling{' (quick)' if args.quick else ''}\n\nstripstitch.stitch on synthetic moving-texture "
           "frames (0.5 px/frame along, 0.05 across, 30 dB). Exponent = log-log slope of time "
           "(or peak traced memory) against the swept size; 1 = linear.\n\n" + t1
-          + "\n\n## Fitted exponents\n\n" + t2 + "\n")
+          + "\n\n## Fitted exponents\n\n" + t2
+          + f"\n\n## Skipped (extrapolated peak memory over the {args.memory_budget_mb:.0f} MB budget)\n\n"
+          + t3 + "\n")
     print()
     print(md)
     paths = write("scaling_quick" if args.quick else "scaling",
-                  {"environment": environment(), "rows": rows, "fits": fits}, md)
+                  {"environment": environment(), "rows": rows, "fits": fits, "skipped": skipped,
+                   "memory_budget_mb": args.memory_budget_mb}, md)
     print("wrote", *paths)
     return 0
 
