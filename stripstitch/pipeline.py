@@ -296,7 +296,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # Model-error floor for the angle: it comes from along-swipe shifts of column
             # blocks a quarter of the width apart, each good to about 0.05 px at best
             # (aliasing), whatever the noise says.
-            floor_rad = 0.05 / max(c_n / 4.0, 1.0)
+            # The block shifts carry the same aliasing allowance as whole-frame shifts, so the
+            # nearly whole-pixel pairs decide the angles.
+            dist = np.abs(est.shift[:, 0] - np.round(est.shift[:, 0]))
+            floor_rad = (0.005 + 0.25 * 2.0 * dist) / max(c_n / 4.0, 1.0)
             ainfo = np.where(good, 1.0 / (1.0 / np.maximum(est.angle_info, 1e-30) + floor_rad ** 2), 0.0)
             ang = _traj.solve_angles(t_n, pairs, est.angle_rad, ainfo, dt_frames,
                                      sigma_acc_rad=1e-5)
@@ -306,12 +309,16 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                    sigma_acc_px=motion_prior_px)
         return est, good, tr
 
-    pairs, init = build_pairs(chain_pos, long_targets if fast else short_targets)
+    pairs, init = build_pairs(chain_pos, short_targets)
     # Over the short baselines of the first pass a narrow strip hardly measures rotation, and
     # a wrong angle would turn every later placement: angles come from the later passes.
-    est, good, tr = solve(pairs, init, rotation=False if not fast else rotation)
+    est, good, tr = solve(pairs, init, rotation=False)
     prep_used = prep
-    if not fast:
+    if fast:
+        # One re-pick from the solved trajectory (no fixed-pattern refit, no rotation).
+        pairs, init = build_pairs(tr.positions[chain], long_targets)
+        est, good, tr = solve(pairs, init, rotation=False)
+    else:
         # Second pass: the fixed pattern re-estimated against the fused image, partners
         # re-picked from the solved trajectory (the successive chain drifts where aliasing
         # biases half-pixel steps), and everything refined again.
