@@ -182,6 +182,7 @@ class StreamingStitcher:
                                               lo=1)
         self.keep_history = bool(keep_history)
         self._shape = None
+        self._mats = None
         self._finished = False
 
     # ------------------------------------------------------------------ set-up
@@ -262,6 +263,18 @@ class StreamingStitcher:
         self._h_pos, self._h_conf, self._h_contact, self._h_tex = [], [], [], []
         self._h_link_ok, self._h_time = [], []
         self._h_rows = []          # (row_index, values, weight)
+
+    def _upsample(self, z):
+        """``register._Atlas(z).u`` with the interpolation matrices built once."""
+        if self._mats is None:
+            r_n, c_n = self._shape
+            self._mats = (_reg._lagrange_upsample_matrix(r_n).astype(np.float32),
+                          _reg._lagrange_upsample_matrix(c_n).astype(np.float32))
+        mr, mc = self._mats
+        t_n, r_n, c_n = z.shape
+        zr = np.tensordot(mr, z.astype(np.float32), axes=(1, 1))           # (2R-1, T, C)
+        up = (zr.reshape(-1, c_n) @ mc.T).reshape(2 * r_n - 1, t_n, -1).transpose(1, 0, 2)
+        return _reg._keys_extend(up)
 
     @staticmethod
     def _pick_targets(r_n):
@@ -423,8 +436,7 @@ class StreamingStitcher:
                             events=tuple(events), frames_frozen=self._n_frozen)
 
     def _contact_of(self, tex):
-        hi = max(self._tex_hi, 1e-12)
-        return tex > 0.35 * hi
+        return tex > 0.35 * max(self._tex_hi, 1e-12)
 
     def _slots(self, a, b):
         return np.arange(a, b) % self.window
@@ -440,8 +452,14 @@ class StreamingStitcher:
         sl = self._slots(a, b)
         x = self._raw[sl]
         tex = self._texture(x)
-        self._tex_hi = max(self._tex_hi, float(tex.max()))
+        # Reference texture: the largest of the first batch, then a running mean over frames
+        # in contact (a running maximum would keep rising with the swipe's length).
+        if self._n_est == 0 or not self._seen_contact:
+            self._tex_hi = max(self._tex_hi, float(tex.max()))
         contact = self._contact_of(tex)
+        if self._seen_contact and contact.any():
+            self._tex_hi += min(1.0, contact.sum() / 256.0) * (float(tex[contact].mean()) -
+                                                              self._tex_hi)
         self._tex[sl] = tex
         if not self._seen_contact:
             # Frames before the first contact are finger-absent: they show the fixed pattern.
@@ -486,7 +504,7 @@ class StreamingStitcher:
         z[:, ~self._plate_ok] = 0.0
         self._z[sl] = z
         self._zn[sl] = _reg._row_normalise(z, self._plate_ok)
-        self._up[sl] = _reg._Atlas(z).u
+        self._up[sl] = self._upsample(z)
         g0, g1 = _reg._template_gradients(z)
         self._g0[sl] = g0
         self._g1[sl] = g1
@@ -691,7 +709,8 @@ class StreamingStitcher:
         # Frames whose chain is broken and no pair reaches keep their predicted step (the
         # motion prior carries them).
         tr = _traj.solve_positions(n, pairs, shift, info, np.zeros(n), dt,
-                                   sigma_acc_px=self.motion_prior_px, init_weight=init_w)
+                                   sigma_acc_px=self.motion_prior_px, init_weight=init_w,
+                                   iterations=3 if self.mode == "fast" else 5)
         newpos = tr.positions + base
         start = max(self._n_frozen, lo)
         sl = self._slots(start, b)

@@ -237,3 +237,13 @@ def test_bad_frames():
         t.push(np.zeros((8, 64)), timestamp_s=1.0)
     with pytest.raises(ReconstructionError, match="no frames"):
         StreamingStitcher().finish()
+
+
+def test_cached_upsampling_equals_the_registration_atlas(tex):
+    # The stitcher keeps register._Atlas's interpolation matrices; same result required.
+    from stripstitch import register
+    _, frames, _ = _swipe(tex, "steady")
+    z = frames[:5].astype(np.float32)
+    s = StreamingStitcher()
+    s.push(frames[0])
+    np.testing.assert_allclose(s._upsample(z), register._Atlas(z).u, rtol=0, atol=1e-5)
