@@ -1,6 +1,7 @@
 """The ``stripstitch`` command: parses arguments, calls the public API, writes files.
 
-Subcommands: ``inspect``, ``calibrate``, ``stitch``, ``simulate``, ``evaluate``, ``demo``.
+Subcommands: ``inspect``, ``calibrate``, ``stitch``, ``simulate``, ``evaluate``, ``compare``,
+``demo``.
 ``main(argv=None) -> int`` returns the exit code (0 ok, 1 processing failed or unusable swipe,
 2 usage error or bad input), so tests can call ``main(["stitch", "in.npy", "-o", "out.tiff"])``.
 """
@@ -667,6 +668,88 @@ def _cmd_evaluate(args, out):
 
 
 # ----------------------------------------------------------------------------------------------
+# compare
+# ----------------------------------------------------------------------------------------------
+
+def _read_image_2d(path, what, background):
+    """A 2-D image from .npy (NaN = no data), .tif/.tiff or .png (``background`` code = no
+    data) as float64."""
+    p = Path(path)
+    if not p.is_file():
+        raise _BadInput(f"{what} {str(path)!r} not found")
+    suffix = p.suffix.lower()
+    try:
+        if suffix == ".npy":
+            img = np.load(p, allow_pickle=False)
+            codes = None
+        elif suffix in (".tif", ".tiff"):
+            import tifffile
+            img = codes = tifffile.imread(p)
+        elif suffix == ".png":
+            import cv2
+            img = codes = cv2.imread(str(p), cv2.IMREAD_UNCHANGED)
+            if img is None:
+                raise ValueError("not a readable PNG")
+        else:
+            raise _BadInput(f"{what} {str(path)!r}: expected .npy, .tif, .tiff or .png; got "
+                            f"{suffix or 'no suffix'!r}")
+    except (OSError, ValueError) as exc:
+        raise _BadInput(f"{what} {str(path)!r}: {exc}") from None
+    img = np.asarray(img)
+    if img.ndim != 2 or img.dtype.kind not in "uif":
+        raise _BadInput(f"{what} {str(path)!r} must be one 2-D grey image; got shape "
+                        f"{img.shape}, dtype {img.dtype}")
+    out = img.astype(np.float64)
+    if codes is not None and background is not None:
+        out[codes == background] = np.nan
+    return out
+
+
+def _cmd_compare(args, out):
+    from . import compare as _cmp
+    _check_outputs([args.report, args.plot], args.force,
+                   inputs=_inputs_of(args.image, args.reference, args.frames))
+    img = _read_image_2d(args.image, "image", args.background)
+    ref_pitch = args.reference_pitch_um
+    if args.frames:
+        stack = _read_stack(args.frames, args)
+        res = _stitch(stack, args, None)
+        ref = np.asarray(res.image)
+        ref_pitch = float(res.pitch_um[0]) if ref_pitch is None else ref_pitch
+        source = {"frames": str(args.frames), "stitched": True}
+    else:
+        ref = _read_image_2d(args.reference, "--reference", args.background)
+        source = {"reference": str(args.reference)}
+    img_pitch = args.image_pitch_um if args.image_pitch_um is not None else ref_pitch
+    try:
+        cmp = _cmp.compare(img, ref, image_pitch_um=img_pitch, reference_pitch_um=ref_pitch,
+                           block_px=args.block_px, search_rows=args.search_rows)
+    except ValueError as exc:
+        if "does not match" in str(exc):
+            raise _Failure(str(exc)) from None
+        raise
+    doc = {"software": f"stripstitch {__version__}", "image": str(args.image), **source,
+           "comparison": cmp.to_dict(arrays=bool(args.arrays))}
+    if args.report:
+        _io.write_json(args.report, doc, overwrite=args.force)
+    if args.plot:
+        import matplotlib
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+        fig = _cmp.plot_distortion(cmp)
+        with _io.atomic_output(args.plot, overwrite=args.force) as fh:
+            fig.savefig(fh, format="png", dpi=120)
+        plt.close(fig)
+    out.document(doc)
+    out.text(f"compared     {args.image} with {args.frames or args.reference}")
+    for k in ("scale_along_pct", "shear_deg", "missing_rows", "duplicated_rows",
+              "distortion_rms_px", "ncc", "ssim", "matched_fraction"):
+        v = getattr(cmp, k)
+        out.text(f"  {k:<18} {v:.4f}" if isinstance(v, float) else f"  {k:<18} {v}")
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------------------------
 # demo
 # ----------------------------------------------------------------------------------------------
 
@@ -937,6 +1020,41 @@ def build_parser():
     s.add_argument("--min-contact", type=float, default=0.5, metavar="F",
                    help="score frames with at least this contact fraction (default: %(default)s)")
     s.set_defaults(func=_cmd_evaluate)
+
+    s = sub.add_parser("compare", parents=[common, reading, writing, stitching],
+                       formatter_class=fmt,
+                       help="measure an image stitched elsewhere against a reference",
+                       description="Align an image stitched elsewhere (e.g. on the device) "
+                                   "with a reference image, or with the reference stitched "
+                                   "from the swipe's frames, and report the along-swipe scale "
+                                   "error, shear, missing and duplicated rows, local "
+                                   "distortion (block matching), NCC and SSIM.",
+                       epilog=_epilog("""
+                           stripstitch compare device.png --frames swipe.npy --report cmp.json
+                           stripstitch compare device.tiff --reference swipe.tiff \\
+                               --plot distortion.png --json
+                           """))
+    s.add_argument("image", help="image under test: .npy (NaN = no data), .tif/.tiff or .png")
+    g = s.add_mutually_exclusive_group(required=True)
+    g.add_argument("--reference", metavar="IMAGE", help="reference image (.npy, .tif, .png)")
+    g.add_argument("--frames", metavar="FILE",
+                   help="the swipe's frames (as for 'stitch'): stitch the reference first")
+    s.add_argument("--report", metavar="JSON", help="also write the comparison as JSON")
+    s.add_argument("--plot", metavar="PNG", help="also draw the distortion field")
+    s.add_argument("--arrays", action="store_true",
+                   help="include the per-row and per-block arrays in the JSON")
+    s.add_argument("--image-pitch-um", type=_positive("--image-pitch-um"), metavar="UM",
+                   help="pixel pitch of the image (default: the reference's)")
+    s.add_argument("--reference-pitch-um", type=_positive("--reference-pitch-um"), metavar="UM",
+                   help="pixel pitch of the reference (default: from the stitch, else the "
+                        "image's)")
+    s.add_argument("--background", type=_count("--background", lo=0), default=0, metavar="CODE",
+                   help="code of no-data pixels in TIFF/PNG inputs (default: %(default)s)")
+    s.add_argument("--block-px", type=_count("--block-px", lo=8), default=32, metavar="N",
+                   help="block size of the distortion field (default: %(default)s)")
+    s.add_argument("--search-rows", type=_count("--search-rows", lo=1), default=12, metavar="N",
+                   help="search range per row in pixels (default: %(default)s)")
+    s.set_defaults(func=_cmd_compare)
 
     s = sub.add_parser("demo", parents=[common, writing, stitching], formatter_class=fmt,
                        help="stitch the bundled demo swipes and print a summary table",

@@ -128,3 +128,66 @@ def test_unrelated_images_fail_clearly(ref):
     other = band_texture((320, 128), seed=99)
     with pytest.raises(ValueError, match="does not match the reference"):
         compare(other, ref, min_score=0.9)
+
+
+# ---- command line: stripstitch compare ----
+
+def _cli(argv, capsys):
+    from stripstitch.cli import main
+    code = main(argv)
+    cap = capsys.readouterr()
+    return code, cap.out, cap.err
+
+
+def test_cli_compare_images(ref, tmp_path, capsys):
+    img = np.delete(ref, [150, 151], axis=0)
+    np.save(tmp_path / "dev.npy", img)
+    np.save(tmp_path / "ref.npy", ref)
+    rep, plot = tmp_path / "cmp.json", tmp_path / "d.png"
+    code, out, err = _cli(["compare", str(tmp_path / "dev.npy"), "--reference",
+                           str(tmp_path / "ref.npy"), "--report", str(rep), "--plot", str(plot),
+                           "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["comparison"]["missing_rows"] == 2
+    assert json.loads(rep.read_text())["comparison"]["missing_rows"] == 2
+    assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"            # PNG signature
+    # Outputs are never replaced without --force (exit 2, one line).
+    code, _, err = _cli(["compare", str(tmp_path / "dev.npy"), "--reference",
+                         str(tmp_path / "ref.npy"), "--report", str(rep), "-q"], capsys)
+    assert code == 2 and "exists already" in err and len(err.strip().splitlines()) == 1
+
+
+def test_cli_compare_with_frames(tmp_path, capsys):
+    # Reference stitched from the frames; the device image drops 3 rows of that reference.
+    tex = band_texture((400, 96), seed=3)
+    frames = np.stack([tex[2 * t + 8:2 * t + 16, 8:72] for t in range(120)])
+    np.save(tmp_path / "swipe.npy", frames)
+    from stripstitch import stitch
+    img = np.delete(stitch(frames).image, [100, 101, 102], axis=0)
+    np.save(tmp_path / "dev.npy", img)
+    code, out, err = _cli(["compare", str(tmp_path / "dev.npy"), "--frames",
+                           str(tmp_path / "swipe.npy"), "--json", "-q"], capsys)
+    assert code == 0, err
+    c = json.loads(out)["comparison"]
+    assert c["missing_rows"] == 3 and c["duplicated_rows"] == 0
+    assert c["ncc"] > 0.99
+
+
+def test_cli_compare_errors(ref, tmp_path, capsys):
+    np.save(tmp_path / "ref.npy", ref)
+    np.save(tmp_path / "other.npy", band_texture((320, 128), seed=99))
+    code, _, err = _cli(["compare", str(tmp_path / "nope.npy"), "--reference",
+                         str(tmp_path / "ref.npy"), "-q"], capsys)
+    assert code == 2 and "not found" in err
+    code, _, err = _cli(["compare", str(tmp_path / "ref.npy"), "-q"], capsys)
+    assert code == 2 and "--reference" in err
+    (tmp_path / "x.txt").write_text("x")
+    code, _, err = _cli(["compare", str(tmp_path / "x.txt"), "--reference",
+                         str(tmp_path / "ref.npy"), "-q"], capsys)
+    assert code == 2 and "expected .npy" in err
+    code, _, err = _cli(["compare", str(tmp_path / "other.npy"), "--reference",
+                         str(tmp_path / "ref.npy"), "-q"], capsys)
+    assert code == 1 and "does not match" in err
+    code, out, _ = _cli(["compare", "--help"], capsys)
+    assert code == 0 and "example:" in out
