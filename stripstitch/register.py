@@ -71,8 +71,9 @@ def prepare(frames, *, frame_weights=None):
     frames : (T, R, C) ndarray
         Raw frames (any real dtype).
     frame_weights : (T,) array_like, optional
-        Weights of the frames in the per-plate statistics (e.g. to equalise finger positions
-        when the finger stalled). Default is None (equal weights over contact frames).
+        Weights of the frames in the per-plate statistics. Default is None: each contact frame
+        weighs by how much it changed from the previous one (clipped at half the 90th
+        percentile), so a stall counts about once.
 
     Returns
     -------
@@ -112,7 +113,15 @@ def prepare(frames, *, frame_weights=None):
     contact = texture0 > thresh
     dif = np.diff(x, axis=0)
     w = contact.astype(np.float64)
-    if frame_weights is not None:
+    if frame_weights is None and t_n > 2:
+        # A frame counts by how much new finger it shows: during a stall every frame repeats
+        # the last, and an unweighted mean would turn the stalled finger into a static
+        # "fixed pattern" that pulls every shift towards zero.
+        change = np.sqrt(np.mean(np.diff(x, axis=0) ** 2, axis=(1, 2)))
+        change = np.concatenate([change[:1], change])
+        ref = np.percentile(change[contact], 90) if contact.any() else np.percentile(change, 90)
+        w = w * np.clip(change / max(0.5 * ref, 1e-12), 0.0, 1.0)
+    elif frame_weights is not None:
         w = w * np.asarray(frame_weights, dtype=np.float64)
     w_sum = w.sum()
     if w_sum <= 0:
