@@ -16,6 +16,11 @@ from __future__ import annotations
 
 import argparse
 import os
+
+# One BLAS thread, as on a driver's small machine (a multi-threaded BLAS spin-waits on a
+# busy 2-CPU machine and makes the small matrix products ten times slower).
+for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")
 import time
 
 import numpy as np
@@ -64,7 +69,7 @@ def agreement(seed=3):
     cap = simulate.swipe(n_rows=8, n_cols=192, frame_rate_hz=4000.0, speed_mm_s=100.0,
                          finger_size_mm=(14.0, 12.0), rng=seed)
     frames = cap.frames
-    ok = cap.contact >= 0.99
+    ok = cap.contact >= 0.5          # as evaluate's default min_contact
     t0 = time.perf_counter()
     batch = stitch(frames, frame_rate_hz=4000.0)
     tb = time.perf_counter() - t0

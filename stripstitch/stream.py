@@ -8,7 +8,16 @@ Working memory is a fixed window (preallocated ring buffers, sizes in :meth:`mem
 
 * ``window_frames`` frames (raw, prepared, twice-upsampled, gradients) and the pairs among them;
 * an accumulator strip of ``accumulator_rows`` x ``accumulator_cols`` output pixels (value and
-  weight) that scrolls with the finger.
+  weight) that scrolls with the finger: ``window_frames * R + R + 4 + 2 * hold_rows`` rows by
+  ``C + 2 * drift_cols + 2`` columns at the sensor pitch. For the default 8 x 192 strip and
+  default options: 64 frames and a strip of 652 x 322 pixels, 7.3 MB in all, whatever the
+  swipe's length (with ``keep_history=False``; with True the per-frame trajectory and the
+  emitted rows are also kept for ``finish()``).
+
+Accuracy (tests/test_stream.py, frames cut at known positions from a band-limited texture):
+every frame within 0.25 px of the truth (measured at most 0.18 px) on steady, varying,
+stalling and backtracking swipes, and within 0.25 px of ``stitch`` wherever ``stitch`` is
+within 0.15 px of the truth; the image correlates >= 0.99 with the source texture.
 
 Per batch of ``batch_frames`` new frames: coarse NCC search and Gauss-Newton refinement of the
 successive pairs and of whole-pixel partners looking back within the window (the registration
@@ -183,6 +192,7 @@ class StreamingStitcher:
         self.keep_history = bool(keep_history)
         self._shape = None
         self._mats = None
+        self._empty = None
         self._finished = False
 
     # ------------------------------------------------------------------ set-up
@@ -421,6 +431,14 @@ class StreamingStitcher:
     # ------------------------------------------------------------------ internals
     def _update(self, events, rows):
         c_w = self._acc_w if self._shape is not None else 0
+        if not rows and not events:
+            # Most pushes only fill the ring: hand back one shared empty update.
+            if self._empty is None or self._empty.frames_frozen != self._n_frozen:
+                self._empty = StreamUpdate(rows=np.zeros((0, c_w)), weight=np.zeros((0, c_w)),
+                                           row_index=np.zeros(0, np.int64),
+                                           first_col=self._col0, events=(),
+                                           frames_frozen=self._n_frozen)
+            return self._empty
         if rows:
             idx = np.concatenate([r[0] for r in rows])
             val = np.concatenate([r[1] for r in rows])
@@ -699,7 +717,6 @@ class StreamingStitcher:
             pairs = np.concatenate([pairs, fpairs])
             shift = np.concatenate([shift, fshift])
             info = np.concatenate([info, finfo])
-        init_w = np.ones(len(pairs))
         if self._uses_times:
             tt = self._time[self._slots(lo, b)]
             fr = self.frame_rate_hz or float(1.0 / np.median(np.diff(tt)))
@@ -708,16 +725,16 @@ class StreamingStitcher:
             dt = np.ones(n - 1)
         # Frames whose chain is broken and no pair reaches keep their predicted step (the
         # motion prior carries them).
-        tr = _traj.solve_positions(n, pairs, shift, info, np.zeros(n), dt,
-                                   sigma_acc_px=self.motion_prior_px, init_weight=init_w,
-                                   iterations=3 if self.mode == "fast" else 5)
-        newpos = tr.positions + base
+        positions, pair_weight = _solve_window(n, pairs, shift, info, dt,
+                                               sigma_acc_px=self.motion_prior_px,
+                                               iterations=3 if self.mode == "fast" else 5)
+        newpos = positions + base
         start = max(self._n_frozen, lo)
         sl = self._slots(start, b)
         self._pos[sl] = newpos[start - lo:]
         # Confidence inputs (pairs only, without the stiff anchors).
         n_real = int(inwin.sum())
-        pw = tr.pair_weight[:n_real]
+        pw = pair_weight[:n_real]
         preal = pairs[:n_real]
         fi = np.zeros((n, 2, 2))
         np.add.at(fi, preal[:, 0], pw[:, None, None] * info[:n_real])
@@ -947,6 +964,63 @@ class StreamingStitcher:
                     self._ev_low_sent = True
             else:
                 self._ev_low_start = None
+
+
+def _solve_window(n, pairs, shift, info, dt, *, sigma_acc_px, iterations=5):
+    """Dense form of ``trajectory.solve_positions`` (angles 0) for one window.
+
+    The same cost (whitened pair residuals with information ``info``, the acceleration
+    prior of ``trajectory._prior_rows``) and the same robust reweighting (Huber for two
+    iterations, then Cauchy, k = 3, on the Mahalanobis residual over its robust spread),
+    but with the normal equations of the few hundred unknowns built and solved densely:
+    the sparse path's set-up costs more than the solve at this size. Frame 0 is held at 0.
+
+    Returns
+    -------
+    positions : (n, 2) float64
+    pair_weight : (P,) float64
+    """
+    pairs = np.asarray(pairs, dtype=np.int64)
+    i, j = pairs[:, 0], pairs[:, 1]
+    inf = 0.5 * (info + np.transpose(info, (0, 2, 1)))
+    use = np.trace(inf, axis1=1, axis2=2) > 0
+    # Prior normal matrix: second differences per axis (as trajectory._prior_rows).
+    prior_n = np.zeros((n, n))
+    if n >= 3:
+        k = np.arange(1, n - 1)
+        a = 1.0 / dt[k]
+        b = 1.0 / dt[k - 1]
+        sd = sigma_acc_px * 0.5 * (dt[k] + dt[k - 1])
+        d = np.zeros((n - 2, n))
+        rows = np.arange(n - 2)
+        d[rows, k - 1] = b / sd
+        d[rows, k] = -(a + b) / sd
+        d[rows, k + 1] = a / sd
+        prior_n = d.T @ d
+    big_prior = np.kron(prior_n, np.eye(2))
+    w = np.ones(len(pairs))
+    pos = np.zeros((n, 2))
+    eye = np.eye(2 * n - 2) * 1e-10
+    for it in range(iterations):
+        wi = (w * use)[:, None, None] * inf
+        nrm = np.zeros((n, n, 2, 2))
+        np.add.at(nrm, (i, i), wi)
+        np.add.at(nrm, (j, j), wi)
+        np.add.at(nrm, (i, j), -wi)
+        np.add.at(nrm, (j, i), -wi)
+        rhs = np.zeros((n, 2))
+        g = np.einsum("pab,pb->pa", wi, shift)
+        np.add.at(rhs, j, g)
+        np.add.at(rhs, i, -g)
+        full = nrm.transpose(0, 2, 1, 3).reshape(2 * n, 2 * n) + big_prior
+        sol = np.linalg.solve(full[2:, 2:] + eye, rhs.reshape(-1)[2:])
+        pos = np.concatenate([[0.0, 0.0], sol]).reshape(n, 2)
+        e = pos[j] - pos[i] - shift
+        m = np.sqrt(np.maximum(np.einsum("pa,pab,pb->p", e, inf, e), 0.0))
+        scale = max(1.0, 1.4826 * float(np.median(m[use]))) if use.any() else 1.0
+        w = _traj._robust_weights(m / scale, "huber" if it < 2 else "cauchy")
+        w[~use] = 0.0
+    return pos, w
 
 
 def _replace_rows(est, k, est2, sel):

@@ -116,11 +116,12 @@ def test_stream_equals_batch_and_truth(tex, kind):
     # Against ground truth: every frame within 0.25 px (measured: at most 0.18 px).
     assert np.abs(res.positions - pos).max() < 0.25
     # Against the batch path, per axis, wherever the batch itself is right (within 0.15 px
-    # of the truth). Measured: the batch slips sideways by 0.5-3 px after the start of the
-    # "stall" and in "varying" (a batch defect, reported), so there only its along-swipe
-    # positions and the frames before the slip are compared.
+    # of the truth). Measured (batch at commit c664b87): the batch slips sideways by
+    # 0.7-0.8 px in "stall" and "varying" and drifts along by up to 0.36 px in "stall" (a
+    # batch defect, reported), so there only the frames before the slip are compared;
+    # stream-batch along at most 0.24 px over all frames of all four swipes.
     good = np.abs(batch.positions - pos) < 0.15
-    assert good[:, 0].mean() > 0.5
+    assert good[:, 0].mean() > 0.25 and good[:, 1].mean() > 0.15
     for k in range(2):
         np.testing.assert_allclose(res.positions[good[:, k], k], batch.positions[good[:, k], k],
                                    atol=0.25)
@@ -247,3 +248,42 @@ def test_cached_upsampling_equals_the_registration_atlas(tex):
     s = StreamingStitcher()
     s.push(frames[0])
     np.testing.assert_allclose(s._upsample(z), register._Atlas(z).u, rtol=0, atol=1e-5)
+
+
+def test_dropped_frames_with_timestamps(tex):
+    # As test_pipeline's batch case: frames 50..52 never arrive; the timestamps say so.
+    steps = np.tile([1.0, 0.1], (199, 1))
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0])
+    keep = np.setdiff1d(np.arange(200), [50, 51, 52])
+    s = StreamingStitcher()
+    for t in keep:
+        s.push(frames[t], timestamp_s=t / 4000.0)
+    res = s.finish()
+    assert res.frame_rate_hz == pytest.approx(4000.0)
+    gaps = res.events_of("gap")
+    assert gaps and gaps[0].details["reason"] == "dropped_frames"
+    assert gaps[0].details["dropped_frames"] == 3
+    err = res.positions - (pos[keep] - pos[keep][0])
+    assert np.abs(err).max() < 0.1
+
+
+def test_window_solve_equals_the_trajectory_stage():
+    # The dense window solve must give trajectory.solve_positions' answer (angles 0).
+    from stripstitch import trajectory
+    from stripstitch.stream import _solve_window
+    rng = np.random.default_rng(4)
+    n = 40
+    truth = np.cumsum(rng.normal([1.3, 0.1], 0.05, (n, 2)), axis=0)
+    truth -= truth[0]
+    pairs = np.array([(a, a + k) for a in range(n) for k in (1, 3, 5) if a + k < n])
+    shift = truth[pairs[:, 1]] - truth[pairs[:, 0]] + rng.normal(0, 0.02, (len(pairs), 2))
+    shift[7] += [2.0, -1.0]                                  # one outlier
+    info = np.einsum("p,ab->pab", rng.uniform(500, 3000, len(pairs)), np.eye(2))
+    info[3] = 0.0                                            # one unused pair
+    dt = np.ones(n - 1)
+    ref = trajectory.solve_positions(n, pairs, shift, info, np.zeros(n), dt, sigma_acc_px=0.05)
+    pos, w = _solve_window(n, pairs, shift, info, dt, sigma_acc_px=0.05)
+    np.testing.assert_allclose(pos, ref.positions, atol=1e-6)
+    np.testing.assert_allclose(w, ref.pair_weight, atol=1e-6)
+    assert w[7] < 0.1 and w[3] == 0.0
