@@ -119,33 +119,42 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
             raise ValueError(f"weights must have shape {(r_n, c_n)} or {x.shape}; got {w.shape}")
         if not np.isfinite(w).all() or (w < 0).any():
             raise ValueError("weights must be finite and non-negative")
-    q = frame_coordinates(x.shape, pos, ang) / pitch
-    q0 = q[..., 0].ravel()
-    q1 = q[..., 1].ravel()
-    vals = x.reshape(-1).astype(np.float64)
-    wv = np.asarray(w, dtype=np.float64).reshape(-1)
-    keep = wv > 0
-    q0, q1, vals, wv = q0[keep], q1[keep], vals[keep], wv[keep]
-    if q0.size == 0:
-        raise ValueError("weights exclude every observation: nothing to fuse")
-    lo0 = np.floor(q0.min())
-    lo1 = np.floor(q1.min())
-    f0 = q0 - lo0
-    f1 = q1 - lo1
-    h = int(np.floor(f0.max())) + 2
-    wd = int(np.floor(f1.max())) + 2
-    i0 = np.floor(f0).astype(np.int64)
-    i1 = np.floor(f1).astype(np.int64)
-    a0 = f0 - i0
-    a1 = f1 - i1
+    # Grid bounds from the frames' corners (a rotated rectangle's extremes are its corners),
+    # then frames are splatted in chunks so memory stays proportional to the image.
+    corners = frame_coordinates((t_n, r_n, c_n), pos, ang)[:, [0, 0, -1, -1], [0, -1, 0, -1]] / pitch
+    lo0 = np.floor(corners[..., 0].min())
+    lo1 = np.floor(corners[..., 1].min())
+    h = int(np.floor(corners[..., 0].max() - lo0)) + 2
+    wd = int(np.floor(corners[..., 1].max() - lo1)) + 2
     acc = np.zeros(h * wd)
     wacc = np.zeros(h * wd)
-    for di, wa in ((0, 1.0 - a0), (1, a0)):
-        for dj, wb in ((0, 1.0 - a1), (1, a1)):
-            ww = wv * wa * wb
-            idx = (i0 + di) * wd + (i1 + dj)
-            acc += np.bincount(idx, weights=ww * vals, minlength=h * wd)
-            wacc += np.bincount(idx, weights=ww, minlength=h * wd)
+    any_kept = False
+    step = max(1, 200_000 // max(r_n * c_n, 1))
+    for s0 in range(0, t_n, step):
+        sl = slice(s0, min(t_n, s0 + step))
+        n_f = sl.stop - sl.start
+        q = frame_coordinates((n_f, r_n, c_n), pos[sl], ang[sl]) / pitch
+        vals = x[sl].reshape(-1).astype(np.float64)
+        wv = np.asarray(w[sl], dtype=np.float64).reshape(-1)
+        keep = wv > 0
+        if not keep.any():
+            continue
+        any_kept = True
+        f0 = q[..., 0].reshape(-1)[keep] - lo0
+        f1 = q[..., 1].reshape(-1)[keep] - lo1
+        vals, wv = vals[keep], wv[keep]
+        i0 = np.floor(f0).astype(np.int64)
+        i1 = np.floor(f1).astype(np.int64)
+        a0 = f0 - i0
+        a1 = f1 - i1
+        for di, wa in ((0, 1.0 - a0), (1, a0)):
+            for dj, wb in ((0, 1.0 - a1), (1, a1)):
+                ww = wv * wa * wb
+                idx = (i0 + di) * wd + (i1 + dj)
+                acc += np.bincount(idx, weights=ww * vals, minlength=h * wd)
+                wacc += np.bincount(idx, weights=ww, minlength=h * wd)
+    if not any_kept:
+        raise ValueError("weights exclude every observation: nothing to fuse")
     acc = acc.reshape(h, wd)
     wacc = wacc.reshape(h, wd)
     # Trim empty border rows/columns left by the +2 allocation.

@@ -19,7 +19,7 @@ __all__ = ["stitch"]
 MODES = ("default", "fast")
 
 
-def _pick_partners(chain_pos, failed, targets, *, max_lag=2048, chunk=256):
+def _pick_partners(chain_pos, failed, targets, *, max_lag=256, chunk=256):
     """Choose partners along the chain of contact frames whose displacement is nearly whole.
 
     Two frames whose relative displacement is an integer number of pixels sample the finger
@@ -29,7 +29,9 @@ def _pick_partners(chain_pos, failed, targets, *, max_lag=2048, chunk=256):
     For each frame and each integer target displacement ``n`` (along the swipe, either
     direction) the partner is the frame, within ``max_lag`` and not across a failed link,
     whose coarse displacement is closest to (n, round(across)). Target 0 pairs frames of a
-    stall with the latest frame still in place.
+    stall with the latest frame still in place. ``max_lag`` (256 frames) bounds the band of
+    the normal equations, and so the memory of their sparse factorisation; a longer stall is
+    tied together through a chain of such pairs.
 
     Returns
     -------
@@ -409,22 +411,37 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     if not (w > 0).any():
         return None
     mos = _mosaic.fuse(values, positions, angles_deg, weights=w)
-    q = _mosaic.frame_coordinates(x.shape, positions, angles_deg) + mos.origin_px
     img = np.nan_to_num(mos.image, nan=level)
-    ref = ndimage.map_coordinates(img, [q[..., 0], q[..., 1]], order=1, mode="nearest")
-    covered = ndimage.map_coordinates(np.isfinite(mos.image).astype(float),
-                                      [q[..., 0], q[..., 1]], order=1, mode="constant") > 0.99
-    m = covered & prep.contact[:, None, None]
-    n = m.sum(axis=0)
+    seen = np.isfinite(mos.image).astype(float)
+    t_n, r_n, c_n = x.shape
+    # Per-plate sums for the line fit reading = g * ref + o, accumulated over chunks of
+    # frames so memory does not grow with the swipe.
+    n = np.zeros((r_n, c_n))
+    sr = np.zeros((r_n, c_n))
+    sx = np.zeros((r_n, c_n))
+    srr = np.zeros((r_n, c_n))
+    srx = np.zeros((r_n, c_n))
+    step = max(1, 200_000 // (r_n * c_n))
+    for s0 in range(0, t_n, step):
+        sl = slice(s0, min(t_n, s0 + step))
+        q = _mosaic.frame_coordinates(x[sl].shape, positions[sl], angles_deg[sl]) + mos.origin_px
+        ref = ndimage.map_coordinates(img, [q[..., 0], q[..., 1]], order=1, mode="nearest")
+        cov = ndimage.map_coordinates(seen, [q[..., 0], q[..., 1]], order=1, mode="constant") > 0.99
+        m = (cov & prep.contact[sl, None, None]).astype(np.float64)
+        xs = x[sl]
+        n += m.sum(0)
+        sr += (ref * m).sum(0)
+        sx += (xs * m).sum(0)
+        srr += (ref * ref * m).sum(0)
+        srx += (ref * xs * m).sum(0)
     if (n[prep.plate_ok] < 8).any():
         return None
-    mf = m.astype(np.float64)
-    nn = np.maximum(n, 1)
-    rx = (ref * mf).sum(0) / nn
-    xx = (x * mf).sum(0) / nn
-    rc = (ref - rx) * mf
-    xc = (x - xx) * mf
-    gain = (rc * xc).sum(0) / np.maximum((rc * rc).sum(0), 1e-12)   # reading = g * ref + o
+    nn = np.maximum(n, 1.0)
+    rx = sr / nn
+    xx = sx / nn
+    var_r = srr / nn - rx ** 2
+    cov_rx = srx / nn - rx * xx
+    gain = cov_rx / np.maximum(var_r, 1e-12)                   # reading = g * ref + o
     gain = np.where(prep.plate_ok, np.clip(gain, 0.5, 2.0), 1.0)
     offset = xx - gain * rx
     z = (((x - offset) / gain - level) / scale).astype(np.float32)

@@ -228,12 +228,16 @@ def coarse_shifts(zn, pairs, *, max_along, max_across, prior=None, prior_window_
     score = np.zeros(p_n)
     nsel = np.zeros(p_n, dtype=np.int64)
     surfaces = np.zeros((p_n, len(d), len(e)), dtype=np.float32) if return_surfaces else None
-    fz = sfft.rfft2(zn, s=(n_r, n_c), axes=(1, 2), workers=1)
     for s in range(0, p_n, chunk):
         pi = pairs[s:s + chunk, 0]
         pj = pairs[s:s + chunk, 1]
+        # Spectra of this chunk's frames only, so memory does not grow with the swipe.
+        used, inv = np.unique(pairs[s:s + chunk].ravel(), return_inverse=True)
+        fz = sfft.rfft2(zn[used], s=(n_r, n_c), axes=(1, 2), workers=1).astype(np.complex64)
+        inv = inv.reshape(-1, 2)
         # corr[d, e] = sum A[r + d, c + e] B[r, c]  (A = frame i, B = frame j)
-        corr = sfft.irfft2(fz[pi] * np.conj(fz[pj]), s=(n_r, n_c), axes=(1, 2), workers=1)
+        corr = sfft.irfft2(fz[inv[:, 0]] * np.conj(fz[inv[:, 1]]), s=(n_r, n_c), axes=(1, 2),
+                           workers=1)
         surf = corr[:, d % n_r][:, :, e % n_c] / n_ov[None]
         if surfaces is not None:
             surfaces[s:s + chunk] = surf
