@@ -2,10 +2,10 @@
 
 from ._types import Event, QualityReport, Reconstruction, ReconstructionError, LowOverlapWarning
 from .pipeline import stitch
-from . import calibrate, evaluate, io, mosaic, register, report, simulate, trajectory
+from . import calibrate, evaluate, io, mosaic, plots, register, report, simulate, sweep, trajectory
 
 __version__ = "0.1.0"
 
 __all__ = ["stitch", "Event", "QualityReport", "Reconstruction", "ReconstructionError",
-           "LowOverlapWarning", "calibrate", "evaluate", "io", "mosaic", "register", "report",
-           "simulate", "trajectory", "__version__"]
+           "LowOverlapWarning", "calibrate", "evaluate", "io", "mosaic", "plots", "register",
+           "report", "simulate", "sweep", "trajectory", "__version__"]

@@ -240,8 +240,11 @@ def reconstruct(capture, method="default"):
         except ImportError:                 # not re-exported yet
             from .pipeline import stitch
 
+        # A capture comes with its frame times (dumps carry counters or timestamps), which
+        # tell the stitcher about dropped frames.
         return stitch(capture.frames, pitch_um=float(capture.pitch_um),
-                      frame_rate_hz=float(capture.frame_rate_hz), mode=method)
+                      frame_rate_hz=float(capture.frame_rate_hz),
+                      timestamps_s=np.asarray(capture.times_s, dtype=np.float64), mode=method)
     if method == "truth":
         p = float(capture.pitch_um)
         return ChainResult(capture.positions, capture.angles, np.diff(capture.positions, axis=0),
