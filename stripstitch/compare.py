@@ -58,7 +58,8 @@ class Comparison:
     ncc : float
         Normalised cross-correlation (Pearson) of the aligned image with the reference.
     ssim : float
-        Structural similarity (scikit-image ``structural_similarity``) of the same.
+        Structural similarity (scikit-image ``structural_similarity``) of the same, both
+        standardised (zero mean, unit spread) over the pixels they share.
     matched_fraction : float
         Fraction of image rows matched.
     """
@@ -429,8 +430,10 @@ def _similarity(img, ref, row_map, col_map, ii):
     xa = np.where(m, val, np.nan)[box]
     ra = np.where(m, ref, np.nan)[box]
     mm = m[box]
-    xa = np.where(mm, xa, np.nanmean(xa))
-    ra = np.where(mm, ra, np.nanmean(ra))
+    # Both standardised over the common pixels first, so that a different gain or offset of
+    # the two pipelines does not count against the structure.
+    xa = np.where(mm, (xa - x.mean()) / (x.std() or 1.0), 0.0)
+    ra = np.where(mm, (ra - r.mean()) / (r.std() or 1.0), 0.0)
     if min(xa.shape) < 7:
         return ncc, float("nan")
     rng = float(max(np.ptp(ra), np.ptp(xa), 1e-12))

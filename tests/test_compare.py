@@ -191,3 +191,17 @@ def test_cli_compare_errors(ref, tmp_path, capsys):
     assert code == 1 and "does not match" in err
     code, out, _ = _cli(["compare", "--help"], capsys)
     assert code == 0 and "example:" in out
+
+
+def test_similarity_ignores_gain_and_offset(ref):
+    # NCC (numpy Pearson) and SSIM (scikit-image, on standardised images) do not depend on
+    # a linear change of the image's values.
+    from skimage.metrics import structural_similarity
+    a = compare(ref, ref)
+    b = compare(3.0 * ref + 40.0, ref)
+    assert b.ncc == pytest.approx(a.ncc, abs=1e-9) and b.ssim == pytest.approx(a.ssim, abs=1e-6)
+    # The same figure as scikit-image's SSIM of the standardised pair (identity alignment).
+    z = (ref - ref.mean()) / ref.std()
+    zb = (b.ncc and (3.0 * ref + 40.0 - (3.0 * ref + 40.0).mean()) / (3.0 * ref).std())
+    assert structural_similarity(z, zb, data_range=float(np.ptp(z))) == pytest.approx(b.ssim,
+                                                                                         abs=0.01)
