@@ -1,7 +1,7 @@
 """Tests of the capacitive front end (stripstitch.simulate.frontend) against outside references.
 
 Every check names its source beside it. "REFERENCE-VALUES.md" is the project's survey of
-published and worked values (/work/shared/REFERENCE-VALUES.md); the worked values it lists are
+published and worked values (../shared/REFERENCE-VALUES.md beside the repository); the worked values it lists are
 in tests/data/reference_frontend.csv together with their sources.
 """
 
