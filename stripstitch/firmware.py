@@ -158,8 +158,31 @@ def _equiangular_q(cm, c0, cp, frac_bits):
     return np.clip(q, -half, half)
 
 
+def _best_q(costs, d_rng, e_rng, frac_bits):
+    """Integer argmin of (P, nd, ne) costs plus the equiangular fraction per axis (Q format)."""
+    p_n, nd, ne = costs.shape
+    flat = costs.reshape(p_n, -1)
+    k = np.argmin(flat, axis=1)
+    kd, ke = np.divmod(k, ne)
+    idx = np.arange(p_n)
+    cmin = flat[idx, k]
+    shift_q = np.zeros((p_n, 2), dtype=np.int64)
+    for axis, kk, n in ((0, kd, nd), (1, ke, ne)):
+        inner = (kk > 0) & (kk < n - 1)
+        km = np.clip(kk - 1, 0, n - 1)
+        kp = np.clip(kk + 1, 0, n - 1)
+        if axis == 0:
+            cm, cp = costs[idx, km, ke], costs[idx, kp, ke]
+        else:
+            cm, cp = costs[idx, kd, km], costs[idx, kd, kp]
+        frac = np.where(inner, _equiangular_q(cm, cmin, cp, frac_bits), 0)
+        base = (d_rng if axis == 0 else e_rng)[kk].astype(np.int64)
+        shift_q[:, axis] = np.left_shift(base, frac_bits) + frac
+    return shift_q, cmin, flat.max(axis=1)
+
+
 def estimate_shifts_int(frames_uint8, *, max_along=None, max_across=3, frac_bits=8,
-                        offset=None):
+                        offset=None, reference="keyframe"):
     """Shifts between successive 8-bit frames with integer arithmetic only.
 
     Parameters
@@ -176,6 +199,11 @@ def estimate_shifts_int(frames_uint8, *, max_along=None, max_across=3, frac_bits
     offset : (R, C) integer array, optional
         Per-plate offset (fixed pattern) in codes, e.g. from a calibration. Default None:
         the per-plate integer mean over the frames, ``sum // T``.
+    reference : {"keyframe", "previous"}, optional
+        Match each frame against a key frame, kept while the next frame is expected
+        within ``min(max_along - 1, R // 2 - 1)`` px of it (over half the strip
+        overlapping), or always against the previous frame. Default "keyframe" (fewer
+        step errors add up along the swipe; the same work per frame).
 
     Returns
     -------
@@ -221,27 +249,43 @@ def estimate_shifts_int(frames_uint8, *, max_along=None, max_across=3, frac_bits
             raise ValueError(f"offset must have shape {(r_n, c_n)}; got {off.shape}")
         off = off.astype(np.int16)
     z = x.astype(np.int16) - off[None]                 # int16, |z| <= 255
+    if reference not in ("keyframe", "previous"):
+        raise ValueError(f"reference must be one of ['keyframe', 'previous']; got {reference!r}")
     d_rng, e_rng = _candidates(r_n, c_n, max_along, max_across)
-    costs = _sad_costs(z[:-1], z[1:], d_rng, e_rng)    # (T-1, nd, ne) int32
-    p_n, nd, ne = costs.shape
-    flat = costs.reshape(p_n, -1)
-    k = np.argmin(flat, axis=1)
-    kd, ke = np.divmod(k, ne)
-    idx = np.arange(p_n)
-    cmin = flat[idx, k]
-    shift_q = np.zeros((p_n, 2), dtype=np.int64)
-    for axis, kk, n in ((0, kd, nd), (1, ke, ne)):
-        inner = (kk > 0) & (kk < n - 1)
-        km = np.clip(kk - 1, 0, n - 1)
-        kp = np.clip(kk + 1, 0, n - 1)
-        if axis == 0:
-            cm, cp = costs[idx, km, ke], costs[idx, kp, ke]
-        else:
-            cm, cp = costs[idx, kd, km], costs[idx, kd, kp]
-        frac = np.where(inner, _equiangular_q(cm, cmin, cp, frac_bits), 0)
-        base = (d_rng if axis == 0 else e_rng)[kk].astype(np.int64)
-        shift_q[:, axis] = np.left_shift(base, frac_bits) + frac
-    return IntShifts(shift_q=shift_q.astype(np.int32), cost=cmin, cost_zero=flat.max(axis=1),
+    if reference == "previous":
+        costs = _sad_costs(z[:-1], z[1:], d_rng, e_rng)    # (T-1, nd, ne) int32
+        shift_q, cmin, cmax = _best_q(costs, d_rng, e_rng, frac_bits)
+    else:
+        # Each frame against a key frame, kept while the next frame is still expected
+        # within the search range; each step's error then enters the positions once per
+        # key frame instead of once per frame.
+        one = 1 << frac_bits
+        limit = min(max_along - 1, r_n // 2 - 1) * one
+        shift_q = np.zeros((t_n - 1, 2), dtype=np.int64)
+        cmin = np.zeros(t_n - 1, dtype=np.int32)
+        cmax = np.zeros(t_n - 1, dtype=np.int32)
+        key = 0
+        d_key = np.zeros(2, dtype=np.int64)          # displacement of frame t-1 from the key
+        last = np.zeros(2, dtype=np.int64)
+        far = np.int32(np.iinfo(np.int32).max // 2)
+        for t in range(1, t_n):
+            c = _sad_costs(z[key:key + 1], z[t:t + 1], d_rng, e_rng)
+            cx_ = c.reshape(1, -1).max(axis=1)
+            if t > 1:
+                # Search within 2 px (along) of the displacement predicted from the last
+                # step: small overlaps far from it match by chance.
+                pred = np.right_shift(d_key[0] + last[0], frac_bits)
+                c[0, np.abs(d_rng - pred) > 2, :] = far
+            q, cm_, _ = _best_q(c, d_rng, e_rng, frac_bits)
+            shift_q[t - 1] = q[0] - d_key
+            last = shift_q[t - 1]
+            cmin[t - 1], cmax[t - 1] = cm_[0], cx_[0]
+            step = np.abs(shift_q[t - 1, 0])
+            if np.abs(q[0, 0]) + step > limit:
+                key, d_key = t, np.zeros(2, dtype=np.int64)
+            else:
+                d_key = q[0]
+    return IntShifts(shift_q=shift_q.astype(np.int32), cost=cmin, cost_zero=cmax,
                      frac_bits=frac_bits, offset=off)
 
 
