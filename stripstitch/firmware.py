@@ -1,10 +1,11 @@
 """Firmware-like integer path: shifts from 8-bit frames with integer arithmetic only.
 
-What a microcontroller without a floating-point unit would run between successive frames:
+What a microcontroller without a floating-point unit would run for each new frame:
 
 1. subtract a per-plate integer offset (the fixed pattern) from each 8-bit sample (int16);
-2. for every candidate shift (d, e), the sum of absolute differences (SAD) over the overlap,
-   normalised to a per-sample cost in fixed point, ``(SAD << 8) // n_overlap``;
+2. for every candidate shift (d, e) against the key frame (or the previous frame), the sum
+   of absolute differences (SAD) over the overlap, normalised to a per-sample cost in fixed
+   point, ``(SAD << 8) // n_overlap``;
 3. the smallest cost, refined per axis by an equiangular (V-shaped) line fit through the
    three costs around it, in fixed point with ``frac_bits`` fractional bits;
 4. positions as the running sum of the fixed-point shifts.
