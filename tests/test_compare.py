@@ -206,3 +206,14 @@ def test_similarity_ignores_gain_and_offset(ref):
     zb = (img - img.mean()) / img.std()
     assert structural_similarity(z, zb, data_range=float(np.ptp(z))) == pytest.approx(b.ssim,
                                                                                          abs=0.01)
+
+
+def test_compare_frames_stitches_the_reference():
+    from stripstitch import stitch
+    from stripstitch.compare import compare_frames
+    tex = band_texture((400, 96), seed=3)
+    frames = np.stack([tex[2 * t + 8:2 * t + 16, 8:72] for t in range(120)])
+    img = stitch(frames).image
+    img = np.repeat(img, [2 if i == 90 else 1 for i in range(img.shape[0])], axis=0)  # row 90 twice
+    c = compare_frames(img, frames)
+    assert c.duplicated_rows == 1 and c.duplicated_at == (91,) and c.missing_rows == 0
