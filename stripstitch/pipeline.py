@@ -100,6 +100,33 @@ def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
     return out
 
 
+def _select_rotation(tr, t_n, pairs, est, good, dt_frames, motion_prior_px):
+    """Keep the fitted rotation only if it explains the pair shifts clearly better.
+
+    Aliasing biases the narrow strip's angle measurements by a few tenths of a degree, and a
+    wrong angle turns every placement. Both trajectories (with the fitted angles, and with
+    none) are scored by the same robust loss (Cauchy, scale 3) of the pairs' Mahalanobis
+    residuals; the rotation stays if it lowers the loss by more than an Akaike-style penalty
+    of one unit per effective angle degree of freedom (smooth angles: one per 64 frames), or
+    if the fitted turn is at least 1.5 degrees.
+    """
+    info = np.where(good[:, None, None], _with_model_error(est.info, est.shift), 0.0)
+    tr0 = _traj.solve_positions(t_n, pairs, est.shift, info, np.zeros(t_n), dt_frames,
+                                sigma_acc_px=motion_prior_px)
+
+    def loss(t):
+        return float(np.sum(np.log1p((t.pair_residual[good] / 3.0) ** 2)))
+
+    dof = max(1.0, t_n / 64.0)
+    # The shifts alone hardly tell a turn (the trajectory bends to absorb it), so a fitted
+    # turn of 1.5 degrees or more is kept too: the spurious ones seen in tests were mostly
+    # a few tenths of a degree (up to about 1.9 on 64-column strips).
+    turn = float(np.degrees(np.ptp(tr.angles_rad)))
+    if loss(tr0) - loss(tr) > dof or turn >= 1.5:
+        return tr
+    return tr0
+
+
 def _confidence(frame_info, contact, pair_ok_frac):
     """Probability-like confidence that a frame's placement is within 0.25 px.
 
@@ -336,6 +363,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             pairs, init = build_pairs(tr.positions[chain], long_targets)
             init_ang = tr.angles_rad[pairs[:, 1]] - tr.angles_rad[pairs[:, 0]]
             est, good, tr = solve(pairs, init, init_ang)
+        if rotation:
+            tr = _select_rotation(tr, t_n, pairs, est, good, dt_frames, motion_prior_px)
         prep_used = prep
 
     positions = tr.positions.copy()
