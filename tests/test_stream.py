@@ -115,23 +115,17 @@ def test_stream_equals_batch_and_truth(tex, kind):
     assert isinstance(res, Reconstruction)
     # Against ground truth: every frame within 0.25 px (measured: at most 0.18 px).
     assert np.abs(res.positions - pos).max() < 0.25
-    # Against the batch path, per axis, wherever the batch itself is right (within 0.15 px
-    # of the truth). Measured (batch at commit c664b87): the batch slips sideways by
-    # 0.7-0.8 px in "stall" and "varying" and drifts along by up to 0.36 px in "stall" (a
-    # batch defect, reported), so there only the frames before the slip are compared;
-    # stream-batch along at most 0.24 px over all frames of all four swipes.
-    good = np.abs(batch.positions - pos) < 0.15
-    assert good[:, 0].mean() > 0.25 and good[:, 1].mean() > 0.15
-    for k in range(2):
-        np.testing.assert_allclose(res.positions[good[:, k], k], batch.positions[good[:, k], k],
-                                   atol=0.25)
+    # Against the batch path on every frame: within 0.3 px (stated tolerance; measured at
+    # 324df5e: at most 0.24 px along and 0.28 px across, the batch's own error on "varying"),
+    # and the batch against the truth within 0.4 px.
+    assert np.abs(batch.positions - pos).max() < 0.4
+    np.testing.assert_allclose(res.positions, batch.positions, atol=0.3)
     # Image: equals the source texture (bilinear splatting blurs slightly: a one-pixel
     # tent kernel, so 0.99 as in test_pipeline) and the batch image where both cover.
     assert _source_ncc(res, tex, corner) >= 0.99
     a, b = _overlap(res, batch)
     assert a.size > 0.8 * np.isfinite(batch.image).sum()
-    if good.all():      # where the batch placed every frame right, the images agree too
-        assert np.corrcoef(a, b)[0, 1] >= 0.99          # Pearson correlation (numpy)
+    assert np.corrcoef(a, b)[0, 1] >= 0.99          # Pearson correlation (numpy)
     # Rows were handed out during the swipe, not only at the end.
     assert sum(len(u.rows) for u in updates) > 0.1 * res.image.shape[0]
 
