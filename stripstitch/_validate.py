@@ -11,6 +11,7 @@ __all__ = [
     "check_frames",
     "check_frame",
     "check_positive",
+    "check_real",
     "check_in_range",
     "check_int",
     "check_choice",
@@ -73,6 +74,16 @@ def check_positive(value, *, name, allow_zero=False, allow_none=False):
     if not ok:
         bound = ">= 0" if allow_zero else "> 0"
         raise ValueError(f"{name} must be a finite number {bound}; got {value!r}")
+    return v
+
+
+def check_real(value, *, name):
+    """Return ``value`` as float after checking it is a finite real number (any sign)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number; got {type(value).__name__} {value!r}")
+    v = float(value)
+    if not np.isfinite(v):
+        raise ValueError(f"{name} must be a finite number; got {value!r}")
     return v
 
 

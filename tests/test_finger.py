@@ -397,7 +397,7 @@ def test_bad_arguments(kwargs, exc, match):
 @pytest.mark.parametrize("kwargs, exc, match", [
     (dict(cores_um=[(0, 0, 0)]), ValueError, r"cores_um must have shape \(n, 2\)"),
     (dict(deltas_um="x"), TypeError, r"deltas_um must be array_like of numbers"),
-    (dict(theta_inf_rad=float("nan")), ValueError, r"theta_inf_rad must be finite"),
+    (dict(theta_inf_rad=float("nan")), ValueError, r"theta_inf_rad must be a finite number"),
     (dict(theta_inf_rad="0"), TypeError, r"theta_inf_rad must be a real number"),
 ])
 def test_orientation_field_bad_arguments(kwargs, exc, match):

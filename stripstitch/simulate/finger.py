@@ -22,7 +22,7 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage
 
-from .._validate import check_array, check_choice, check_in_range, check_positive
+from .._validate import check_array, check_choice, check_in_range, check_positive, check_real
 
 __all__ = ["PATTERNS", "SKINS", "Finger", "make_finger", "orientation_field"]
 
@@ -234,12 +234,7 @@ def _points(value, name):
 
 
 def _real(value, name):
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number; got {type(value).__name__} {value!r}")
-    v = float(value)
-    if not np.isfinite(v):
-        raise ValueError(f"{name} must be finite; got {value!r}")
-    return v
+    return check_real(value, name=name)
 
 
 def _arch_orientation(along_um, across_um, length_um, width_um):

@@ -31,7 +31,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from .._validate import check_array, check_in_range, check_int, check_positive
+from .._validate import check_array, check_in_range, check_int, check_positive, check_real
 
 __all__ = ["EPS0_F_M", "K_B_J_K", "Layer", "Sensor", "SensorUnit", "Readout"]
 
@@ -48,14 +48,7 @@ K_B_J_K = 1.380649e-23
 _GAIN_Z_CUT = 4.0
 
 
-def _check_real(value, *, name):
-    """Return ``value`` as a finite float (any sign)."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number; got {type(value).__name__} {value!r}")
-    v = float(value)
-    if not np.isfinite(v):
-        raise ValueError(f"{name} must be a finite number; got {value!r}")
-    return v
+_check_real = check_real        # shared check (stripstitch._validate)
 
 
 def _frozen(value, dtype):
