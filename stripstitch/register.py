@@ -10,6 +10,7 @@ frame i, in frame i's axes.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -358,6 +359,7 @@ def _keys_extend(z, axes=(1, 2)):
     return z
 
 
+@functools.lru_cache(maxsize=64)
 def _lagrange_upsample_matrix(n, taps=6):
     """(2n-1, n) matrix that doubles the sampling of a length-n signal.
 
@@ -376,6 +378,7 @@ def _lagrange_upsample_matrix(n, taps=6):
         for a, xa in enumerate(nodes):
             others = np.delete(nodes, a)
             m[2 * i + 1, lo + a] = np.prod((x - others) / (xa - others))
+    m.flags.writeable = False          # cached and shared: callers copy (astype)
     return m
 
 
@@ -390,7 +393,7 @@ class _Atlas:
 
     def __init__(self, z):
         t_n, r_n, c_n = z.shape
-        mr = _lagrange_upsample_matrix(r_n).astype(np.float32)
+        mr = _lagrange_upsample_matrix(r_n).astype(np.float32)   # cached; astype copies
         mc = _lagrange_upsample_matrix(c_n).astype(np.float32)
         # Two large matrix products (rows, then columns) rather than T small ones.
         zr = np.tensordot(mr, z.astype(np.float32), axes=(1, 1))           # (2R-1, T, C)
