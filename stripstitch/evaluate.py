@@ -490,8 +490,9 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
     true_origin_px : (2,) array_like
         Index of frame 0's plate (0, 0) in ``true_image``.
     search_px : int, optional
-        Largest global translation searched (whole pixels) around the nominal placement.
-        Default is 8.
+        Largest global translation searched (whole pixels) around the nominal placement, and,
+        when no offset there reaches an NCC of 0.5, around the best translation of a masked
+        normalised cross-correlation over the whole overlap. Default is 8.
     subpixel : bool, optional
         Refine the translation to sub-pixel by a 3-point parabolic fit of the NCC in each
         axis. Default is True.
@@ -519,6 +520,8 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
     .. [1] Z. Wang, A. C. Bovik, H. R. Sheikh and E. P. Simoncelli, "Image quality
            assessment: from error visibility to structural similarity", IEEE Trans. Image
            Processing 13(4), 600-612 (2004). doi:10.1109/TIP.2003.819861
+    .. [2] D. Padfield, "Masked object registration in the Fourier domain", IEEE Trans.
+           Image Processing 21(5), 2706-2718 (2012). doi:10.1109/TIP.2011.2181402
 
     Examples
     --------
@@ -548,14 +551,41 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
             return -np.inf, placed, m
         return _ncc(placed[m], truth[m]), placed, m
 
-    # Coarse: integer offsets, coarse-to-fine (step 1 over the full window is cheap here).
+    # Coarse: integer offsets within +-search of the nominal placement; if nothing there
+    # matches (NCC below 0.5), also around the best translation over the whole overlap found
+    # by masked normalised cross-correlation (Padfield 2012, via scikit-image): frames
+    # without finger (frame 0 often) are placed by extrapolation, which can move the whole
+    # image further than the local window.
     best, best_off = -np.inf, np.zeros(2)
     offs = np.arange(-search, search + 1)
-    for di in offs:
-        for dj in offs:
-            s = score((di, dj))[0]
-            if s > best:
-                best, best_off = s, np.array([di, dj], float)
+
+    best_n = 0
+
+    def local(c, min_overlap=0):
+        nonlocal best, best_off, best_n
+        for di in offs + c[0]:
+            for dj in offs + c[1]:
+                s, _, mm = score((di, dj))
+                n = int(mm.sum())
+                if s > best and n >= min_overlap:
+                    best, best_off, best_n = s, np.array([di, dj], float), n
+
+    local(np.zeros(2))
+    # A distant translation must keep most of the overlap (a small corner of the image
+    # matching by chance is no alignment).
+    need = int(0.7 * best_n)
+    placed0 = _place(img, org, truth.shape, torg)
+    m0 = np.isfinite(placed0)
+    if m0.sum() >= 16 and not best >= 0.5:
+        from skimage.registration import phase_cross_correlation
+
+        sh = phase_cross_correlation(truth, np.where(m0, placed0, 0.0),
+                                     reference_mask=np.ones(truth.shape, bool), moving_mask=m0,
+                                     overlap_ratio=0.3)[0]
+        sh = np.rint(np.asarray(sh, float))
+        if np.isfinite(sh).all() and np.abs(sh).max() > search:
+            local(sh, need)
+            local(-sh, need)
     off = best_off.copy()
     if subpixel and np.isfinite(best):
         for ax in range(2):
