@@ -513,6 +513,10 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
         rr_it = np.zeros(p_n)
         nv_it = np.zeros(p_n)
         if last:
+            bw = max(4, c_n // 16)
+            n_blk = -(-c_n // bw)
+            gblk = np.zeros((p_n, n_blk, n_par))
+            hblk = np.zeros((p_n, n_blk, n_par, n_par))
             rr = np.zeros(p_n)
             nv = np.zeros(p_n)
             sa = np.zeros(p_n)
@@ -587,6 +591,19 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
                     hess[mem] += np.matmul(jac, np.transpose(jac, (0, 2, 1)))
                     grad[mem] += np.matmul(jac, r0f[..., None])[..., 0]
                     if last:
+                        # Scores and Hessians per block of columns, for the cluster-robust
+                        # (sandwich) covariance below.
+                        jac4 = jac.reshape(m, n_par, ni, nj)
+                        r4 = r0f.reshape(m, ni, nj)
+                        bid = (np.arange(j_lo, j_hi + 1) // bw).astype(np.int64)
+                        starts = np.flatnonzero(np.r_[True, bid[1:] != bid[:-1]])
+                        gcol = np.einsum("mpij,mij->mpj", jac4, r4)
+                        hcol = np.einsum("mpij,mqij->mpqj", jac4, jac4)
+                        bsel = bid[starts]
+                        gblk[mem[:, None], bsel[None, :]] += np.transpose(
+                            np.add.reduceat(gcol, starts, axis=2), (0, 2, 1))
+                        hblk[mem[:, None], bsel[None, :]] += np.transpose(
+                            np.add.reduceat(hcol, starts, axis=3), (0, 3, 1, 2))
                         wsum = float(wmask.sum())
                         rr[mem] += np.einsum("mn,mn->m", r0f, r0f)
                         nv[mem] += wsum
@@ -624,19 +641,22 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
 
     dof = np.maximum(nv - n_par, 1.0)
     var = rss / dof
-    inv_var = 1.0 / np.maximum(var, 1e-12)
+    # Covariance of all parameters. White noise alone gives var * H^-1, but the residual of a
+    # sharp-edged, aliased texture is structured: it repeats along the ridges, and where the
+    # ridges run straight over the strip (the aperture problem) it projects onto the weak
+    # direction far more than white noise would. The cluster-robust (sandwich) estimate
+    # H^-1 (sum_b g_b g_b^T) H^-1 over blocks of columns, with g_b each block's score at the
+    # solution, sees that; a quarter of the white-noise covariance is kept as a floor.
     eye = lambda n: np.eye(n)[None] * 1e-9 * (np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12)
-    hdd = hess[:, :2, :2]
-    hdo = hess[:, :2, 2:]
-    hoo = hess[:, 2:, 2:] + eye(n_par - 2)
-    schur = hdd - hdo @ np.linalg.solve(hoo, np.transpose(hdo, (0, 2, 1)))
-    info = schur * inv_var[:, None, None]
+    hinv = np.linalg.inv(hess + eye(n_par))
+    gfin = gblk + np.einsum("mbpq,mq->mbp", hblk, step)
+    meat = np.einsum("mbp,mbq->mpq", gfin, gfin)
+    cov = hinv @ meat @ hinv + 0.25 * var[:, None, None] * hinv
+    cov = 0.5 * (cov + np.transpose(cov, (0, 2, 1)))
+    with np.errstate(invalid="ignore", over="ignore"):
+        info = np.linalg.inv(cov[:, :2, :2] + eye(2) * 1e-12)
     if estimate_rotation:
-        idx_o = [0, 1, 3, 4]
-        hto = hess[:, 2, idx_o]
-        hoo2 = hess[:, idx_o][:, :, idx_o] + eye(4)
-        ath = hess[:, 2, 2] - np.einsum("mp,mp->m", hto, np.linalg.solve(hoo2, hto[..., None])[..., 0])
-        ainfo = np.maximum(ath, 0.0) * inv_var
+        ainfo = 1.0 / np.maximum(cov[:, 2, 2], 1e-30)
     else:
         ainfo = np.zeros(p_n)
     nn = np.maximum(nv, 1.0)
