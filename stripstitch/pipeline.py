@@ -8,6 +8,7 @@ from scipy import ndimage
 from scipy.special import erf
 
 from . import mosaic as _mosaic
+from . import refine as _refine
 from . import register as _reg
 from . import report as _report
 from . import trajectory as _traj
@@ -144,7 +145,7 @@ def _confidence(frame_info, contact, pair_ok_frac):
 
 def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, calibration=None,
            mode="default", output_pitch_um=None, estimate_rotation=True, motion_prior_px=None,
-           max_across_px=None):
+           max_across_px=None, model_passes=None):
     """Reconstruct one fingerprint image from swipe-sensor frames.
 
     Parameters
@@ -175,6 +176,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     max_across_px : int, optional
         Largest lateral shift between successive frames searched. Default None: C // 8
         clipped to 3..12.
+    model_passes : int, optional
+        Passes of the final refinement of every frame against a super-resolved model of the
+        finger (:mod:`stripstitch.refine`); 0 skips it. Default None: 4 in default mode,
+        2 in fast mode.
 
     Returns
     -------
@@ -283,6 +288,22 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # (The refined NCC decides: the coarse score is taken at the pooled shift, which lags
     # where the velocity changes abruptly, e.g. when a stall begins.)
     link_ok = est_c.ok & (est_c.ncc > 0.5)
+    # A failed link is a gap (the finger moved past the strip between the two frames) only
+    # when both frames show clear texture. While the fingertip arrives or leaves, frames
+    # with faint texture fail to match for want of texture, not of overlap: the motion prior
+    # bridges them, their low confidence keeps them out of the image, and nothing is pushed
+    # apart.
+    # Texture here is what changes over the swipe: a blank frame shows the static (fixed)
+    # pattern left over after preparation, which the per-plate median over time removes.
+    # Per-plate median over a subsample of frames (memory stays bounded on long swipes).
+    sub = chain[:: max(1, len(chain) // 512)]
+    static = np.median(prep.z[sub], axis=0)
+    tex = np.array([float(np.std((prep.z[k] - static)[prep.plate_ok])) if prep.plate_ok.any() else 0.0
+                    for k in chain])
+    # Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
+    sig2 = np.maximum(tex ** 2 - prep.noise_sigma ** 2, 0.0)
+    strong = sig2 >= 0.25 * float(np.median(sig2))
+    link_gap = ~link_ok & strong[:-1] & strong[1:]
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
     # Coarse chain positions (failed links bridged by the neighbours' median step).
     fill = np.nanmedian(chain_steps, axis=0) if np.isfinite(chain_steps).any() else np.zeros(2)
@@ -330,8 +351,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             dist = np.abs(est.shift[:, 0] - np.round(est.shift[:, 0]))
             floor_rad = (0.005 + 0.25 * 2.0 * dist) / max(c_n / 4.0, 1.0)
             ainfo = np.where(good, 1.0 / (1.0 / np.maximum(est.angle_info, 1e-30) + floor_rad ** 2), 0.0)
+            # Random-walk prior (1e-3 rad per frame): frames without finger keep the angle
+            # of the nearest frame with one, so a non-contact frame 0 adds no offset.
             ang = _traj.solve_angles(t_n, pairs, est.angle_rad, ainfo, dt_frames,
-                                     sigma_acc_rad=1e-5)
+                                     sigma_rate_rad=1e-3)
         else:
             ang = np.zeros(t_n)
         tr = _traj.solve_positions(t_n, pairs, est.shift, info, ang, dt_frames,
@@ -359,12 +382,17 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             grads = _reg._template_gradients(prep.z)
         # Solved positions in frame 0's axes -> chain positions for partner picking; each
         # pass picks from a better trajectory.
+        # Translation first: on a narrow strip a free rotation per pair makes every shift
+        # noisier (the two are nearly confounded over a few rows), so the shifts used when
+        # no rotation is kept come from a pass without it.
         for _ in range(2):
             pairs, init = build_pairs(tr.positions[chain], long_targets)
-            init_ang = tr.angles_rad[pairs[:, 1]] - tr.angles_rad[pairs[:, 0]]
-            est, good, tr = solve(pairs, init, init_ang)
+            est, good, tr = solve(pairs, init, rotation=False)
         if rotation:
-            tr = _select_rotation(tr, t_n, pairs, est, good, dt_frames, motion_prior_px)
+            est_r, good_r, tr_r = solve(pairs, est.shift, np.zeros(len(pairs)))
+            kept = _select_rotation(tr_r, t_n, pairs, est_r, good_r, dt_frames, motion_prior_px)
+            if kept is tr_r:
+                est, good, tr = est_r, good_r, tr_r
         prep_used = prep
 
     positions = tr.positions.copy()
@@ -373,8 +401,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # by at least the strip's height: the motion prior alone would place them too close and
     # overlay rows that were never seen together. Push what follows out to R rows.
     direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
-    for (i, j), okk in zip(cpairs, link_ok):
-        if okk or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
+    for (i, j), gap in zip(cpairs, link_gap):
+        if not gap or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
             continue
         step = direction * (positions[j, 0] - positions[i, 0])
         if step < r_n:
@@ -386,6 +414,21 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     np.add.at(total, pairs.ravel(), 1.0)
     ok_frac = np.where(total > 0, kept / np.maximum(total, 1), 0.0)
     confidence = _confidence(tr.frame_info, prep.contact, np.clip(ok_frac, 0, 1))
+
+    # ---- every frame against a super-resolved model of the finger ----
+    link_failed = np.zeros(t_n - 1, dtype=bool)
+    for (i, j), gap in zip(cpairs, link_gap):
+        if gap:
+            link_failed[i:j] = True
+    n_model = (4 if not fast else 2) if model_passes is None else int(model_passes)
+    if n_model > 0:
+        mw = (prep.contact & (confidence > 0.05)).astype(np.float64)[:, None, None] \
+            * prep.plate_ok[None].astype(np.float64)
+        if (mw > 0).any():
+            ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
+                                           dt=dt_frames, sigma_acc_px=motion_prior_px,
+                                           cut=link_failed, iterations=n_model)
+            positions = ref.positions.copy()
 
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
@@ -399,10 +442,6 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     mos = _mosaic.fuse(values, positions, angles_deg, weights=weights, output_pitch_px=pitch_px)
 
     # ---- events and report ----
-    link_failed = np.zeros(t_n - 1, dtype=bool)
-    for (i, j), okk in zip(cpairs, link_ok):
-        if not okk:
-            link_failed[i:j] = True
     events = _report.find_events(positions=positions, angles_deg=angles_deg,
                                  confidence=confidence, contact=prep.contact,
                                  link_failed=link_failed, link_dt_frames=dt_frames,

@@ -80,7 +80,23 @@ def _robust_weights(m, kind):
     return 1.0 / (1.0 + (m / k) ** 2)
 
 
-def solve_angles(n_frames, pairs, dtheta, info, dt, *, sigma_acc_rad=1e-4, iterations=4):
+def _rate_rows(dt, sigma_rate):
+    """First-difference (random-walk) prior rows: (x[t+1] - x[t]) with standard deviation
+    sigma_rate * sqrt(dt[t]). Where no data speaks, the solution stays constant instead of
+    continuing a trend (a second-difference prior would extrapolate the nearest slope)."""
+    t_n = len(dt) + 1
+    if t_n < 2:
+        return np.zeros((0, t_n))
+    k = np.arange(t_n - 1)
+    s = sigma_rate * np.sqrt(dt)
+    rows = np.repeat(k, 2)
+    cols = np.stack([k, k + 1], 1).ravel()
+    vals = (np.stack([-1.0 / s, 1.0 / s], 1)).ravel()
+    return sparse.csr_matrix((vals, (rows, cols)), shape=(t_n - 1, t_n))
+
+
+def solve_angles(n_frames, pairs, dtheta, info, dt, *, sigma_acc_rad=1e-4, sigma_rate_rad=None,
+                 iterations=4):
     """Robust least squares for frame angles from pairwise rotations.
 
     Parameters
@@ -95,6 +111,10 @@ def solve_angles(n_frames, pairs, dtheta, info, dt, *, sigma_acc_rad=1e-4, itera
         Time steps in nominal frames.
     sigma_acc_rad : float
         Prior standard deviation of the angular acceleration per nominal frame squared.
+    sigma_rate_rad : float, optional
+        If given, a random-walk prior instead: standard deviation of the angle change per
+        nominal frame. Frames no pair informs (no finger yet) then keep the angle of the
+        nearest informed frame rather than extrapolating its trend. Default None.
 
     Returns
     -------
@@ -103,7 +123,7 @@ def solve_angles(n_frames, pairs, dtheta, info, dt, *, sigma_acc_rad=1e-4, itera
     pairs = np.asarray(pairs)
     use = info > 0
     w = np.ones(len(pairs))
-    prior = _prior_rows(dt, sigma_acc_rad)
+    prior = _prior_rows(dt, sigma_acc_rad) if sigma_rate_rad is None else _rate_rows(dt, sigma_rate_rad)
     theta = np.zeros(n_frames)
     for it in range(iterations):
         wi = np.sqrt(info * w) * use

@@ -1,0 +1,480 @@
+"""Refinement stage: every frame registered to a model of the finger finer than the plates.
+
+In: prepared frames (fixed pattern removed), per-observation weights, and the positions and
+angles of the pairwise solve. Out: refined positions, per-frame information, and the stretch
+and shear of the trajectory that the frames' own row spacing revealed.
+
+Why. The plates sample ridge edges far sharper than their pitch, so a frame interpolated from
+its own samples is aliased, and a shift measured between two frames is pulled towards whole
+pixels (pixel locking); over a swipe these small biases add up to a scale error. But the finger
+slides along the swipe by a fraction of a pixel per frame, so together the frames sample every
+row of the finger at many sub-pixel phases. A model of the finger built on a grid finer than
+the plates (normalised convolution of all observations at their positions) is therefore not
+aliased along the swipe, and each frame registered against it by Gauss-Newton carries no
+pixel-locking bias.
+
+Alternating model and positions leaves two modes that converge slowly: a stretch along the
+swipe and a shear across it. Every frame agrees with a model that stretched (or sheared) with
+it; only the known spacing of the rows inside each frame sees them. Each frame's fit therefore
+has a stretch and a shear parameter, and their values, smoothed over the swipe, correct the
+trajectory directly.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, sparse
+from scipy.sparse import linalg as splinalg
+
+__all__ = ["Refined", "build_model", "refine_positions"]
+
+
+@dataclass(frozen=True, eq=False)
+class Refined:
+    """Result of :func:`refine_positions`.
+
+    Attributes
+    ----------
+    positions : (T, 2) float64
+        Refined positions (px, frame 0's axes; ``positions[0] == 0``).
+    frame_info : (T, 2, 2) float64
+        Information (px^-2) each frame's fit against the model gave about its position.
+    stretch : (T,) float64
+        Stretch along the swipe of the trajectory the last pass started from, per frame
+        (smoothed; 0.001 = 0.1 % too long).
+    shear : (T,) float64
+        Across-swipe offset per row along the swipe of that trajectory (smoothed).
+    ncc : (T,) float64
+        Normalised correlation of each frame with the model at its refined position.
+    """
+
+    positions: np.ndarray
+    frame_info: np.ndarray
+    stretch: np.ndarray
+    shear: np.ndarray
+    ncc: np.ndarray
+
+    def __post_init__(self):
+        for name in ("positions", "frame_info", "stretch", "shear", "ncc"):
+            arr = np.array(getattr(self, name), dtype=np.float64)
+            arr.flags.writeable = False
+            object.__setattr__(self, name, arr)
+
+
+def _coords(shape, positions, angles_rad):
+    """Frame-0 pixel coordinates (n, R, C, 2) of every plate (library convention)."""
+    n, r_n, c_n = shape
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    u0 = (np.arange(r_n) - cf[0])[:, None]
+    u1 = (np.arange(c_n) - cf[1])[None, :]
+    c = np.cos(angles_rad)[:, None, None]
+    s = np.sin(angles_rad)[:, None, None]
+    q0 = cf[0] + positions[:, 0, None, None] + c * u0 - s * u1
+    q1 = cf[1] + positions[:, 1, None, None] + s * u0 + c * u1
+    return q0, q1
+
+
+def _chunk_frames(r_n, c_n, budget=1_500_000):
+    return max(1, budget // max(1, r_n * c_n))
+
+
+def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3),
+                margin_px=3.0):
+    """Model of the finger on a fine grid, by normalised convolution of all observations.
+
+    Every observation is spread onto its four nearest fine-grid nodes with bilinear weights
+    times its own weight, and each node gets a local linear fit (plane) to the observations
+    around it, weighted by a small Gaussian: normalised convolution of first order. A local
+    mean (order zero) is pulled towards the side where samples are denser, and around every
+    frame's first and last row the other frames' samples lie mostly on one side (their rows
+    end there; on a slanted swipe also to one side across); the linear terms remove that
+    bias, which would otherwise read as a stretch or a shear of every frame. Nodes with
+    little weight take a wider local mean, so sparse sampling leaves no holes.
+
+    Parameters
+    ----------
+    z : (T, R, C) array
+        Prepared frames.
+    weights : (T, R, C) or (T,) array
+        Observation weights (0 excludes).
+    positions : (T, 2) array
+    angles_rad : (T,) array
+    fine_px : (2,) float
+        Grid spacing along and across in sensor pixels. Default (0.25, 0.5).
+    smooth_px : (2,) float
+        Gaussian sigma of the normalised convolution, sensor pixels. Default (0.3, 0.3):
+        narrower leaves nodes between the sub-pixel phases a swipe happens to sample
+        (often two, near 0 and 0.5 px) to the wide fill, which biases the stretch.
+    margin_px : float
+        Border around the observed region. Default 3.
+
+    Returns
+    -------
+    model : (H, W) float64
+    weight : (H, W) float64
+        Smoothed observation weight per node.
+    lo : (2,) float64
+        Frame-0 coordinate of node (0, 0).
+
+    References
+    ----------
+    .. [1] H. Knutsson and C.-F. Westin, "Normalized and differential convolution", Proc.
+           IEEE CVPR 1993, 515-523. doi:10.1109/CVPR.1993.341081
+    """
+    t_n, r_n, c_n = z.shape
+    h = np.asarray(fine_px, dtype=np.float64)
+    w = np.asarray(weights, dtype=np.float64)
+    if w.ndim == 1:
+        w = np.broadcast_to(w[:, None, None], z.shape)
+    # Bounds from the frame corners.
+    q0, q1 = _coords((t_n, 2, 2), positions, angles_rad)
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    lo = np.array([np.inf, np.inf])
+    hi = -lo
+    for rr in (0, r_n - 1):
+        for cc in (0, c_n - 1):
+            u = np.array([rr, cc]) - cf
+            a0 = cf[0] + positions[:, 0] + np.cos(angles_rad) * u[0] - np.sin(angles_rad) * u[1]
+            a1 = cf[1] + positions[:, 1] + np.sin(angles_rad) * u[0] + np.cos(angles_rad) * u[1]
+            lo = np.minimum(lo, [a0.min(), a1.min()])
+            hi = np.maximum(hi, [a0.max(), a1.max()])
+    del q0, q1
+    lo = lo - margin_px
+    hi = hi + margin_px
+    shape = tuple((np.ceil((hi - lo) / h)).astype(np.int64) + 2)
+    n_nodes = int(shape[0] * shape[1])
+    # Moments per node for a local linear fit: sums of w, w dy, w dx, w dy^2, w dx^2,
+    # w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset (px) of the observation from
+    # the node it is splatted to.
+    acc = np.zeros((9, n_nodes))
+    step = _chunk_frames(r_n, c_n)
+    for s0 in range(0, t_n, step):
+        sl = slice(s0, min(t_n, s0 + step))
+        ww = np.asarray(w[sl], dtype=np.float64).reshape(-1)
+        keep = ww > 0
+        if not keep.any():
+            continue
+        q0, q1 = _coords(z[sl].shape, positions[sl], angles_rad[sl])
+        f0 = ((q0.reshape(-1) - lo[0]) / h[0])[keep]
+        f1 = ((q1.reshape(-1) - lo[1]) / h[1])[keep]
+        v = np.asarray(z[sl], dtype=np.float64).reshape(-1)[keep]
+        ww = ww[keep]
+        i0 = np.floor(f0).astype(np.int64)
+        i1 = np.floor(f1).astype(np.int64)
+        a0 = f0 - i0
+        a1 = f1 - i1
+        for di, wa in ((0, 1.0 - a0), (1, a0)):
+            dy = (a0 - di) * h[0]
+            for dj, wb in ((0, 1.0 - a1), (1, a1)):
+                dx = (a1 - dj) * h[1]
+                k = (i0 + di) * shape[1] + (i1 + dj)
+                wk = ww * wa * wb
+                wy = wk * dy
+                wx = wk * dx
+                for row, wts in enumerate((wk, wy, wx, wy * dy, wx * dx, wy * dx,
+                                           wk * v, wy * v, wx * v)):
+                    acc[row] += np.bincount(k, weights=wts, minlength=n_nodes)
+    acc = acc.reshape((9,) + shape)
+    sig = np.asarray(smooth_px, dtype=np.float64) / h
+
+    def kernels(sigma, spacing):
+        radius = int(4.0 * sigma + 0.5)
+        off = np.arange(-radius, radius + 1, dtype=np.float64)
+        g = np.exp(-0.5 * (off / max(sigma, 1e-9)) ** 2)
+        g /= g.sum()
+        d = off * spacing
+        return g, g * d, g * d * d
+
+    gy0, gy1, gy2 = kernels(sig[0], h[0])
+    gx0, gx1, gx2 = kernels(sig[1], h[1])
+
+    def conv(x, ky, kx):
+        return ndimage.correlate1d(ndimage.correlate1d(x, ky, axis=0, mode="constant"), kx, axis=1,
+                                   mode="constant")
+
+    a00, a10, a01, a20, a02, a11, b0, b1y, b1x = acc
+    # Moments about each output node (the offset from splat node to output node added in).
+    s00 = conv(a00, gy0, gx0)
+    s10 = conv(a10, gy0, gx0) + conv(a00, gy1, gx0)
+    s01 = conv(a01, gy0, gx0) + conv(a00, gy0, gx1)
+    s20 = conv(a20, gy0, gx0) + 2.0 * conv(a10, gy1, gx0) + conv(a00, gy2, gx0)
+    s02 = conv(a02, gy0, gx0) + 2.0 * conv(a01, gy0, gx1) + conv(a00, gy0, gx2)
+    s11 = conv(a11, gy0, gx0) + conv(a01, gy1, gx0) + conv(a10, gy0, gx1) + conv(a00, gy1, gx1)
+    t0 = conv(b0, gy0, gx0)
+    t1y = conv(b1y, gy0, gx0) + conv(b0, gy1, gx0)
+    t1x = conv(b1x, gy0, gx0) + conv(b0, gy0, gx1)
+    c00 = s20 * s02 - s11 * s11
+    c01 = s11 * s01 - s10 * s02
+    c02 = s10 * s11 - s20 * s01
+    det = s00 * c00 + s10 * c01 + s01 * c02
+    # Local linear where the samples around a node determine both slopes, local mean
+    # elsewhere; nodes with little weight take a wider local mean (no holes).
+    wide = 4.0 * sig + 1.0
+    s3 = ndimage.gaussian_filter(b0, wide, mode="constant")
+    w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
+    pos_w = s00[s00 > 0]
+    full = s00 >= 0.05 * float(np.percentile(pos_w, 90)) if pos_w.size else s00 > 0
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        lin = det > 1e-6 * s00 * np.maximum(s20 * s02, 1e-30)
+        local = np.where(lin, (c00 * t0 + c01 * t1y + c02 * t1x) / np.where(lin, det, 1.0),
+                         t0 / np.where(s00 > 0, s00, 1.0))
+        model = np.where(full & (s00 > 1e-9), local, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
+    return model, s00, lo
+
+
+def _sample(stack, f0, f1):
+    """Bilinear samples of the channels of ``stack`` (H, W, K) at fractional nodes (f0, f1)."""
+    hh, ww, kk = stack.shape
+    i0 = np.clip(np.floor(f0).astype(np.int64), 0, hh - 2)
+    i1 = np.clip(np.floor(f1).astype(np.int64), 0, ww - 2)
+    a0 = np.clip(f0 - i0, 0.0, 1.0)[..., None]
+    a1 = np.clip(f1 - i1, 0.0, 1.0)[..., None]
+    flat = stack.reshape(-1, kk)
+    k = i0 * ww + i1
+    top = flat[k] * (1.0 - a1) + flat[k + 1] * a1
+    bot = flat[k + ww] * (1.0 - a1) + flat[k + ww + 1] * a1
+    return top * (1.0 - a0) + bot * a0
+
+
+def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
+    """Gauss-Newton normal equations of every frame against the model.
+
+    Parameters per frame: along and across shift, stretch (along offset per row), shear
+    (across offset per row), gain and offset. Returns the position information and step
+    with the other four marginalised (Schur complement), the stretch and shear estimates
+    with their variances, and the NCC with the model.
+    """
+    t_n, r_n, c_n = z.shape
+    n_par = 6
+    hess = np.zeros((t_n, n_par, n_par))
+    grad = np.zeros((t_n, n_par))
+    rss = np.zeros(t_n)
+    nobs = np.zeros(t_n)
+    ncc = np.zeros(t_n)
+    u0 = (np.arange(r_n) - (r_n - 1) / 2.0)[:, None] * np.ones((1, c_n))
+    step = _chunk_frames(r_n, c_n)
+    for s0 in range(0, t_n, step):
+        sl = slice(s0, min(t_n, s0 + step))
+        n = sl.stop - sl.start
+        ww = np.asarray(w[sl], dtype=np.float64)
+        q0, q1 = _coords((n, r_n, c_n), positions[sl], angles_rad[sl])
+        g = _sample(stack, (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1])
+        m, gy, gx = g[..., 0], g[..., 1], g[..., 2]
+        zz = np.asarray(z[sl], dtype=np.float64)
+        r = zz - m
+        # Robust weights (Huber, k = 2 robust sigmas per frame), so plates the model does not
+        # explain (the pad edge, a fleck of moisture) do not pull the frame.
+        rf = r.reshape(n, -1)
+        wf = ww.reshape(n, -1)
+        med = np.array([np.median(np.abs(rf[i][wf[i] > 0])) if (wf[i] > 0).any() else 0.0
+                        for i in range(n)])
+        sig = 1.4826 * med + 1e-9
+        a = np.abs(rf) / (2.0 * sig[:, None])
+        wr = wf * np.where(a > 1.0, 1.0 / np.maximum(a, 1e-12), 1.0)
+        cols = [gy, gx, gy * u0, gx * u0, m, np.ones_like(m)]
+        jac = np.stack([c.reshape(n, -1) for c in cols], axis=1)          # (n, 6, N)
+        jw = jac * wr[:, None, :]
+        hess[sl] = np.einsum("tpn,tqn->tpq", jw, jac)
+        grad[sl] = np.einsum("tpn,tn->tp", jw, rf)
+        rss[sl] = np.einsum("tn,tn->t", wr * rf, rf)
+        nobs[sl] = (wf > 0).sum(1)
+        zm = (zz.reshape(n, -1))
+        mm = m.reshape(n, -1)
+        sw = np.maximum(wf.sum(1), 1e-12)
+        za = zm - (wf * zm).sum(1, keepdims=True) / sw[:, None]
+        ma = mm - (wf * mm).sum(1, keepdims=True) / sw[:, None]
+        ncc[sl] = (wf * za * ma).sum(1) / np.sqrt(np.maximum((wf * za * za).sum(1) * (wf * ma * ma).sum(1), 1e-24))
+    tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
+    hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
+    full_step = np.linalg.solve(hreg, grad[..., None])[..., 0]
+    var = np.maximum(rss - np.einsum("tp,tp->t", grad, full_step), 0.0) / np.maximum(nobs - n_par, 1.0)
+    inv_var = 1.0 / np.maximum(var, 1e-12)
+    hinv = np.linalg.inv(hreg)
+    # Position block: information = inverse of the marginal covariance; its step is the
+    # position part of the full solution.
+    cov_p = hinv[:, :2, :2] / inv_var[:, None, None]
+    with np.errstate(invalid="ignore", over="ignore"):
+        info = np.linalg.inv(cov_p + np.eye(2)[None] * 1e-12)
+    info[nobs < 16] = 0.0
+    info[~np.isfinite(info).all(axis=(1, 2))] = 0.0
+    st = full_step[:, 2]
+    sh = full_step[:, 3]
+    st_var = hinv[:, 2, 2] / inv_var
+    sh_var = hinv[:, 3, 3] / inv_var
+    bad = nobs < 16
+    st_var[bad] = np.inf
+    sh_var[bad] = np.inf
+    return full_step[:, :2], info, st, st_var, sh, sh_var, ncc
+
+
+def _phase_concentration(along, active, n_rows, phase_of=None):
+    """Resultant length of the sub-pixel phases of the frames around each frame.
+
+    Over the frames whose along position lies within one strip length of frame t's (the
+    frames that saw the same rows), ``|mean(exp(2 pi i frac(x)))|`` with x the along
+    position (or ``phase_of``, e.g. the across position): 0 for phases spread evenly (or two
+    phases half a pixel apart), 1 when every frame sits at the same phase.
+    """
+    t_n = len(along)
+    ph = np.exp(2j * np.pi * (along if phase_of is None else np.asarray(phase_of, dtype=np.float64)))
+    out = np.ones(t_n)
+    order = np.argsort(along, kind="stable")
+    a_sorted = along[order]
+    c = np.concatenate([[0.0 + 0.0j], np.cumsum(np.where(active[order], ph[order], 0.0))])
+    n = np.concatenate([[0], np.cumsum(active[order].astype(np.int64))])
+    lo = np.searchsorted(a_sorted, a_sorted - 0.5 * n_rows, side="left")
+    hi = np.searchsorted(a_sorted, a_sorted + 0.5 * n_rows, side="right")
+    cnt = n[hi] - n[lo]
+    res = np.abs(c[hi] - c[lo]) / np.maximum(cnt, 1)
+    out[order] = np.where(cnt >= 4, res, 1.0)
+    return out
+
+
+def _smooth_weighted(values, var, sigma_frames):
+    """Inverse-variance weighted Gaussian smoothing over the frame index."""
+    wts = np.where(np.isfinite(var) & (var > 0), 1.0 / np.where(var > 0, var, 1.0), 0.0)
+    num = ndimage.gaussian_filter1d(wts * np.nan_to_num(values), sigma_frames, mode="nearest")
+    den = ndimage.gaussian_filter1d(wts, sigma_frames, mode="nearest")
+    return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+
+
+def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
+    """Joint position update: each frame's step with its information and an acceleration
+    prior on the update itself (the trajectory it corrects already carries the motion prior),
+    none across ``cut`` links (gaps). Frames without information follow their neighbours'
+    correction; with none anywhere nothing moves."""
+    t_n = len(positions)
+    n = 2 * t_n
+    ti = np.arange(t_n)
+    rows = np.concatenate([2 * ti + a for a in (0, 0, 1, 1)])
+    cols = np.concatenate([2 * ti + b for b in (0, 1, 0, 1)])
+    vals = np.concatenate([info[:, 0, 0], info[:, 0, 1], info[:, 1, 0], info[:, 1, 1]])
+    a_mat = sparse.csr_matrix((vals, (rows, cols)), shape=(n, n))
+    rhs = np.einsum("tab,tb->ta", info, delta).reshape(-1)
+    if t_n >= 3:
+        k = np.arange(1, t_n - 1)
+        keep = ~(cut[k - 1] | cut[k])
+        k = k[keep]
+        if k.size:
+            a = 1.0 / dt[k]
+            b = 1.0 / dt[k - 1]
+            s = sigma_acc_px * 0.5 * (dt[k] + dt[k - 1])
+            rr = np.repeat(np.arange(len(k)), 3)
+            cc = np.stack([k - 1, k, k + 1], 1).ravel()
+            vv = (np.stack([b, -(a + b), a], 1) / s[:, None]).ravel()
+            d1 = sparse.csr_matrix((vv, (rr, cc)), shape=(len(k), t_n))
+            d = sparse.kron(d1, sparse.identity(2), format="csr")
+            a_mat = a_mat + (d.T @ d).tocsr()
+    a_mat = a_mat + sparse.identity(n, format="csr") * 1e-6
+    sol = splinalg.spsolve(a_mat.tocsc(), rhs)
+    return np.asarray(sol).reshape(t_n, 2)
+
+
+def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
+                     iterations=4, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3), max_step_px=0.5,
+                     correct_stretch=True):
+    """Refine frame positions against a super-resolved model of the finger.
+
+    Each pass builds the model from the current positions (:func:`build_model`), fits every
+    frame against it by Gauss-Newton (shift, stretch, shear, gain and offset per frame, with
+    Huber weights), solves all position steps jointly with the acceleration prior, and then
+    removes the smoothed stretch and shear from the trajectory (see the module notes).
+
+    Parameters
+    ----------
+    z : (T, R, C) array
+        Prepared frames (fixed pattern removed).
+    weights : (T, R, C) array
+        Observation weights (0 for bad plates and frames without finger).
+    positions : (T, 2) array
+        Starting positions (px), e.g. from the pairwise solve; within a few tenths of a pixel.
+    angles_rad : (T,) array
+        Frame angles (held fixed here).
+    dt : (T-1,) array, optional
+        Time steps in nominal frames. Default ones.
+    sigma_acc_px : float
+        Acceleration prior (px per nominal frame squared). Default 0.05.
+    cut : (T-1,) bool, optional
+        Links with no overlap (gaps): no prior and no stretch correction across them.
+    iterations : int
+        Passes. Default 4.
+    fine_px, smooth_px : (2,) float
+        Model grid spacing and smoothing (sensor pixels), see :func:`build_model`.
+    max_step_px : float
+        Largest position change per pass. Default 0.5.
+
+    Returns
+    -------
+    Refined
+
+    References
+    ----------
+    .. [1] S. Baker and I. Matthews, "Lucas-Kanade 20 years on: a unifying framework",
+           Int. J. Computer Vision 56(3), 221-255 (2004).
+    .. [2] S. Farsiu, M. D. Robinson, M. Elad and P. Milanfar, "Fast and robust multiframe
+           super resolution", IEEE Trans. Image Processing 13(10), 1327-1344 (2004).
+           doi:10.1109/TIP.2004.834669
+    """
+    t_n, r_n, c_n = z.shape
+    pos = np.array(positions, dtype=np.float64).copy()
+    ang = np.asarray(angles_rad, dtype=np.float64)
+    dt = np.ones(t_n - 1) if dt is None else np.asarray(dt, dtype=np.float64)
+    cut = np.zeros(t_n - 1, dtype=bool) if cut is None else np.asarray(cut, dtype=bool)
+    w = np.asarray(weights, dtype=np.float64)
+    h = np.asarray(fine_px, dtype=np.float64)
+    info = np.zeros((t_n, 2, 2))
+    st_s = np.zeros(t_n)
+    sh_s = np.zeros(t_n)
+    ncc = np.zeros(t_n)
+    active = w.reshape(t_n, -1).max(axis=1) > 0
+    # Smoothing window of the stretch and shear: the frames that travel over about two
+    # strips' length (the weak modes are smooth over the swipe; a frame's own estimate is noisy).
+    steps = np.diff(pos[:, 0])
+    speed = float(np.median(np.abs(steps[active[1:] & active[:-1]]))) if t_n > 2 and active.sum() > 2 else 1.0
+    sigma_frames = float(np.clip(2.0 * r_n / max(speed, 0.02), 8.0, max(8.0, t_n / 2.0)))
+    for it in range(max(1, int(iterations))):
+        model, _, lo = build_model(z, w, pos, ang, fine_px=h, smooth_px=smooth_px)
+        gy, gx = np.gradient(model, h[0], h[1])
+        stack = np.stack([model, gy, gx], axis=-1)
+        delta, info, st, st_var, sh, sh_var, ncc = _fit_frames(z, w, pos, ang, stack, lo, h)
+        # Only where the frames sample many sub-pixel phases is the model finer than the
+        # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
+        # like any other, and the pairwise placement stands.
+        conc = _phase_concentration(pos[:, 0], active, r_n)
+        ok = active & (ncc > 0.3)
+        info = np.where((ok & (conc < 0.5))[:, None, None], info, 0.0)
+        delta = np.clip(np.where(ok[:, None], delta, 0.0), -max_step_px, max_step_px)
+        upd = _solve_steps(pos, delta, info, dt, sigma_acc_px, cut)
+        pos = pos + np.clip(upd, -max_step_px, max_step_px)
+        # Stretch and shear of the trajectory, smoothed over the swipe, removed from its steps.
+        # The stretch is read against the model's along-swipe detail, which is only finer
+        # than the plates where the frames sample many sub-pixel phases: a swipe moving by
+        # nearly whole pixels per frame samples one phase, and the model between is a smooth
+        # guess that biases the stretch. Frames whose neighbourhood (the frames that saw the
+        # same rows) has concentrated phases (resultant length above 0.5) do not count.
+        st_var = np.where(ok & (conc < 0.5), st_var, np.inf)
+        # The shear is read against the model's detail across the swipe, so the phases of
+        # the across positions matter too. Spread phases (a slanted swipe) give a model finer
+        # than the plates; a single phase (a straight swipe) gives the plates' own samples,
+        # which can only pull the shear towards zero; a narrow range of phases (a swipe
+        # slanted by a fraction of a degree) gives a model whose across profile leans to one
+        # side, which biases the shear, and those frames do not count.
+        conc_x = _phase_concentration(pos[:, 0], active, r_n, phase_of=pos[:, 1])
+        sh_var = np.where(ok & (conc < 0.5) & ((conc_x < 0.5) | (conc_x > 0.97)), sh_var, np.inf)
+        st_s = _smooth_weighted(st, st_var, sigma_frames)
+        sh_s = _smooth_weighted(sh, sh_var, sigma_frames)
+        d = np.diff(pos, axis=0)
+        mid_st = 0.5 * (st_s[1:] + st_s[:-1])
+        mid_sh = 0.5 * (sh_s[1:] + sh_s[:-1])
+        corr = np.stack([-mid_st * d[:, 0], -mid_sh * d[:, 0]], axis=1)
+        corr[cut] = 0.0
+        if not correct_stretch:
+            corr[:] = 0.0
+        pos = pos + np.vstack([[0.0, 0.0], np.cumsum(corr, axis=0)])
+    # Across a gap the frames never overlapped: keep the step the caller placed there.
+    d = np.diff(pos, axis=0)
+    d[cut] = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[cut]
+    pos = np.vstack([[0.0, 0.0], np.cumsum(d, axis=0)])
+    return Refined(positions=pos, frame_info=info, stretch=st_s, shear=sh_s, ncc=ncc)
