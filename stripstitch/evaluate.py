@@ -490,9 +490,9 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
     true_origin_px : (2,) array_like
         Index of frame 0's plate (0, 0) in ``true_image``.
     search_px : int, optional
-        Largest global translation searched (whole pixels) around the nominal placement, and,
-        when no offset there reaches an NCC of 0.5, around the best translation of a masked
-        normalised cross-correlation over the whole overlap. Default is 8.
+        Largest global translation searched (whole pixels) around the nominal placement, and
+        around the best translation of a masked normalised cross-correlation over the whole
+        overlap (if it keeps 70 % of the overlap). Default is 8.
     subpixel : bool, optional
         Refine the translation to sub-pixel by a 3-point parabolic fit of the NCC in each
         axis. Default is True.
@@ -551,11 +551,11 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
             return -np.inf, placed, m
         return _ncc(placed[m], truth[m]), placed, m
 
-    # Coarse: integer offsets within +-search of the nominal placement; if nothing there
-    # matches (NCC below 0.5), also around the best translation over the whole overlap found
-    # by masked normalised cross-correlation (Padfield 2012, via scikit-image): frames
-    # without finger (frame 0 often) are placed by extrapolation, which can move the whole
-    # image further than the local window.
+    # Coarse: integer offsets within +-search of the nominal placement, and around the best
+    # translation over the whole overlap found by masked normalised cross-correlation
+    # (Padfield 2012, via scikit-image) when that lies further out: frames without finger
+    # (frame 0 often) are placed by extrapolation, which can move the whole image further
+    # than the local window.
     best, best_off = -np.inf, np.zeros(2)
     offs = np.arange(-search, search + 1)
 
@@ -576,7 +576,7 @@ def image_similarity(image, origin_px, true_image, true_origin_px, *, search_px=
     need = int(0.7 * best_n)
     placed0 = _place(img, org, truth.shape, torg)
     m0 = np.isfinite(placed0)
-    if m0.sum() >= 16 and not best >= 0.5:
+    if m0.sum() >= 16:
         from skimage.registration import phase_cross_correlation
 
         sh = phase_cross_correlation(truth, np.where(m0, placed0, 0.0),

@@ -101,33 +101,6 @@ def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
     return out
 
 
-def _select_rotation(tr, t_n, pairs, est, good, dt_frames, motion_prior_px):
-    """Keep the fitted rotation only if it explains the pair shifts clearly better.
-
-    Aliasing biases the narrow strip's angle measurements by a few tenths of a degree, and a
-    wrong angle turns every placement. Both trajectories (with the fitted angles, and with
-    none) are scored by the same robust loss (Cauchy, scale 3) of the pairs' Mahalanobis
-    residuals; the rotation stays if it lowers the loss by more than an Akaike-style penalty
-    of one unit per effective angle degree of freedom (smooth angles: one per 64 frames), or
-    if the fitted turn is at least 1.5 degrees.
-    """
-    info = np.where(good[:, None, None], _with_model_error(est.info, est.shift), 0.0)
-    tr0 = _traj.solve_positions(t_n, pairs, est.shift, info, np.zeros(t_n), dt_frames,
-                                sigma_acc_px=motion_prior_px)
-
-    def loss(t):
-        return float(np.sum(np.log1p((t.pair_residual[good] / 3.0) ** 2)))
-
-    dof = max(1.0, t_n / 64.0)
-    # The shifts alone hardly tell a turn (the trajectory bends to absorb it), so a fitted
-    # turn of 1.5 degrees or more is kept too: the spurious ones seen in tests were mostly
-    # a few tenths of a degree (up to about 1.9 on 64-column strips).
-    turn = float(np.degrees(np.ptp(tr.angles_rad)))
-    if loss(tr0) - loss(tr) > dof or turn >= 1.5:
-        return tr
-    return tr0
-
-
 def _confidence(frame_info, contact, pair_ok_frac):
     """Probability-like confidence that a frame's placement is within 0.25 px.
 
@@ -169,7 +142,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         Resample the image to this pitch (e.g. 50.8 for exactly 500 ppi). Default is None
         (the sensor pitch).
     estimate_rotation : bool, optional
-        Estimate in-plane rotation of the finger. Default is True (ignored in fast mode).
+        Estimate in-plane rotation of the finger (read in the model refinement). Default is
+        True (ignored in fast mode).
     motion_prior_px : float, optional
         Standard deviation of the motion prior (acceleration, px per frame squared). Default
         None: 20 m/s^2 at the given frame rate, else 0.05 px/frame^2.
@@ -191,17 +165,23 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
        are excluded; frames without finger texture are set aside.
     2. Successive frames are matched by normalised cross-correlation over every integer shift
        (FFT), with a temporal prior against ridge-period jumps, then refined by
-       inverse-compositional Gauss-Newton with cubic-convolution interpolation (shift,
-       rotation, gain, offset), which gives each pair a 2x2 information matrix.
-    3. Frames are also paired at longer baselines (up to about 0.7 R rows apart, and at fixed
-       time lags for stalls), so errors do not accumulate along the chain.
-    4. Angles, then positions, are solved jointly over all pairs by robust (Huber, then
-       Cauchy) iteratively reweighted least squares with a weak acceleration prior, which
-       carries the trajectory across gaps without inventing content.
+       inverse-compositional Gauss-Newton with cubic-convolution interpolation (shift, gain,
+       offset), which gives each pair a 2x2 information matrix (cluster-robust over blocks
+       of columns).
+    3. Frames are also paired at longer baselines at nearly whole-pixel displacements (up to
+       about 0.7 R rows apart, and at fixed time lags for stalls), so errors do not
+       accumulate along the chain.
+    4. Positions are solved jointly over all pairs by robust (Huber, then Cauchy)
+       iteratively reweighted least squares with a weak acceleration prior, which carries
+       the trajectory across gaps without inventing content.
     5. In default mode the fixed pattern is then re-estimated against the fused image (the
        first estimate holds a trace of finger texture that pulls shifts towards zero) and
        the pairs are refined again.
-    6. Every observation is placed at its sub-pixel position on a uniform grid and fused with
+    6. Every frame is refined against a model of the finger finer than the plates
+       (:mod:`stripstitch.refine`): this removes the pixel-locking bias of the pairwise
+       shifts, the stretch and shear that overlaps hardly see, and reads the finger's turn
+       (kept when it adds up to a degree or more).
+    7. Every observation is placed at its sub-pixel position on a uniform grid and fused with
        bilinear weights; the report lists gaps, stalls, backtracks, low confidence, skew and
        rotation.
 
@@ -213,6 +193,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
            Trans. ASSP 29(6), 1153-1160 (1981). doi:10.1109/TASSP.1981.1163711
     .. [3] P. W. Holland and R. E. Welsch, "Robust regression using iteratively reweighted
            least-squares", Comm. Statistics 6(9), 813-827 (1977).
+    .. [4] H. Knutsson and C.-F. Westin, "Normalized and differential convolution", Proc.
+           IEEE CVPR 1993, 515-523. doi:10.1109/CVPR.1993.341081
 
     Examples
     --------
@@ -281,7 +263,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                          max_across=max_across_px, pool=pool)
     atlas = _reg._Atlas(prep.z)
     grads = _reg._template_gradients(prep.z)
-    est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=rotation,
+    est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=False,
                                iterations=2 if fast else 3, atlas=atlas, grads=grads)
     # A link fails when nothing overlaps: the coarse NCC is at noise level or the refined
     # overlap is too small to place the frame.
@@ -335,41 +317,23 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             init = np.concatenate([init, linit])
         return pairs, init
 
-    def solve(pairs, init, init_angle=None, rotation=rotation):
-        est = _reg.refine_shifts(prep, pairs, init, init_angle=init_angle,
-                                 estimate_rotation=rotation, iterations=iters,
+    def solve(pairs, init):
+        est = _reg.refine_shifts(prep, pairs, init, estimate_rotation=False, iterations=iters,
                                  atlas=atlas, grads=grads)
         good = est.ok & (est.ncc > 0.5) & (np.abs(est.shift - init).max(axis=1) < 1.5)
         info = _with_model_error(est.info, est.shift)
         info = np.where(good[:, None, None], info, 0.0)
-        if rotation:
-            # Model-error floor for the angle: it comes from along-swipe shifts of column
-            # blocks a quarter of the width apart, each good to about 0.05 px at best
-            # (aliasing), whatever the noise says.
-            # The block shifts carry the same aliasing allowance as whole-frame shifts, so the
-            # nearly whole-pixel pairs decide the angles.
-            dist = np.abs(est.shift[:, 0] - np.round(est.shift[:, 0]))
-            floor_rad = (0.005 + 0.25 * 2.0 * dist) / max(c_n / 4.0, 1.0)
-            ainfo = np.where(good, 1.0 / (1.0 / np.maximum(est.angle_info, 1e-30) + floor_rad ** 2), 0.0)
-            # Random-walk prior (1e-3 rad per frame): frames without finger keep the angle
-            # of the nearest frame with one, so a non-contact frame 0 adds no offset.
-            ang = _traj.solve_angles(t_n, pairs, est.angle_rad, ainfo, dt_frames,
-                                     sigma_rate_rad=1e-3)
-        else:
-            ang = np.zeros(t_n)
-        tr = _traj.solve_positions(t_n, pairs, est.shift, info, ang, dt_frames,
+        tr = _traj.solve_positions(t_n, pairs, est.shift, info, np.zeros(t_n), dt_frames,
                                    sigma_acc_px=motion_prior_px)
         return est, good, tr
 
     pairs, init = build_pairs(chain_pos, short_targets)
-    # Over the short baselines of the first pass a narrow strip hardly measures rotation, and
-    # a wrong angle would turn every later placement: angles come from the later passes.
-    est, good, tr = solve(pairs, init, rotation=False)
+    est, good, tr = solve(pairs, init)
     prep_used = prep
     if fast:
         # One re-pick from the solved trajectory (no fixed-pattern refit, no rotation).
         pairs, init = build_pairs(tr.positions[chain], long_targets)
-        est, good, tr = solve(pairs, init, rotation=False)
+        est, good, tr = solve(pairs, init)
     else:
         # Second pass: the fixed pattern re-estimated against the fused image, partners
         # re-picked from the solved trajectory (the successive chain drifts where aliasing
@@ -382,17 +346,13 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             grads = _reg._template_gradients(prep.z)
         # Solved positions in frame 0's axes -> chain positions for partner picking; each
         # pass picks from a better trajectory.
-        # Translation first: on a narrow strip a free rotation per pair makes every shift
-        # noisier (the two are nearly confounded over a few rows), so the shifts used when
-        # no rotation is kept come from a pass without it.
+        # Translation only: on a narrow strip a free rotation per pair makes every shift
+        # noisier (the two are nearly confounded over a few rows), and the few tenths of a
+        # degree aliasing puts into each pair's angle turned straight swipes. The finger's
+        # turn is read later, against the model of the whole finger (refine: twist).
         for _ in range(2):
             pairs, init = build_pairs(tr.positions[chain], long_targets)
-            est, good, tr = solve(pairs, init, rotation=False)
-        if rotation:
-            est_r, good_r, tr_r = solve(pairs, est.shift, np.zeros(len(pairs)))
-            kept = _select_rotation(tr_r, t_n, pairs, est_r, good_r, dt_frames, motion_prior_px)
-            if kept is tr_r:
-                est, good, tr = est_r, good_r, tr_r
+            est, good, tr = solve(pairs, init)
         prep_used = prep
 
     positions = tr.positions.copy()
@@ -427,8 +387,11 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         if (mw > 0).any():
             ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
                                            dt=dt_frames, sigma_acc_px=motion_prior_px,
-                                           cut=link_failed, iterations=n_model)
+                                           cut=link_failed, iterations=n_model,
+                                           rotation=rotation)
             positions = ref.positions.copy()
+            if rotation:
+                angles_deg = np.degrees(ref.angles_rad)
 
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))

@@ -39,6 +39,8 @@ class Refined:
     ----------
     positions : (T, 2) float64
         Refined positions (px, frame 0's axes; ``positions[0] == 0``).
+    angles_rad : (T,) float64
+        Refined angles (``angles_rad[0]`` as given).
     frame_info : (T, 2, 2) float64
         Information (px^-2) each frame's fit against the model gave about its position.
     stretch : (T,) float64
@@ -46,18 +48,22 @@ class Refined:
         (smoothed; 0.001 = 0.1 % too long).
     shear : (T,) float64
         Across-swipe offset per row along the swipe of that trajectory (smoothed).
+    twist : (T,) float64
+        Angle error (rad) per pixel of travel of that trajectory (smoothed).
     ncc : (T,) float64
         Normalised correlation of each frame with the model at its refined position.
     """
 
     positions: np.ndarray
+    angles_rad: np.ndarray
     frame_info: np.ndarray
     stretch: np.ndarray
     shear: np.ndarray
+    twist: np.ndarray
     ncc: np.ndarray
 
     def __post_init__(self):
-        for name in ("positions", "frame_info", "stretch", "shear", "ncc"):
+        for name in ("positions", "angles_rad", "frame_info", "stretch", "shear", "twist", "ncc"):
             arr = np.array(getattr(self, name), dtype=np.float64)
             arr.flags.writeable = False
             object.__setattr__(self, name, arr)
@@ -247,13 +253,14 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     with their variances, and the NCC with the model.
     """
     t_n, r_n, c_n = z.shape
-    n_par = 6
+    n_par = 7
     hess = np.zeros((t_n, n_par, n_par))
     grad = np.zeros((t_n, n_par))
     rss = np.zeros(t_n)
     nobs = np.zeros(t_n)
     ncc = np.zeros(t_n)
     u0 = (np.arange(r_n) - (r_n - 1) / 2.0)[:, None] * np.ones((1, c_n))
+    u1 = np.ones((r_n, 1)) * (np.arange(c_n) - (c_n - 1) / 2.0)[None, :]
     step = _chunk_frames(r_n, c_n)
     for s0 in range(0, t_n, step):
         sl = slice(s0, min(t_n, s0 + step))
@@ -273,7 +280,10 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
         sig = 1.4826 * med + 1e-9
         a = np.abs(rf) / (2.0 * sig[:, None])
         wr = wf * np.where(a > 1.0, 1.0 / np.maximum(a, 1e-12), 1.0)
-        cols = [gy, gx, gy * u0, gx * u0, m, np.ones_like(m)]
+        # Twist: an along offset growing with row x column, what a model whose rows were
+        # built at slowly drifting angles looks like to a frame (its across counterpart,
+        # growing with row^2, is small on a strip and would be confounded with the shift).
+        cols = [gy, gx, gy * u0, gx * u0, -gy * u0 * u1, m, np.ones_like(m)]
         jac = np.stack([c.reshape(n, -1) for c in cols], axis=1)          # (n, 6, N)
         jw = jac * wr[:, None, :]
         hess[sl] = np.einsum("tpn,tqn->tpq", jw, jac)
@@ -304,9 +314,12 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     st_var = hinv[:, 2, 2] / inv_var
     sh_var = hinv[:, 3, 3] / inv_var
     bad = nobs < 16
+    tw = full_step[:, 4]
+    tw_var = hinv[:, 4, 4] / inv_var
     st_var[bad] = np.inf
     sh_var[bad] = np.inf
-    return full_step[:, :2], info, st, st_var, sh, sh_var, ncc
+    tw_var[bad] = np.inf
+    return full_step[:, :2], info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc
 
 
 def _phase_concentration(along, active, n_rows, phase_of=None):
@@ -344,7 +357,7 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
     """Joint position update: each frame's step with its information and an acceleration
     prior on the update itself (the trajectory it corrects already carries the motion prior),
     none across ``cut`` links (gaps). Frames without information follow their neighbours'
-    correction; with none anywhere nothing moves."""
+    correction."""
     t_n = len(positions)
     n = 2 * t_n
     ti = np.arange(t_n)
@@ -374,7 +387,7 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
 
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
                      iterations=4, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3), max_step_px=0.5,
-                     correct_stretch=True):
+                     correct_stretch=True, rotation=True, min_turn_deg=1.0):
     """Refine frame positions against a super-resolved model of the finger.
 
     Each pass builds the model from the current positions (:func:`build_model`), fits every
@@ -404,6 +417,13 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         Model grid spacing and smoothing (sensor pixels), see :func:`build_model`.
     max_step_px : float
         Largest position change per pass. Default 0.5.
+    correct_stretch : bool
+        Remove the smoothed stretch, shear (and twist) from the trajectory. Default True.
+    rotation : bool
+        Read the twist and correct the angles with it. Default True.
+    min_turn_deg : float
+        The angles are corrected only if the first pass's twist turns the frames with finger
+        by at least this much over the swipe (else the given angles stand). Default 1.0.
 
     Returns
     -------
@@ -419,7 +439,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     """
     t_n, r_n, c_n = z.shape
     pos = np.array(positions, dtype=np.float64).copy()
-    ang = np.asarray(angles_rad, dtype=np.float64)
+    ang = np.array(angles_rad, dtype=np.float64).copy()
     dt = np.ones(t_n - 1) if dt is None else np.asarray(dt, dtype=np.float64)
     cut = np.zeros(t_n - 1, dtype=bool) if cut is None else np.asarray(cut, dtype=bool)
     w = np.asarray(weights, dtype=np.float64)
@@ -427,6 +447,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     info = np.zeros((t_n, 2, 2))
     st_s = np.zeros(t_n)
     sh_s = np.zeros(t_n)
+    tw_s = np.zeros(t_n)
     ncc = np.zeros(t_n)
     active = w.reshape(t_n, -1).max(axis=1) > 0
     # Smoothing window of the stretch and shear: the frames that travel over about two
@@ -438,14 +459,18 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         model, _, lo = build_model(z, w, pos, ang, fine_px=h, smooth_px=smooth_px)
         gy, gx = np.gradient(model, h[0], h[1])
         stack = np.stack([model, gy, gx], axis=-1)
-        delta, info, st, st_var, sh, sh_var, ncc = _fit_frames(z, w, pos, ang, stack, lo, h)
+        delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = _fit_frames(z, w, pos, ang, stack,
+                                                                                 lo, h)
         # Only where the frames sample many sub-pixel phases is the model finer than the
         # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
         # like any other, and the pairwise placement stands.
         conc = _phase_concentration(pos[:, 0], active, r_n)
         ok = active & (ncc > 0.3)
-        info = np.where((ok & (conc < 0.5))[:, None, None], info, 0.0)
-        delta = np.clip(np.where(ok[:, None], delta, 0.0), -max_step_px, max_step_px)
+        use = ok & (conc < 0.5)
+        # Frames the model cannot place are held where they are (a weak anchor, 0.1 px), so
+        # a long stall is not bent by the prior extrapolating its neighbours' corrections.
+        info = np.where(use[:, None, None], info, np.eye(2)[None] * 100.0)
+        delta = np.clip(np.where(use[:, None], delta, 0.0), -max_step_px, max_step_px)
         upd = _solve_steps(pos, delta, info, dt, sigma_acc_px, cut)
         pos = pos + np.clip(upd, -max_step_px, max_step_px)
         # Stretch and shear of the trajectory, smoothed over the swipe, removed from its steps.
@@ -455,26 +480,43 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         # guess that biases the stretch. Frames whose neighbourhood (the frames that saw the
         # same rows) has concentrated phases (resultant length above 0.5) do not count.
         st_var = np.where(ok & (conc < 0.5), st_var, np.inf)
-        # The shear is read against the model's detail across the swipe, so the phases of
-        # the across positions matter too. Spread phases (a slanted swipe) give a model finer
-        # than the plates; a single phase (a straight swipe) gives the plates' own samples,
-        # which can only pull the shear towards zero; a narrow range of phases (a swipe
-        # slanted by a fraction of a degree) gives a model whose across profile leans to one
-        # side, which biases the shear, and those frames do not count.
-        conc_x = _phase_concentration(pos[:, 0], active, r_n, phase_of=pos[:, 1])
-        sh_var = np.where(ok & (conc < 0.5) & ((conc_x < 0.5) | (conc_x > 0.97)), sh_var, np.inf)
+        # The shear, read against the model's detail across the swipe, needs the same (its
+        # across profile is a local linear fit too, so a slanted swipe's one-sided samples
+        # do not bias it).
+        sh_var = np.where(ok & (conc < 0.5), sh_var, np.inf)
+        # The twist (angle error growing with the travel) is read like the stretch.
+        tw_var = np.where(ok & (conc < 0.5), tw_var, np.inf) if rotation else np.full(t_n, np.inf)
         st_s = _smooth_weighted(st, st_var, sigma_frames)
         sh_s = _smooth_weighted(sh, sh_var, sigma_frames)
+        tw_s = _smooth_weighted(tw, tw_var, sigma_frames)
         d = np.diff(pos, axis=0)
-        mid_st = 0.5 * (st_s[1:] + st_s[:-1])
-        mid_sh = 0.5 * (sh_s[1:] + sh_s[:-1])
-        corr = np.stack([-mid_st * d[:, 0], -mid_sh * d[:, 0]], axis=1)
-        corr[cut] = 0.0
+        mid = lambda x: 0.5 * (x[1:] + x[:-1])
+        # Only over the steps from the first to the last frame that shows the finger: before
+        # it arrives nothing was measured, and a correction carried there would move (or turn)
+        # frame 0's reference.
+        idx = np.arange(t_n - 1)
+        act = np.flatnonzero(active)
+        both = ((idx >= act[0]) & (idx < act[-1]) & ~cut) if act.size else np.zeros(t_n - 1, bool)
+        corr = np.stack([-mid(st_s) * d[:, 0], -mid(sh_s) * d[:, 0]], axis=1)
+        corr[~both] = 0.0
+        turn = np.where(both, -mid(tw_s) * d[:, 0], 0.0)
+        if it == 0:
+            # The turn the first reading implies decides whether the angles are corrected at
+            # all: below min_turn_deg over the frames with finger, what the twist reads is
+            # mostly its own bias (tremor, a stall dominating the model), and turning every
+            # placement by it costs more than it gains.
+            probe = np.concatenate([[0.0], np.cumsum(turn)])
+            use_twist = bool(active.any()) and np.degrees(np.ptp(probe[active])) >= float(min_turn_deg)
+        if not use_twist:
+            turn[:] = 0.0
         if not correct_stretch:
             corr[:] = 0.0
+            turn[:] = 0.0
         pos = pos + np.vstack([[0.0, 0.0], np.cumsum(corr, axis=0)])
+        ang = ang + np.concatenate([[0.0], np.cumsum(turn)])
     # Across a gap the frames never overlapped: keep the step the caller placed there.
     d = np.diff(pos, axis=0)
     d[cut] = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[cut]
     pos = np.vstack([[0.0, 0.0], np.cumsum(d, axis=0)])
-    return Refined(positions=pos, frame_info=info, stretch=st_s, shear=sh_s, ncc=ncc)
+    return Refined(positions=pos, angles_rad=ang, frame_info=info, stretch=st_s, shear=sh_s,
+                   twist=tw_s, ncc=ncc)

@@ -87,7 +87,7 @@ def test_refine_recovers_positions_and_removes_a_stretch():
     tex = band_texture((300, 96), period_px=9.0, seed=7)
     t_n = 360
     rng = np.random.default_rng(1)
-    pos = np.stack([0.45 * np.arange(t_n), 0.02 * np.arange(t_n)], 1)
+    pos = np.stack([0.45 * np.arange(t_n), 0.1 * np.arange(t_n)], 1)     # slanted 12.5 deg
     frames = cut_frames(tex, pos + [10.0, 0.0], n_rows=8, n_cols=64, origin=(8, 8))
     frames = frames + 0.03 * rng.standard_normal(frames.shape)      # 30 dB
     start = _stretch_wobble(pos, 0.006, 0.05)
