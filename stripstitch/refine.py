@@ -196,37 +196,47 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     gy0, gy1, gy2 = kernels(sig[0], h[0])
     gx0, gx1, gx2 = kernels(sig[1], h[1])
 
-    def conv(x, ky, kx):
-        return ndimage.correlate1d(ndimage.correlate1d(x, ky, axis=0, mode="constant"), kx, axis=1,
-                                   mode="constant")
+    def across(x, k):
+        return ndimage.correlate1d(x, k, axis=1, mode="constant")
+
+    def along(x, k):
+        return ndimage.correlate1d(x, k, axis=0, mode="constant")
 
     a00, a10, a01, a20, a02, a11, b0, b1y, b1x = acc
-    # Moments about each output node (the offset from splat node to output node added in).
-    s00 = conv(a00, gy0, gx0)
-    s10 = conv(a10, gy0, gx0) + conv(a00, gy1, gx0)
-    s01 = conv(a01, gy0, gx0) + conv(a00, gy0, gx1)
-    s20 = conv(a20, gy0, gx0) + 2.0 * conv(a10, gy1, gx0) + conv(a00, gy2, gx0)
-    s02 = conv(a02, gy0, gx0) + 2.0 * conv(a01, gy0, gx1) + conv(a00, gy0, gx2)
-    s11 = conv(a11, gy0, gx0) + conv(a01, gy1, gx0) + conv(a10, gy0, gx1) + conv(a00, gy1, gx1)
-    t0 = conv(b0, gy0, gx0)
-    t1y = conv(b1y, gy0, gx0) + conv(b0, gy1, gx0)
-    t1x = conv(b1x, gy0, gx0) + conv(b0, gy0, gx1)
+    # Moments about each output node: the offset from splat node to output node is added in,
+    # (dy + oy)^a (dx + ox)^b expanded; the across pass is shared and terms with the same
+    # along kernel are summed before the along pass.
+    x0 = [across(v, gx0) for v in acc]
+    x1_a00, x1_a01, x1_a10, x1_b0 = (across(v, gx1) for v in (a00, a01, a10, b0))
+    x2_a00 = across(a00, gx2)
+    xa00, xa10, xa01, xa20, xa02, xa11, xb0, xb1y, xb1x = x0
+    s00 = along(xa00, gy0)
+    s10 = along(xa10, gy0) + along(xa00, gy1)
+    s01 = along(xa01 + x1_a00, gy0)
+    s20 = along(xa20, gy0) + 2.0 * along(xa10, gy1) + along(xa00, gy2)
+    s02 = along(xa02 + 2.0 * x1_a01 + x2_a00, gy0)
+    s11 = along(xa11 + x1_a10, gy0) + along(xa01 + x1_a00, gy1)
+    t0 = along(xb0, gy0)
+    t1y = along(xb1y, gy0) + along(xb0, gy1)
+    t1x = along(xb1x + x1_b0, gy0)
     c00 = s20 * s02 - s11 * s11
     c01 = s11 * s01 - s10 * s02
     c02 = s10 * s11 - s20 * s01
     det = s00 * c00 + s10 * c01 + s01 * c02
     # Local linear where the samples around a node determine both slopes, local mean
     # elsewhere; nodes with little weight take a wider local mean (no holes).
-    wide = 4.0 * sig + 1.0
-    s3 = ndimage.gaussian_filter(b0, wide, mode="constant")
-    w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
     pos_w = s00[s00 > 0]
-    full = s00 >= 0.05 * float(np.percentile(pos_w, 90)) if pos_w.size else s00 > 0
+    full = (s00 >= 0.05 * float(np.percentile(pos_w, 90))) & (s00 > 1e-9) if pos_w.size else s00 > 0
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         lin = det > 1e-6 * s00 * np.maximum(s20 * s02, 1e-30)
         local = np.where(lin, (c00 * t0 + c01 * t1y + c02 * t1x) / np.where(lin, det, 1.0),
                          t0 / np.where(s00 > 0, s00, 1.0))
-        model = np.where(full & (s00 > 1e-9), local, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
+        model = np.where(full, local, 0.0)
+        if not full.all():
+            wide = 4.0 * sig + 1.0
+            s3 = ndimage.gaussian_filter(b0, wide, mode="constant")
+            w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
+            model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
     return model, s00, lo
 
 
