@@ -233,7 +233,7 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
                          t0 / np.where(s00 > 0, s00, 1.0))
         model = np.where(full, local, 0.0)
         if not full.all():
-            wide = 4.0 * sig + 1.0
+            wide = 2.0 * sig + 0.5
             s3 = ndimage.gaussian_filter(b0, wide, mode="constant")
             w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
             model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
@@ -245,13 +245,22 @@ def _sample(stack, f0, f1):
     hh, ww, kk = stack.shape
     i0 = np.clip(np.floor(f0).astype(np.int64), 0, hh - 2)
     i1 = np.clip(np.floor(f1).astype(np.int64), 0, ww - 2)
-    a0 = np.clip(f0 - i0, 0.0, 1.0)[..., None]
-    a1 = np.clip(f1 - i1, 0.0, 1.0)[..., None]
-    flat = stack.reshape(-1, kk)
-    k = i0 * ww + i1
-    top = flat[k] * (1.0 - a1) + flat[k + 1] * a1
-    bot = flat[k + ww] * (1.0 - a1) + flat[k + ww + 1] * a1
-    return top * (1.0 - a0) + bot * a0
+    a0 = np.clip(f0 - i0, 0.0, 1.0)
+    a1 = np.clip(f1 - i1, 0.0, 1.0)
+    k = (i0 * ww + i1).ravel()
+    w00 = ((1.0 - a0) * (1.0 - a1)).ravel()
+    w01 = ((1.0 - a0) * a1).ravel()
+    w10 = (a0 * (1.0 - a1)).ravel()
+    w11 = (a0 * a1).ravel()
+    out = np.empty(f0.shape + (kk,))
+    for c in range(kk):
+        ch = np.ascontiguousarray(stack[..., c]).ravel()
+        v = np.take(ch, k) * w00
+        v += np.take(ch, k + 1) * w01
+        v += np.take(ch, k + ww) * w10
+        v += np.take(ch, k + ww + 1) * w11
+        out[..., c] = v.reshape(f0.shape)
+    return out
 
 
 def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
@@ -285,8 +294,13 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
         # explain (the pad edge, a fleck of moisture) do not pull the frame.
         rf = r.reshape(n, -1)
         wf = ww.reshape(n, -1)
-        med = np.array([np.median(np.abs(rf[i][wf[i] > 0])) if (wf[i] > 0).any() else 0.0
-                        for i in range(n)])
+        # Per-frame median of |r| over the weighted plates (unweighted ones sorted last).
+        srt = np.sort(np.where(wf > 0, np.abs(rf), np.inf), axis=1)
+        cnt = (wf > 0).sum(1)
+        rows = np.arange(n)
+        med = np.where(cnt > 0, 0.5 * (srt[rows, np.maximum(cnt - 1, 0) // 2] + srt[rows, cnt // 2 - (cnt == 0)]),
+                       0.0)
+        med = np.where(np.isfinite(med), med, 0.0)
         sig = 1.4826 * med + 1e-9
         a = np.abs(rf) / (2.0 * sig[:, None])
         wr = wf * np.where(a > 1.0, 1.0 / np.maximum(a, 1e-12), 1.0)
@@ -355,6 +369,40 @@ def _phase_concentration(along, active, n_rows, phase_of=None):
     return out
 
 
+def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px):
+    """Model and frame fits tile by tile along the swipe, so memory follows the tile, not the
+    swipe: the frames whose centres lie in a tile are fitted to a model built from every
+    frame whose footprint reaches into it (with a margin)."""
+    t_n, r_n, c_n = z.shape
+    half = 0.5 * np.hypot(r_n, c_n) + 4.0                 # reach of a frame from its centre
+    centre = positions[:, 0] + 0.5 * (r_n - 1)
+    lo_c, hi_c = float(centre.min()), float(centre.max())
+    n_tiles = max(1, int(np.ceil((hi_c - lo_c + 1e-9) / float(tile_px))))
+    edges = lo_c + (hi_c - lo_c + 1e-6) * np.arange(n_tiles + 1) / n_tiles
+    delta = np.zeros((t_n, 2))
+    info = np.zeros((t_n, 2, 2))
+    extra = [np.zeros(t_n), np.full(t_n, np.inf), np.zeros(t_n), np.full(t_n, np.inf),
+             np.zeros(t_n), np.full(t_n, np.inf)]
+    ncc = np.zeros(t_n)
+    for k in range(n_tiles):
+        fit = np.flatnonzero((centre >= edges[k]) & ((centre < edges[k + 1]) | (k == n_tiles - 1)))
+        if fit.size == 0:
+            continue
+        a, b = centre[fit].min() - 2 * half, centre[fit].max() + 2 * half
+        src = np.flatnonzero((centre >= a) & (centre <= b))
+        model, _, lo = build_model(z[src], w[src], positions[src], angles_rad[src], fine_px=h,
+                                   smooth_px=smooth_px)
+        gy, gx = np.gradient(model, h[0], h[1])
+        stack = np.stack([model, gy, gx], axis=-1)
+        del model, gy, gx
+        d, i, (st, stv), (sh, shv), (tw, twv), nc = _fit_frames(z[fit], w[fit], positions[fit],
+                                                                angles_rad[fit], stack, lo, h)
+        delta[fit], info[fit], ncc[fit] = d, i, nc
+        for arr, val in zip(extra, (st, stv, sh, shv, tw, twv)):
+            arr[fit] = val
+    return delta, info, (extra[0], extra[1]), (extra[2], extra[3]), (extra[4], extra[5]), ncc
+
+
 def _smooth_weighted(values, var, sigma_frames):
     """Inverse-variance weighted Gaussian smoothing over the frame index."""
     wts = np.where(np.isfinite(var) & (var > 0), 1.0 / np.where(var > 0, var, 1.0), 0.0)
@@ -397,7 +445,7 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
 
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
                      iterations=4, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3), max_step_px=0.5,
-                     correct_stretch=True, rotation=True, min_turn_deg=1.0):
+                     correct_stretch=True, rotation=True, min_turn_deg=1.0, tile_px=1024.0):
     """Refine frame positions against a super-resolved model of the finger.
 
     Each pass builds the model from the current positions (:func:`build_model`), fits every
@@ -434,6 +482,9 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     min_turn_deg : float
         The angles are corrected only if the first pass's twist turns the frames with finger
         by at least this much over the swipe (else the given angles stand). Default 1.0.
+    tile_px : float
+        Length along the swipe of the tiles the model is built in (memory follows the tile,
+        not the swipe). Default 1024.
 
     Returns
     -------
@@ -466,11 +517,8 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     speed = float(np.median(np.abs(steps[active[1:] & active[:-1]]))) if t_n > 2 and active.sum() > 2 else 1.0
     sigma_frames = float(np.clip(2.0 * r_n / max(speed, 0.02), 8.0, max(8.0, t_n / 2.0)))
     for it in range(max(1, int(iterations))):
-        model, _, lo = build_model(z, w, pos, ang, fine_px=h, smooth_px=smooth_px)
-        gy, gx = np.gradient(model, h[0], h[1])
-        stack = np.stack([model, gy, gx], axis=-1)
-        delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = _fit_frames(z, w, pos, ang, stack,
-                                                                                 lo, h)
+        delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = _fit_tiles(
+            z, w, pos, ang, h, smooth_px, tile_px)
         # Only where the frames sample many sub-pixel phases is the model finer than the
         # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
         # like any other, and the pairwise placement stands.
