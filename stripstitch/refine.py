@@ -28,6 +28,8 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse import linalg as splinalg
 
+from . import trajectory as _traj
+
 __all__ = ["Refined", "build_model", "refine_positions"]
 
 
@@ -424,20 +426,10 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
     vals = np.concatenate([info[:, 0, 0], info[:, 0, 1], info[:, 1, 0], info[:, 1, 1]])
     a_mat = sparse.csr_matrix((vals, (rows, cols)), shape=(n, n))
     rhs = np.einsum("tab,tb->ta", info, delta).reshape(-1)
-    if t_n >= 3:
-        k = np.arange(1, t_n - 1)
-        keep = ~(cut[k - 1] | cut[k])
-        k = k[keep]
-        if k.size:
-            a = 1.0 / dt[k]
-            b = 1.0 / dt[k - 1]
-            s = sigma_acc_px * 0.5 * (dt[k] + dt[k - 1])
-            rr = np.repeat(np.arange(len(k)), 3)
-            cc = np.stack([k - 1, k, k + 1], 1).ravel()
-            vv = (np.stack([b, -(a + b), a], 1) / s[:, None]).ravel()
-            d1 = sparse.csr_matrix((vv, (rr, cc)), shape=(len(k), t_n))
-            d = sparse.kron(d1, sparse.identity(2), format="csr")
-            a_mat = a_mat + (d.T @ d).tocsr()
+    d1 = _traj._prior_rows(dt, sigma_acc_px, cut=cut)
+    if d1.shape[0]:
+        d = sparse.kron(sparse.csr_matrix(d1), sparse.identity(2), format="csr")
+        a_mat = a_mat + (d.T @ d).tocsr()
     a_mat = a_mat + sparse.identity(n, format="csr") * 1e-6
     sol = splinalg.spsolve(a_mat.tocsc(), rhs)
     return np.asarray(sol).reshape(t_n, 2)

@@ -53,16 +53,19 @@ class Trajectory:
     pair_residual: np.ndarray
 
 
-def _prior_rows(dt, sigma_acc):
+def _prior_rows(dt, sigma_acc, cut=None):
     """Second-difference (acceleration) prior rows for a 1-D chain with time steps dt.
 
     Residual: (x[t+1] - x[t]) / dt[t] - (x[t] - x[t-1]) / dt[t-1], with standard deviation
-    sigma_acc * (dt[t] + dt[t-1]) / 2 (px per nominal frame squared).
+    sigma_acc * (dt[t] + dt[t-1]) / 2 (px per nominal frame squared). No row spans a link
+    marked in ``cut`` (T-1,) (a gap).
     """
     t_n = len(dt) + 1
     if t_n < 3:
         return np.zeros((0, t_n))
     k = np.arange(1, t_n - 1)
+    if cut is not None:
+        k = k[~(cut[k - 1] | cut[k])]
     a = 1.0 / dt[k]
     b = 1.0 / dt[k - 1]
     s = sigma_acc * 0.5 * (dt[k] + dt[k - 1])
