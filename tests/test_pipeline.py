@@ -6,6 +6,8 @@ shifts (scipy.ndimage.fourier_shift, an outside reference), so the truth is exac
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import stripstitch
 from conftest import band_texture, cut_frames
@@ -179,3 +181,20 @@ def test_simulated_swipe_span_within_one_percent():
     c = cap.contact > 0.5
     span = np.ptp(res.positions[c, 0]) / np.ptp(cap.positions[c, 0]) - 1.0
     assert abs(span) < 0.01
+
+
+@settings(max_examples=8, deadline=None)
+@given(v=st.floats(0.25, 2.5), lateral=st.floats(-0.2, 0.2))
+def test_random_constant_motion_recovered(tex, v, lateral):
+    # Property over speeds from a quarter pixel to 2.5 px per frame and slants up to about
+    # 40 degrees: positions and span against the exact (Fourier-shift) truth, and no NaN
+    # where the image has weight.
+    t_n = int(150 / v)
+    pos = np.stack([v * np.arange(t_n), lateral * np.arange(t_n)], 1)
+    res = stitch(cut_frames(tex, pos + [20.0, 40.0]))
+    err = res.positions - pos
+    assert np.sqrt(np.mean(err ** 2, axis=0)).max() < 0.15
+    # 0.2 %: well inside the 1 % geometric-accuracy requirement for 500 ppi scanners
+    # (EFTS Appendix F, REFERENCE-VALUES.md section 4).
+    assert abs(_span_error(res, pos)) < 0.002
+    assert np.isfinite(res.image[res.weight >= 0.05]).all()
