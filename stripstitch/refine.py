@@ -84,7 +84,7 @@ def _coords(shape, positions, angles_rad):
     return q0, q1
 
 
-def _chunk_frames(r_n, c_n, budget=1_000_000):
+def _chunk_frames(r_n, c_n, budget=200_000):
     return max(1, budget // max(1, r_n * c_n))
 
 
