@@ -12,6 +12,11 @@ above --max-memory-frames), and a point whose peak, extrapolated from the previo
 its series, exceeds --memory-budget-mb (default 4000) is skipped and listed. The fitted exponent is the least-squares log-log slope. Mode
 "default" stops at --max-default-frames (default 10 000; --full: 100 000); mode "fast" runs the
 whole series. Writes benchmarks/results/scaling.json/.md.
+
+``--long`` measures only the longest swipes (T = 30 000 and 100 000 frames of 8 x 192, both
+modes), each in a fresh child process: wall time, and peak resident memory of that process
+(``ru_maxrss``, which needs no tracing and so does not slow the run); writes
+benchmarks/results/scaling_long.json/.md.
 """
 
 from __future__ import annotations
@@ -61,6 +66,60 @@ def _stitch(frames, mode):
     return stitch(frames, frame_rate_hz=4000.0, mode=mode)
 
 
+def _long_point(n_frames, mode):
+    """Child process body: stitch one long swipe, print a JSON line with time and peak RSS."""
+    import json
+    import resource
+    import time
+
+    frames = synthetic_frames(n_frames, 8, 192)
+    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    t0 = time.perf_counter()
+    res = _stitch(frames, mode)
+    secs = time.perf_counter() - t0
+    peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss       # kilobytes on Linux
+    truth = np.arange(n_frames)[:, None] * np.array([0.5, 0.05])
+    err = float(np.sqrt(np.mean((np.asarray(res.positions) - truth) ** 2)))
+    print(json.dumps({"mode": mode, "T": n_frames, "R": 8, "C": 192, "seconds": secs,
+                      "frames_per_s": n_frames / secs, "peak_rss_mb": peak_kb / 1024.0,
+                      "rss_before_stitch_mb": base / 1024.0, "frames_mb": frames.nbytes / 2 ** 20,
+                      "position_rms_px": err}))
+
+
+def _long(series=(30000, 100000), modes=("fast", "default")):
+    import json
+    import subprocess
+    import sys
+
+    rows = []
+    for mode in modes:
+        for n in series:
+            out = subprocess.run([sys.executable, __file__, "--long-child", f"{n}:{mode}"],
+                                 capture_output=True, text=True, check=True)
+            row = json.loads(out.stdout.strip().splitlines()[-1])
+            rows.append(row)
+            print(f"{mode:8s} T={n:<7d} {row['seconds']:9.1f} s  {row['frames_per_s']:7.0f} frames/s  "
+                  f"peak RSS {row['peak_rss_mb']:.0f} MB  pos rms {row['position_rms_px']:.3f} px", flush=True)
+    fits = []
+    for mode in modes:
+        pts = [r for r in rows if r["mode"] == mode]
+        fits.append({"mode": mode, "range": f"{pts[0]['T']}-{pts[-1]['T']}",
+                     "time_exponent": loglog_slope([r["T"] for r in pts], [r["seconds"] for r in pts]),
+                     "rss_exponent": loglog_slope([r["T"] for r in pts], [r["peak_rss_mb"] for r in pts])})
+    md = ("# Scaling, longest swipes\n\nstripstitch.stitch on the synthetic moving-texture frames of "
+          "bench_scaling.py (8 x 192, 0.5 px/frame along, 0.05 across), each point in a fresh child "
+          "process: wall time and peak resident memory (ru_maxrss, the whole process including "
+          "the frames and the interpreter).\n\n"
+          + table(rows, ["mode", "T", "seconds", "frames_per_s", "peak_rss_mb", "rss_before_stitch_mb",
+                         "position_rms_px"])
+          + "\n\n## Exponents between the two lengths\n\n"
+          + table(fits, ["mode", "range", "time_exponent", "rss_exponent"]) + "\n")
+    print()
+    print(md)
+    print("wrote", *write("scaling_long", {"environment": environment(), "rows": rows, "fits": fits}, md))
+    return 0
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="short series (T up to 3000)")
@@ -70,7 +129,18 @@ def main(argv=None):
     ap.add_argument("--memory-budget-mb", type=float, default=4000.0,
                     help="skip points whose peak memory, extrapolated from the previous points of "
                          "the series, exceeds this")
+    ap.add_argument("--long", action="store_true",
+                    help="only T = 30 000 and 100 000 (both modes), peak RSS of a child process each")
+    ap.add_argument("--long-modes", default="fast,default",
+                    help="modes measured by --long, comma-separated (default: fast,default)")
+    ap.add_argument("--long-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    if args.long_child:
+        n, mode = args.long_child.split(":")
+        _long_point(int(n), mode)
+        return 0
+    if args.long:
+        return _long(modes=tuple(m.strip() for m in args.long_modes.split(",") if m.strip()))
     max_default = 100000 if args.full else args.max_default_frames
     if args.quick:
         t_series, c_series, r_series = [100, 300, 1000, 3000], [64, 128, 256], [2, 8, 32]
