@@ -155,3 +155,35 @@ def test_simulated_swipe_gets_closer_to_the_truth():
     refined = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz)
     assert along_rms(refined) < along_rms(base)
     assert along_rms(refined) < 0.2
+
+
+def _turning_frames(tex, pos, ang, r_n=8, c_n=128, origin=(40.0, 60.0)):
+    """Frames of a periodic band-limited texture at positions and angles (library convention),
+    sampled by scipy.ndimage.map_coordinates (cubic spline, periodic): the outside reference."""
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    u0 = np.arange(r_n)[:, None] - cf[0]
+    u1 = np.arange(c_n)[None, :] - cf[1]
+    out = []
+    for p, a in zip(pos, ang):
+        c, s = np.cos(a), np.sin(a)
+        q0 = origin[0] + cf[0] + p[0] + c * u0 - s * u1
+        q1 = origin[1] + cf[1] + p[1] + s * u0 + c * u1
+        out.append(ndimage.map_coordinates(tex, [q0, q1], order=3, mode="grid-wrap"))
+    return np.stack(out)
+
+
+def test_turn_read_from_the_twist():
+    # A finger turning by 3 degrees over the swipe, frames placed at the right positions but
+    # with no angle: the twist against the model recovers the turn.
+    tex = band_texture((512, 256), period_px=9.0, seed=4)
+    t_n = 400
+    pos = np.stack([0.45 * np.arange(t_n), np.zeros(t_n)], 1)
+    ang = np.radians(np.linspace(0.0, 3.0, t_n))
+    frames = _turning_frames(tex, pos, ang)
+    out = rf.refine_positions(frames, np.ones(frames.shape), pos, np.zeros(t_n), iterations=6)
+    # Measured 0.022 degrees RMS; the issue's target for a swipe turning by 3 degrees is 0.1.
+    assert np.degrees(np.sqrt(np.mean((out.angles_rad - ang) ** 2))) < 0.1
+    # Without a turn nothing is turned (below the 1 degree threshold the angles stand).
+    still = _turning_frames(tex, pos, np.zeros(t_n))
+    out0 = rf.refine_positions(still, np.ones(still.shape), pos, np.zeros(t_n), iterations=2)
+    assert np.all(out0.angles_rad == 0.0)
