@@ -13,7 +13,7 @@ from . import register as _reg
 from . import report as _report
 from . import trajectory as _traj
 from ._types import Reconstruction, ReconstructionError
-from ._validate import check_array, check_choice, check_frames, check_positive
+from ._validate import check_array, check_choice, check_frames, check_int, check_positive
 
 __all__ = ["stitch"]
 
@@ -241,6 +241,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         motion_prior_px = check_positive(motion_prior_px, name="motion_prior_px")
     fast = mode == "fast"
     rotation = bool(estimate_rotation) and not fast
+    model_passes = check_int(model_passes, name="model_passes", lo=0, hi=50, allow_none=True)
 
     if calibration is not None:
         if not hasattr(calibration, "apply"):

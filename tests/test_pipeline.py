@@ -166,6 +166,8 @@ def test_no_finger_raises():
     (np.zeros((5, 8, 64)), {"pitch_um": -1.0}, "pitch_um must be a finite number > 0"),
     (np.zeros((5, 8, 64)), {"timestamps_s": [0, 1, 1, 2, 3]}, "strictly increasing"),
     (np.zeros((5, 8, 64)), {"timestamps_s": [0, 1, 2]}, r"timestamps_s must have shape \(5\)"),
+    (np.zeros((5, 8, 64)), {"model_passes": -1}, r"model_passes must be an integer in \[0, 50\]; got -1"),
+    (np.zeros((5, 8, 64)), {"model_passes": 2.5}, "model_passes must be an integer; got float 2.5"),
 ])
 def test_bad_input_errors(frames, kw, match):
     with pytest.raises((ValueError, TypeError), match=match):
