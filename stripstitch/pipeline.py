@@ -284,7 +284,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     tex = np.array([float(np.std((prep.z[k] - static)[prep.plate_ok])) if prep.plate_ok.any() else 0.0
                     for k in chain])
     # Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
-    sig2 = np.maximum(tex ** 2 - prep.noise_sigma ** 2, 0.0)
+    # The noise is what is left after aligning the links that held (each pair's residual,
+    # per frame); successive differences would count a fast swipe's motion as noise.
+    noise = float(np.median(est_c.sigma[link_ok])) if link_ok.any() else prep.noise_sigma
+    sig2 = np.maximum(tex ** 2 - noise ** 2, 0.0)
     strong = sig2 >= 0.25 * float(np.median(sig2))
     link_gap = ~link_ok & strong[:-1] & strong[1:]
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)

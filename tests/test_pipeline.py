@@ -200,3 +200,20 @@ def test_random_constant_motion_recovered(tex, v, lateral):
     # (EFTS Appendix F, REFERENCE-VALUES.md section 4).
     assert abs(_span_error(res, pos)) < 0.002
     assert np.isfinite(res.image[res.weight >= 0.05]).all()
+
+
+def test_simulated_too_fast_stretch_reported_as_gap():
+    # A swipe that jumps 1 mm in one frame on a 16-row strip (simulator truth: a gap with
+    # missing rows). Fast frames blur within the exposure, and frame-to-frame differences
+    # are mostly motion: neither may hide the gap.
+    from stripstitch import simulate
+
+    cap = simulate.swipe("whorl", n_rows=16, n_cols=96, finger_size_mm=(9.0, 6.0),
+                         frame_rate_hz=2000.0, speed_mm_s=100.0, snr_db=30.0,
+                         too_fast=((4.0, 1.0),), rng=3)
+    truth = [e for e in cap.events if e.kind == "gap"]
+    assert truth and truth[0].details["missing_rows"] > 0
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    found = [e for e in res.events_of("gap") if e.details["reason"] == "too_fast"]
+    assert len(found) == 1 and abs(found[0].first_frame - truth[0].first_frame) <= 2
+    assert res.report.verdict == "unusable"
