@@ -112,7 +112,9 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
     if weights is None:
         w = np.ones(x.shape)
     else:
-        w = np.asarray(weights, dtype=np.float64)
+        w = np.asarray(weights)
+        if w.dtype.kind not in "uif":
+            raise TypeError(f"weights must be real numeric; got dtype {w.dtype}")
         if w.shape == (r_n, c_n):
             w = np.broadcast_to(w, x.shape)
         if w.shape != x.shape:

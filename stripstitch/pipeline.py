@@ -345,6 +345,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         prep2 = _refit_fixed_pattern(x, prep, tr.positions, np.degrees(tr.angles_rad))
         if prep2 is not None:
             prep = prep2
+            atlas = grads = zn = None            # let the old ones go before the new exist
             zn = _reg._row_normalise(prep.z, prep.plate_ok)
             atlas = _reg._Atlas(prep.z)
             grads = _reg._template_gradients(prep.z)
@@ -358,6 +359,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         pairs, init = build_pairs(tr.positions[chain], long_targets)
         est, good, tr = solve(pairs, init)
         prep_used = prep
+    # The pairwise stage is done: its upsampled frames, gradients and normalised copies (about
+    # 50 KB a frame of 8 x 192) need not outlive it.
+    atlas = grads = zn = None
 
     positions = tr.positions.copy()
     angles_deg = np.degrees(tr.angles_rad)
@@ -389,8 +393,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # varying speed the across error creeps up again after 6); fast mode stops at 2.
     n_model = (6 if not fast else 2) if model_passes is None else int(model_passes)
     if n_model > 0:
-        mw = (prep.contact & (confidence > 0.05)).astype(np.float64)[:, None, None] \
-            * prep.plate_ok[None].astype(np.float64)
+        mw = (prep.contact & (confidence > 0.05)).astype(np.float32)[:, None, None] \
+            * prep.plate_ok[None].astype(np.float32)
         if (mw > 0).any():
             ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
                                            dt=dt_frames, sigma_acc_px=motion_prior_px,
@@ -403,11 +407,12 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
     level = float(np.mean(prep_used.offset))
-    values = prep_used.z.astype(np.float64) * scale + level
-    fw = (prep.contact & (confidence > 0.05)).astype(np.float64)
-    weights = fw[:, None, None] * prep.plate_ok[None].astype(np.float64)
+    # Single precision per observation (the fusion accumulates in double, chunk by chunk).
+    values = prep_used.z * np.float32(scale) + np.float32(level)
+    fw = (prep.contact & (confidence > 0.05)).astype(np.float32)
+    weights = fw[:, None, None] * prep.plate_ok[None].astype(np.float32)
     if not (weights > 0).any():
-        weights = prep.contact[:, None, None] * prep.plate_ok[None].astype(np.float64)
+        weights = prep.contact.astype(np.float32)[:, None, None] * prep.plate_ok[None].astype(np.float32)
     pitch_px = out_pitch_um / pitch_um
     mos = _mosaic.fuse(values, positions, angles_deg, weights=weights, output_pitch_px=pitch_px)
 
@@ -444,11 +449,12 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     """
     scale = float(np.median(prep.gain))
     level = float(np.mean(prep.offset))
-    values = prep.z.astype(np.float64) * scale + level
-    w = prep.contact[:, None, None] * prep.plate_ok[None].astype(np.float64)
+    values = prep.z * np.float32(scale) + np.float32(level)
+    w = prep.contact.astype(np.float32)[:, None, None] * prep.plate_ok[None].astype(np.float32)
     if not (w > 0).any():
         return None
     mos = _mosaic.fuse(values, positions, angles_deg, weights=w)
+    del values, w
     img = np.nan_to_num(mos.image, nan=level)
     seen = np.isfinite(mos.image).astype(float)
     t_n, r_n, c_n = x.shape
@@ -482,7 +488,10 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     gain = cov_rx / np.maximum(var_r, 1e-12)                   # reading = g * ref + o
     gain = np.where(prep.plate_ok, np.clip(gain, 0.5, 2.0), 1.0)
     offset = xx - gain * rx
-    z = (((x - offset) / gain - level) / scale).astype(np.float32)
+    z = np.empty(x.shape, dtype=np.float32)
+    for s0 in range(0, t_n, step):                       # chunks: no frame-sized doubles
+        sl = slice(s0, min(t_n, s0 + step))
+        z[sl] = ((x[sl] - offset) / gain - level) / scale
     z[:, ~prep.plate_ok] = 0.0
     return _reg.Prepared(z=z, plate_ok=prep.plate_ok, offset=offset, gain=gain * scale,
                          contact=prep.contact, texture=prep.texture, noise_sigma=prep.noise_sigma)

@@ -133,7 +133,7 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     """
     t_n, r_n, c_n = z.shape
     h = np.asarray(fine_px, dtype=np.float64)
-    w = np.asarray(weights, dtype=np.float64)
+    w = np.asarray(weights)                   # any real dtype; chunks are taken in double
     if w.ndim == 1:
         w = np.broadcast_to(w[:, None, None], z.shape)
     # Bounds from the frame corners.
@@ -501,7 +501,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     ang = np.array(angles_rad, dtype=np.float64).copy()
     dt = np.ones(t_n - 1) if dt is None else np.asarray(dt, dtype=np.float64)
     cut = np.zeros(t_n - 1, dtype=bool) if cut is None else np.asarray(cut, dtype=bool)
-    w = np.asarray(weights, dtype=np.float64)
+    w = np.asarray(weights)                   # any real dtype (float32 halves the memory)
     h = np.asarray(fine_px, dtype=np.float64)
     info = np.zeros((t_n, 2, 2))
     st_s = np.zeros(t_n)
