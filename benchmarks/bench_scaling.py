@@ -86,7 +86,7 @@ def _long_point(n_frames, mode):
                       "position_rms_px": err}))
 
 
-def _long(series=(30000, 100000), modes=("fast", "default")):
+def _long(series=(30000, 100000), modes=("fast", "default"), name="scaling_long"):
     import json
     import subprocess
     import sys
@@ -103,6 +103,8 @@ def _long(series=(30000, 100000), modes=("fast", "default")):
     fits = []
     for mode in modes:
         pts = [r for r in rows if r["mode"] == mode]
+        if len(pts) < 2:
+            continue
         fits.append({"mode": mode, "range": f"{pts[0]['T']}-{pts[-1]['T']}",
                      "time_exponent": loglog_slope([r["T"] for r in pts], [r["seconds"] for r in pts]),
                      "rss_exponent": loglog_slope([r["T"] for r in pts], [r["peak_rss_mb"] for r in pts])})
@@ -112,11 +114,12 @@ def _long(series=(30000, 100000), modes=("fast", "default")):
           "the frames and the interpreter).\n\n"
           + table(rows, ["mode", "T", "seconds", "frames_per_s", "peak_rss_mb", "rss_before_stitch_mb",
                          "position_rms_px"])
-          + "\n\n## Exponents between the two lengths\n\n"
-          + table(fits, ["mode", "range", "time_exponent", "rss_exponent"]) + "\n")
+          + "\n\n## Exponents between the lengths\n\n"
+          + (table(fits, ["mode", "range", "time_exponent", "rss_exponent"]) if fits else "one length only")
+          + "\n")
     print()
     print(md)
-    print("wrote", *write("scaling_long", {"environment": environment(), "rows": rows, "fits": fits}, md))
+    print("wrote", *write(name, {"environment": environment(), "rows": rows, "fits": fits}, md))
     return 0
 
 
@@ -133,6 +136,10 @@ def main(argv=None):
                     help="only T = 30 000 and 100 000 (both modes), peak RSS of a child process each")
     ap.add_argument("--long-modes", default="fast,default",
                     help="modes measured by --long, comma-separated (default: fast,default)")
+    ap.add_argument("--long-lengths", default="30000,100000",
+                    help="swipe lengths measured by --long, comma-separated (default: 30000,100000)")
+    ap.add_argument("--long-name", default="scaling_long",
+                    help="results file name (benchmarks/results/NAME.json/.md) of --long")
     ap.add_argument("--long-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.long_child:
@@ -140,7 +147,9 @@ def main(argv=None):
         _long_point(int(n), mode)
         return 0
     if args.long:
-        return _long(modes=tuple(m.strip() for m in args.long_modes.split(",") if m.strip()))
+        return _long(series=tuple(int(v) for v in args.long_lengths.split(",") if v.strip()),
+                     modes=tuple(m.strip() for m in args.long_modes.split(",") if m.strip()),
+                     name=args.long_name)
     max_default = 100000 if args.full else args.max_default_frames
     if args.quick:
         t_series, c_series, r_series = [100, 300, 1000, 3000], [64, 128, 256], [2, 8, 32]
