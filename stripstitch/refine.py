@@ -29,6 +29,7 @@ from scipy import ndimage, sparse
 from scipy.sparse import linalg as splinalg
 
 from . import trajectory as _traj
+from ._validate import check_array, check_frames, check_int
 
 __all__ = ["Refined", "build_model", "refine_positions"]
 
@@ -496,9 +497,13 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
            super resolution", IEEE Trans. Image Processing 13(10), 1327-1344 (2004).
            doi:10.1109/TIP.2004.834669
     """
+    z = check_frames(z, name="z", min_frames=2, min_rows=2)
     t_n, r_n, c_n = z.shape
-    pos = np.array(positions, dtype=np.float64).copy()
-    ang = np.array(angles_rad, dtype=np.float64).copy()
+    pos = check_array(positions, name="positions", shape=(t_n, 2)).copy()
+    ang = check_array(angles_rad, name="angles_rad", shape=(t_n,)).copy()
+    if np.shape(weights) != z.shape:
+        raise ValueError(f"weights must have the shape of z {z.shape}; got {np.shape(weights)}")
+    iterations = check_int(iterations, name="iterations", lo=1, hi=50)
     dt = np.ones(t_n - 1) if dt is None else np.asarray(dt, dtype=np.float64)
     cut = np.zeros(t_n - 1, dtype=bool) if cut is None else np.asarray(cut, dtype=bool)
     w = np.asarray(weights)                   # any real dtype (float32 halves the memory)

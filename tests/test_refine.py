@@ -187,3 +187,18 @@ def test_turn_read_from_the_twist():
     still = _turning_frames(tex, pos, np.zeros(t_n))
     out0 = rf.refine_positions(still, np.ones(still.shape), pos, np.zeros(t_n), iterations=2)
     assert np.all(out0.angles_rad == 0.0)
+
+
+@pytest.mark.parametrize("kw, exc, match", [
+    ({"positions": np.zeros((9, 2))}, ValueError, r"positions must have shape \(10, 2\)"),
+    ({"angles_rad": np.zeros(3)}, ValueError, r"angles_rad must have shape \(10\); got \(3,\)"),
+    ({"weights": np.ones((10, 8))}, ValueError, r"weights must have the shape of z \(10, 8, 16\)"),
+    ({"iterations": 0}, ValueError, r"iterations must be an integer in \[1, 50\]; got 0"),
+])
+def test_refine_bad_input(kw, exc, match):
+    args = {"z": np.zeros((10, 8, 16)), "weights": np.ones((10, 8, 16)),
+            "positions": np.zeros((10, 2)), "angles_rad": np.zeros(10)}
+    args.update(kw)
+    with pytest.raises(exc, match=match):
+        rf.refine_positions(args["z"], args["weights"], args["positions"], args["angles_rad"],
+                            iterations=kw.get("iterations", 2))
