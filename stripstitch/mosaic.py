@@ -43,20 +43,30 @@ class Mosaic:
             object.__setattr__(self, name, arr)
 
 
-def frame_coordinates(shape, positions, angles_deg):
-    """Frame-0 pixel coordinates of every plate of every frame: (T, R, C, 2).
+def plate_coordinates(shape, positions, angles_rad, rows=None, cols=None):
+    """Frame-0 pixel coordinates (q0, q1), each (T, R', C'), of plates of every frame.
 
     Plate (r, c) of frame t sees ``c_f + positions[t] + Rot(angles[t]) (u)`` with
-    ``u = (r, c) - c_f`` (library convention).
+    ``u = (r, c) - c_f`` (library convention). ``rows`` and ``cols`` pick plates (default
+    all), e.g. ``[0, R - 1]`` and ``[0, C - 1]`` for the corners.
     """
     t_n, r_n, c_n = shape
     cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    u0 = (np.arange(r_n) - cf[0])[:, None]
-    u1 = (np.arange(c_n) - cf[1])[None, :]
-    th = np.deg2rad(np.asarray(angles_deg, dtype=np.float64))
+    rr = np.arange(r_n) if rows is None else np.asarray(rows)
+    cc = np.arange(c_n) if cols is None else np.asarray(cols)
+    u0 = (rr - cf[0])[:, None]
+    u1 = (cc - cf[1])[None, :]
+    th = np.asarray(angles_rad, dtype=np.float64)
     c, s = np.cos(th)[:, None, None], np.sin(th)[:, None, None]
     q0 = cf[0] + positions[:, 0, None, None] + c * u0 - s * u1
     q1 = cf[1] + positions[:, 1, None, None] + s * u0 + c * u1
+    return q0, q1
+
+
+def frame_coordinates(shape, positions, angles_deg):
+    """Frame-0 pixel coordinates of every plate of every frame: (T, R, C, 2) (see
+    :func:`plate_coordinates`)."""
+    q0, q1 = plate_coordinates(shape, positions, np.deg2rad(np.asarray(angles_deg, dtype=np.float64)))
     return np.stack([q0, q1], axis=-1)
 
 
@@ -123,11 +133,14 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
             raise ValueError("weights must be finite and non-negative")
     # Grid bounds from the frames' corners (a rotated rectangle's extremes are its corners),
     # then frames are splatted in chunks so memory stays proportional to the image.
-    corners = frame_coordinates((t_n, r_n, c_n), pos, ang)[:, [0, 0, -1, -1], [0, -1, 0, -1]] / pitch
-    lo0 = np.floor(corners[..., 0].min())
-    lo1 = np.floor(corners[..., 1].min())
-    h = int(np.floor(corners[..., 0].max() - lo0)) + 2
-    wd = int(np.floor(corners[..., 1].max() - lo1)) + 2
+    k0, k1 = plate_coordinates((t_n, r_n, c_n), pos, np.deg2rad(ang), rows=[0, r_n - 1],
+                               cols=[0, c_n - 1])
+    k0 = k0 / pitch[0]
+    k1 = k1 / pitch[1]
+    lo0 = np.floor(k0.min())
+    lo1 = np.floor(k1.min())
+    h = int(np.floor(k0.max() - lo0)) + 2
+    wd = int(np.floor(k1.max() - lo1)) + 2
     acc = np.zeros(h * wd)
     wacc = np.zeros(h * wd)
     any_kept = False

@@ -28,6 +28,7 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse import linalg as splinalg
 
+from . import mosaic as _mosaic
 from . import trajectory as _traj
 from ._validate import check_array, check_frames, check_int
 
@@ -70,19 +71,6 @@ class Refined:
             arr = np.array(getattr(self, name), dtype=np.float64)
             arr.flags.writeable = False
             object.__setattr__(self, name, arr)
-
-
-def _coords(shape, positions, angles_rad):
-    """Frame-0 pixel coordinates (n, R, C, 2) of every plate (library convention)."""
-    n, r_n, c_n = shape
-    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    u0 = (np.arange(r_n) - cf[0])[:, None]
-    u1 = (np.arange(c_n) - cf[1])[None, :]
-    c = np.cos(angles_rad)[:, None, None]
-    s = np.sin(angles_rad)[:, None, None]
-    q0 = cf[0] + positions[:, 0, None, None] + c * u0 - s * u1
-    q1 = cf[1] + positions[:, 1, None, None] + s * u0 + c * u1
-    return q0, q1
 
 
 def _chunk_frames(r_n, c_n, budget=200_000):
@@ -137,21 +125,11 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     w = np.asarray(weights)                   # any real dtype; chunks are taken in double
     if w.ndim == 1:
         w = np.broadcast_to(w[:, None, None], z.shape)
-    # Bounds from the frame corners.
-    q0, q1 = _coords((t_n, 2, 2), positions, angles_rad)
-    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    lo = np.array([np.inf, np.inf])
-    hi = -lo
-    for rr in (0, r_n - 1):
-        for cc in (0, c_n - 1):
-            u = np.array([rr, cc]) - cf
-            a0 = cf[0] + positions[:, 0] + np.cos(angles_rad) * u[0] - np.sin(angles_rad) * u[1]
-            a1 = cf[1] + positions[:, 1] + np.sin(angles_rad) * u[0] + np.cos(angles_rad) * u[1]
-            lo = np.minimum(lo, [a0.min(), a1.min()])
-            hi = np.maximum(hi, [a0.max(), a1.max()])
-    del q0, q1
-    lo = lo - margin_px
-    hi = hi + margin_px
+    # Bounds from the frame corners (a rotated rectangle's extremes are its corners).
+    k0, k1 = _mosaic.plate_coordinates(z.shape, positions, angles_rad, rows=[0, r_n - 1],
+                                       cols=[0, c_n - 1])
+    lo = np.array([k0.min(), k1.min()]) - margin_px
+    hi = np.array([k0.max(), k1.max()]) + margin_px
     shape = tuple((np.ceil((hi - lo) / h)).astype(np.int64) + 2)
     n_nodes = int(shape[0] * shape[1])
     # Moments per node for a local linear fit: sums of w, w dy, w dx, w dy^2, w dx^2,
@@ -165,7 +143,7 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
         keep = ww > 0
         if not keep.any():
             continue
-        q0, q1 = _coords(z[sl].shape, positions[sl], angles_rad[sl])
+        q0, q1 = _mosaic.plate_coordinates(z[sl].shape, positions[sl], angles_rad[sl])
         f0 = ((q0.reshape(-1) - lo[0]) / h[0])[keep]
         f1 = ((q1.reshape(-1) - lo[1]) / h[1])[keep]
         v = np.asarray(z[sl], dtype=np.float64).reshape(-1)[keep]
@@ -292,7 +270,7 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
         sl = slice(s0, min(t_n, s0 + step))
         n = sl.stop - sl.start
         ww = np.asarray(w[sl], dtype=np.float64)
-        q0, q1 = _coords((n, r_n, c_n), positions[sl], angles_rad[sl])
+        q0, q1 = _mosaic.plate_coordinates((n, r_n, c_n), positions[sl], angles_rad[sl])
         g = _sample(stack, (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1])
         m, gy, gx = g[..., 0], g[..., 1], g[..., 2]
         zz = np.asarray(z[sl], dtype=np.float64)
