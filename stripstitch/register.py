@@ -13,6 +13,7 @@ from __future__ import annotations
 import functools
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy import ndimage
 
@@ -80,8 +81,12 @@ def prepare(frames, *, frame_weights=None):
     -------
     Prepared
     """
-    x = np.asarray(frames, dtype=np.float64)
+    x = np.asarray(frames)
+    if x.dtype.kind not in "uif" or x.dtype.itemsize > 8:
+        x = x.astype(np.float64)
     t_n, r_n = x.shape[0], x.shape[1]
+    # Per-frame statistics in one compiled pass over the frames, in their own dtype.
+    texture0, change = _frame_stats(x)
     # Per-plate median over time removes most of the fixed pattern robustly; what is left per
     # frame is finger texture plus temporal noise: its spread tells contact from no contact.
     # Texture within each frame (differences between neighbouring plates): ridge edges
@@ -89,8 +94,6 @@ def prepare(frames, *, frame_weights=None):
     # to each plate's median over time would call a long stall "no contact" (the median
     # then is the stalled finger).
     # Both axes: ridges running across the strip barely change from column to column.
-    texture0 = np.sqrt(np.mean(np.diff(x, axis=2) ** 2, axis=(1, 2))
-                       + np.mean(np.diff(x, axis=1) ** 2, axis=(1, 2)))
     # Contact: texture well above the quietest frames (blank frames show only noise) and not
     # far below the typical frame. Frame differences are no noise estimate while the finger
     # moves, so only the texture spread itself is used.
@@ -98,7 +101,7 @@ def prepare(frames, *, frame_weights=None):
     # scikit-image), used only when the classes really separate (means more than 3x apart);
     # otherwise every frame with any texture counts as contact.
     from skimage.filters import threshold_otsu
-    floor = 1e-9 * (np.abs(x).max() + 1.0)
+    floor = 1e-9 * (max(abs(float(x.max())), abs(float(x.min()))) + 1.0)
     lt = np.log(texture0 + floor)
     thresh = floor
     if t_n >= 4 and np.ptp(lt) > 0:
@@ -112,13 +115,11 @@ def prepare(frames, *, frame_weights=None):
             l1 = float(np.percentile(texture0, 90))
             thresh = float(np.sqrt(l0 ** 2 + 0.05 * max(l1 ** 2 - l0 ** 2, 0.0)))
     contact = texture0 > thresh
-    dif = np.diff(x, axis=0)
     w = contact.astype(np.float64)
     if frame_weights is None and t_n > 2:
         # A frame counts by how much new finger it shows: during a stall every frame repeats
         # the last, and an unweighted mean would turn the stalled finger into a static
         # "fixed pattern" that pulls every shift towards zero.
-        change = np.sqrt(np.mean(np.diff(x, axis=0) ** 2, axis=(1, 2)))
         change = np.concatenate([change[:1], change])
         ref = np.percentile(change[contact], 90) if contact.any() else np.percentile(change, 90)
         w = w * np.clip(change / max(0.5 * ref, 1e-12), 0.0, 1.0)
@@ -132,12 +133,14 @@ def prepare(frames, *, frame_weights=None):
         w = np.ones(t_n)
         w_sum = float(t_n)
     wn = w / w_sum
-    mean_c = np.einsum("t,trc->rc", wn, x)
-    spread = np.sqrt(np.einsum("t,trc->rc", wn, (x - mean_c) ** 2))
     blank = ~contact
+    both = contact[1:] & contact[:-1]
+    use_both = both.sum() >= 2
+    mean_c, spread, blank_mean, pn = _plate_stats(x, wn, blank, both if use_both
+                                                  else np.ones(max(t_n - 1, 0), dtype=bool))
     if blank.sum() >= 8:
         # Frames without a finger show the fixed pattern itself (plus noise).
-        offset = x[blank].mean(axis=0)
+        offset = blank_mean
         offset = offset - offset.mean() + mean_c.mean()
     else:
         # The mean over contact frames also holds the finger's average shape (the pad edge,
@@ -145,12 +148,8 @@ def prepare(frames, *, frame_weights=None):
         # plate, so keep only the high-pass part of the mean.
         smooth = ndimage.gaussian_filter(mean_c, sigma=(min(2.0, r_n / 4.0), 4.0), mode="nearest")
         offset = mean_c - smooth + mean_c.mean()
-    # Temporal noise per plate from successive differences within contact (noisy plates).
-    both = contact[1:] & contact[:-1]
-    if both.sum() >= 2:
-        pn = np.sqrt(np.mean(dif[both] ** 2, axis=0) / 2.0)
-    else:
-        pn = np.sqrt(np.mean(dif ** 2, axis=0) / 2.0) if t_n > 1 else np.zeros_like(spread)
+    # Temporal noise per plate (pn, from _plate_stats): successive differences within contact
+    # (noisy plates), or over all frames when fewer than two successive pairs are in contact.
     med_spread = float(np.median(spread))
     med_pn = float(np.median(pn))
     plate_ok = spread > 0.25 * med_spread                      # dead, stuck or never touched
@@ -162,12 +161,108 @@ def prepare(frames, *, frame_weights=None):
     # Gains are fitted against the fused image later (pipeline._refit_fixed_pattern).
     gain = np.ones_like(spread)
     scale = max(med_spread, 1e-12)
-    z = ((x - offset) / (gain * scale)).astype(np.float32)
-    z[:, ~plate_ok] = 0.0
-    texture = np.sqrt(np.mean(z[:, plate_ok] ** 2, axis=1)) if plate_ok.any() else np.zeros(t_n)
+    z, texture = _normalise(x, offset, gain * scale, plate_ok)
     noise_sigma = float(np.median(pn[plate_ok]) / scale) if plate_ok.any() else 0.0
     return Prepared(z=z, plate_ok=plate_ok, offset=offset, gain=gain * scale, contact=contact,
                     texture=texture, noise_sigma=noise_sigma)
+
+
+@numba.njit(cache=True, nogil=True)
+def _frame_stats(x):
+    """Per frame: RMS difference of neighbouring plates (both axes, summed in quadrature) and
+    RMS change from the previous frame (T - 1 values)."""
+    t_n, r_n, c_n = x.shape
+    tex = np.zeros(t_n)
+    chg = np.zeros(max(t_n - 1, 0))
+    for t in range(t_n):
+        s1 = 0.0
+        for r in range(r_n):
+            for c in range(c_n - 1):
+                d = float(x[t, r, c + 1]) - float(x[t, r, c])
+                s1 += d * d
+        s0 = 0.0
+        for r in range(r_n - 1):
+            for c in range(c_n):
+                d = float(x[t, r + 1, c]) - float(x[t, r, c])
+                s0 += d * d
+        m1 = s1 / max(r_n * (c_n - 1), 1)
+        m0 = s0 / max((r_n - 1) * c_n, 1)
+        tex[t] = np.sqrt(m1 + m0)
+        if t > 0:
+            sc = 0.0
+            for r in range(r_n):
+                for c in range(c_n):
+                    d = float(x[t, r, c]) - float(x[t - 1, r, c])
+                    sc += d * d
+            chg[t - 1] = np.sqrt(sc / (r_n * c_n))
+    return tex, chg
+
+
+@numba.njit(cache=True, nogil=True)
+def _plate_stats(x, wn, blank, pairs_used):
+    """Per plate: weighted mean and spread over time (weights wn, summing to 1), mean over the
+    blank frames, and temporal noise sqrt(mean(diff^2) / 2) over the successive pairs used."""
+    t_n, r_n, c_n = x.shape
+    mean = np.zeros((r_n, c_n))
+    for t in range(t_n):
+        if wn[t] == 0.0:
+            continue
+        for r in range(r_n):
+            for c in range(c_n):
+                mean[r, c] += wn[t] * float(x[t, r, c])
+    var = np.zeros((r_n, c_n))
+    bsum = np.zeros((r_n, c_n))
+    n_blank = 0
+    for t in range(t_n):
+        wt = wn[t]
+        if blank[t]:
+            n_blank += 1
+        for r in range(r_n):
+            for c in range(c_n):
+                v = float(x[t, r, c])
+                if wt != 0.0:
+                    d = v - mean[r, c]
+                    var[r, c] += wt * d * d
+                if blank[t]:
+                    bsum[r, c] += v
+    d2 = np.zeros((r_n, c_n))
+    n_p = 0
+    for t in range(t_n - 1):
+        if not pairs_used[t]:
+            continue
+        n_p += 1
+        for r in range(r_n):
+            for c in range(c_n):
+                d = float(x[t + 1, r, c]) - float(x[t, r, c])
+                d2[r, c] += d * d
+    spread = np.sqrt(var)
+    bmean = bsum / max(n_blank, 1)
+    pn = np.sqrt(d2 / max(n_p, 1) / 2.0)
+    return mean, spread, bmean, pn
+
+
+@numba.njit(cache=True, nogil=True)
+def _normalise(x, offset, scale, plate_ok):
+    """z = (x - offset) / scale as float32 (0 on bad plates) and each frame's RMS over the
+    good plates."""
+    t_n, r_n, c_n = x.shape
+    z = np.zeros((t_n, r_n, c_n), dtype=np.float32)
+    tex = np.zeros(t_n)
+    n_ok = 0
+    for r in range(r_n):
+        for c in range(c_n):
+            if plate_ok[r, c]:
+                n_ok += 1
+    for t in range(t_n):
+        s = 0.0
+        for r in range(r_n):
+            for c in range(c_n):
+                if plate_ok[r, c]:
+                    v = np.float32((float(x[t, r, c]) - offset[r, c]) / scale[r, c])
+                    z[t, r, c] = v
+                    s += float(v) * float(v)
+        tex[t] = np.sqrt(s / n_ok) if n_ok > 0 else 0.0
+    return z, tex
 
 
 # --------------------------------------------------------------------------------------

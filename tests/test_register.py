@@ -142,3 +142,35 @@ def test_fixed_pattern_removed_by_prepare():
     resid = prep.z.mean(axis=0)
     assert np.abs(resid).max() < 0.5 * np.abs(2.0 * rng.standard_normal((8, 64))).mean() + 0.5
     assert prep.contact.all()
+
+
+def test_prepare_statistics_match_the_formulas():
+    # The compiled per-frame and per-plate passes against the same statistics in numpy.
+    from stripstitch import register as reg
+    rng = np.random.default_rng(2)
+    x = rng.integers(0, 255, size=(40, 6, 30)).astype(np.uint8)
+    tex, chg = reg._frame_stats(x)
+    xf = x.astype(float)
+    np.testing.assert_allclose(tex, np.sqrt(np.mean(np.diff(xf, axis=2) ** 2, axis=(1, 2))
+                                            + np.mean(np.diff(xf, axis=1) ** 2, axis=(1, 2))))
+    np.testing.assert_allclose(chg, np.sqrt(np.mean(np.diff(xf, axis=0) ** 2, axis=(1, 2))))
+    wn = rng.uniform(0, 1, 40)
+    wn[:5] = 0
+    wn /= wn.sum()
+    blank = np.zeros(40, bool)
+    blank[:10] = True
+    used = rng.uniform(size=39) > 0.3
+    mean, spread, bmean, pn = reg._plate_stats(x, wn, blank, used)
+    m_ref = np.einsum("t,trc->rc", wn, xf)
+    np.testing.assert_allclose(mean, m_ref)
+    np.testing.assert_allclose(spread, np.sqrt(np.einsum("t,trc->rc", wn, (xf - m_ref) ** 2)))
+    np.testing.assert_allclose(bmean, xf[blank].mean(0))
+    np.testing.assert_allclose(pn, np.sqrt(np.mean(np.diff(xf, axis=0)[used] ** 2, axis=0) / 2))
+    ok = rng.uniform(size=(6, 30)) > 0.1
+    off = rng.uniform(0, 50, (6, 30))
+    sc = rng.uniform(1, 2, (6, 30))
+    z, t2 = reg._normalise(x, off, sc, ok)
+    z_ref = ((xf - off) / sc).astype(np.float32)
+    z_ref[:, ~ok] = 0
+    np.testing.assert_allclose(z, z_ref, rtol=1e-6)
+    np.testing.assert_allclose(t2, np.sqrt(np.mean(z_ref[:, ok].astype(float) ** 2, axis=1)), rtol=1e-6)
