@@ -1,0 +1,207 @@
+"""Key-frame tracker (stripstitch.track) and the fast mode built on it.
+
+Frames are cut from an analytic band-limited texture (a sum of plane waves, periods of 5 pixels and more
+like ridges at 500 ppi), so every frame is exact at any sub-pixel position: the truth is the sampling
+itself (Shannon sampling; common practice), not another part of the library.
+"""
+
+import cv2
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from stripstitch import stitch
+from stripstitch.track import track
+
+
+def _waves(seed, n=40, fmax=0.15):
+    rng = np.random.default_rng(seed)
+    f = rng.uniform(-fmax, fmax, size=(n, 2))
+    f[:, 0] = np.abs(f[:, 0]) + 0.02            # every wave varies along the swipe too
+    ph = rng.uniform(0, 2 * np.pi, n)
+    amp = rng.uniform(0.5, 1.0, n)
+    return f, ph, amp
+
+
+def _frames(positions, shape=(8, 96), seed=0, waves=None, noise=0.0):
+    """Frames whose plate (r, c) sees texture(r + p0, c + p1) (library convention)."""
+    f, ph, amp = _waves(seed) if waves is None else waves
+    r_n, c_n = shape
+    rr, cc = np.meshgrid(np.arange(r_n), np.arange(c_n), indexing="ij")
+    out = np.empty((len(positions), r_n, c_n))
+    for t, (p0, p1) in enumerate(positions):
+        arg = 2 * np.pi * (f[:, 0, None, None] * (rr + p0) + f[:, 1, None, None] * (cc + p1))
+        out[t] = np.tensordot(amp, np.cos(arg + ph[:, None, None]), axes=1)
+    if noise:
+        out += noise * np.random.default_rng(seed + 1).standard_normal(out.shape)
+    return out.astype(np.float32)
+
+
+def _run(pos, **kw):
+    z = _frames(pos, **{k: v for k, v in kw.items() if k in ("shape", "seed", "noise", "waves")})
+    opts = {k: v for k, v in kw.items() if k not in ("shape", "seed", "noise", "waves")}
+    return track(z, np.ones(z.shape[1:], bool), **opts)
+
+
+def _err(res, pos):
+    est = res.positions - res.positions[0]
+    return np.abs(est - (pos - pos[0])).max(axis=0)
+
+
+def test_steady_subpixel_swipe():
+    t = np.arange(200)
+    pos = np.stack([0.37 * t, 0.11 * t], 1)
+    res = _run(pos)
+    assert res.link_ok.all()
+    assert (_err(res, pos) < 0.03).all()
+
+
+def test_slow_swipe_does_not_drift():
+    # The drift trap of small steps: 3000 frames at 0.05 px/frame (150 px). Chaining 3000
+    # steps with a 1e-3 px bias each would already lose 3 px; key frames keep it to one pair.
+    t = np.arange(3000)
+    pos = np.stack([0.05 * t, np.zeros_like(t, dtype=float)], 1)
+    res = _run(pos, shape=(8, 64))
+    assert (_err(res, pos) < 0.05).all()
+    assert res.n_keys < 200
+
+
+def test_varying_speed_stall_and_backtrack():
+    # Speed varying from 0 (a stall of 80 frames) to 2 px/frame, then reversing (a backtrack)
+    # and going forward again: every frame placed where it belongs.
+    v = np.concatenate([np.linspace(0.2, 2.0, 100), np.zeros(80), np.linspace(0.5, -1.0, 60),
+                        np.linspace(-1.0, 1.0, 60), np.full(60, 1.0)])
+    p0 = np.concatenate([[0.0], np.cumsum(v)])
+    p1 = 0.3 * np.sin(np.arange(p0.size) / 40.0)
+    pos = np.stack([p0, p1], 1)
+    res = _run(pos, sigma_acc_px=0.2)
+    assert res.link_ok.all()
+    assert (_err(res, pos) < 0.05).all()
+
+
+def test_fast_steps_near_the_strip_height():
+    # 5.5 rows per frame on an 8-row strip: every frame is its own key, so the error of each
+    # step (2.5 rows of overlap at half a pixel) adds up; it stays below 0.01 px a step.
+    t = np.arange(60)
+    pos = np.stack([5.5 * t, -0.2 * t], 1)
+    res = _run(pos)
+    assert res.link_ok.all()
+    inc = np.diff(res.positions, axis=0) - np.diff(pos, axis=0)
+    assert np.abs(inc).max() < 0.01
+    assert (_err(res, pos) < 0.4).all()
+
+
+def test_steps_agree_with_opencv_ecc_registration():
+    # Outside reference: OpenCV's enhanced-correlation-coefficient registration
+    # (cv2.findTransformECC, translation; Evangelidis & Psarakis, IEEE PAMI 30(10), 2008) on
+    # the same successive frames, at a moderate SNR. ECC finds W with input(W(u)) ~
+    # template(u); with template = frames[t + 1] and input = frames[t] that is our step.
+    t = np.arange(80)
+    pos = np.stack([1.3 * t + 0.2 * np.sin(t / 7.0), 0.25 * t], 1)
+    z = _frames(pos, shape=(16, 128), noise=0.05)
+    res = track(z, np.ones(z.shape[1:], bool))
+    ours = np.diff(res.positions, axis=0)
+    crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_COUNT, 100, 1e-6)
+    ref = []
+    for k in range(len(z) - 1):
+        w = np.eye(2, 3, dtype=np.float32)
+        w[1, 2], w[0, 2] = np.round(ours[k])       # only the whole pixels come from us
+        _, w = cv2.findTransformECC(z[k + 1], z[k], w, cv2.MOTION_TRANSLATION, crit, None, 1)
+        ref.append((w[1, 2], w[0, 2]))
+    ref = np.array(ref)
+    assert np.median(np.abs(ours - ref), axis=0).max() < 0.03
+    # The tracker is no worse than the pairwise reference against the truth (it also uses
+    # the motion model and a second key frame).
+    true = np.diff(pos, axis=0)
+    assert np.sqrt(np.mean((ours - true) ** 2)) <= 1.1 * np.sqrt(np.mean((ref - true) ** 2))
+
+
+def test_gap_is_reported_as_a_failed_link():
+    # The finger jumps 20 rows between frames 50 and 51: nothing overlaps there.
+    p0 = np.concatenate([0.5 * np.arange(51), 20.0 + 0.5 * np.arange(51, 100)])
+    pos = np.stack([p0, np.zeros_like(p0)], 1)
+    res = _run(pos)
+    assert not res.link_ok[50]
+    assert res.link_ok[:50].all() and res.link_ok[52:].all()
+    assert res.reference[51] == -1 or res.reference[50] == -1
+
+
+def test_aperture_direction_keeps_the_prediction():
+    # Ridges parallel to the swipe (texture varies only across): the along-swipe motion is
+    # not observable; the tracker must not wander along it, and says so in the information.
+    rng = np.random.default_rng(3)
+    n = 30
+    waves = (np.stack([np.zeros(n), rng.uniform(0.05, 0.3, n)], 1), rng.uniform(0, 6.28, n),
+             np.ones(n))
+    t = np.arange(120)
+    pos = np.stack([0.5 * t, 0.1 * t], 1)
+    res = _run(pos, waves=waves)
+    info = res.info[1:]
+    assert np.median(info[:, 0, 0]) < 1e-3 * np.median(info[:, 1, 1])
+    est = res.positions - res.positions[0]
+    assert np.abs(est[:, 1] - pos[:, 1]).max() < 0.05             # across still exact
+    assert np.abs(est[:, 0]).max() < 2.0                             # along: no wild walk
+
+
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(v0=st.floats(-4.0, 4.0), v1=st.floats(-1.0, 1.0), seed=st.integers(0, 1000))
+def test_random_constant_velocity_recovered(v0, v1, seed):
+    t = np.arange(40)
+    pos = np.stack([v0 * t, v1 * t], 1)
+    res = _run(pos, seed=seed)
+    assert res.link_ok.all()
+    # Up to 40 key hops of at most about 0.003 px each.
+    assert (_err(res, pos) < 0.12).all()
+
+
+def test_gain_and_offset_do_not_matter():
+    t = np.arange(60)
+    pos = np.stack([0.7 * t, 0.05 * t], 1)
+    z = _frames(pos)
+    m = np.ones(z.shape[1:], bool)
+    a = track(z, m).positions
+    b = track(3.0 * z + 7.0, m).positions
+    assert np.abs(a - b).max() < 0.01
+
+
+def test_dead_plates_masked():
+    t = np.arange(80)
+    pos = np.stack([0.6 * t, 0.0 * t], 1)
+    z = _frames(pos)
+    m = np.ones(z.shape[1:], bool)
+    m[:, 10] = False                    # a dead column stuck at a high value
+    z[:, :, 10] = 50.0
+    res = track(z, m)
+    assert (_err(res, pos) < 0.05).all()
+
+
+@pytest.mark.parametrize("kw, exc, msg", [
+    (dict(plate_mask=np.ones((3, 3), bool)), ValueError, "plate_mask must be a boolean array of shape"),
+    (dict(chain=[3, 2, 5]), ValueError, "chain must hold at least two increasing"),
+    (dict(chain=[0.5, 1.5]), TypeError, "chain must be a 1-D integer array"),
+    (dict(reach_px=-1.0), ValueError, "reach_px"),
+    (dict(iterations=0), ValueError, "iterations"),
+    (dict(times=np.zeros(3)), ValueError, "times"),
+    (dict(start=99), ValueError, "start"),
+])
+def test_bad_input(kw, exc, msg):
+    z = _frames(np.stack([np.arange(10) * 0.5, np.zeros(10)], 1))
+    args = dict(plate_mask=np.ones(z.shape[1:], bool))
+    args.update(kw)
+    with pytest.raises(exc, match=msg):
+        track(z, **args)
+
+
+def test_fast_mode_uses_the_tracker_and_hands_short_strips_over():
+    t = np.arange(150)
+    pos = np.stack([0.6 * t, 0.05 * t], 1)
+    res = stitch(_frames(pos, shape=(8, 96)) * 20 + 100, mode="fast")
+    assert res.options["placement"] == "key-frame tracker"
+    est = res.positions - res.positions[0]
+    assert np.abs(est - pos).max() < 0.1
+    # Three rows: too few for the tracker's two key frames; the pairwise path takes over.
+    pos3 = np.stack([0.3 * np.arange(150), np.zeros(150)], 1)
+    res3 = stitch(_frames(pos3, shape=(3, 96)) * 20 + 100, mode="fast")
+    assert res3.options["placement"] == "multi-baseline pairs"
+    assert np.abs((res3.positions - res3.positions[0]) - pos3).max() < 0.5
