@@ -3,6 +3,7 @@ solve, fusion and the report into one :class:`~stripstitch.Reconstruction`."""
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 from scipy import ndimage
 from scipy.special import erf
@@ -11,6 +12,7 @@ from . import mosaic as _mosaic
 from . import refine as _refine
 from . import register as _reg
 from . import report as _report
+from . import track as _track
 from . import trajectory as _traj
 from ._types import Reconstruction, ReconstructionError
 from ._validate import check_array, check_choice, check_frames, check_int, check_positive
@@ -136,8 +138,11 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     calibration : object with ``apply(frames)``, optional
         A :class:`stripstitch.calibrate.Calibration` applied before anything else. Default None.
     mode : {"default", "fast"}
-        ``"fast"`` uses fewer pairs and iterations and no rotation, for drivers. Default
-        is "default".
+        ``"fast"`` places the frames with the key-frame tracker (:mod:`stripstitch.track`:
+        one compiled pass, several times the frame rate of an 8 x 192 strip), without
+        rotation; where the tracker cannot vouch for its result (fewer than 4 rows, or more
+        drift expected than 0.3 % of the swipe, e.g. at low SNR) it hands over to the
+        default path (``result.options["placement"]`` says which). Default is "default".
     output_pitch_um : float or (2,) float, optional
         Resample the image to this pitch (e.g. 50.8 for exactly 500 ppi). Default is None
         (the sensor pitch).
@@ -152,8 +157,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         clipped to 3..12.
     model_passes : int, optional
         Passes of the final refinement of every frame against a super-resolved model of the
-        finger (:mod:`stripstitch.refine`); 0 skips it. Default None: 6 in default mode,
-        2 in fast mode.
+        finger (:mod:`stripstitch.refine`); 0 skips it. Default None: 6 in default mode; in
+        fast mode 0 after the tracker, 6 where it handed over.
 
     Returns
     -------
@@ -185,6 +190,12 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
        bilinear weights; the report lists gaps, stalls, backtracks, low confidence, skew and
        rotation.
 
+    Fast mode replaces steps 2 to 6 by the key-frame tracker: each frame is registered
+    (Gauss-Newton, as in step 2) against the current and the previous key frame, starting
+    from a constant-velocity Kalman prediction that also carries the directions the overlap
+    leaves open; the key frames' positions are part of the filter's state (stochastic
+    cloning [5]_), so their errors are corrected rather than inherited.
+
     References
     ----------
     .. [1] S. Baker and I. Matthews, "Lucas-Kanade 20 years on: a unifying framework",
@@ -195,6 +206,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
            least-squares", Comm. Statistics 6(9), 813-827 (1977).
     .. [4] H. Knutsson and C.-F. Westin, "Normalized and differential convolution", Proc.
            IEEE CVPR 1993, 515-523. doi:10.1109/CVPR.1993.341081
+    .. [5] S. I. Roumeliotis and J. W. Burdick, "Stochastic cloning: a generalized framework
+           for processing relative state measurements", Proc. IEEE ICRA 2002, 1788-1795.
+           doi:10.1109/ROBOT.2002.1014801
 
     Examples
     --------
@@ -255,6 +269,152 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         raise ReconstructionError("no finger found: fewer than two frames show finger texture "
                                   f"(of {t_n} frames); check the capture or the calibration")
 
+    placed = _fast_placement(prep, chain, dt_frames, max_across_px, motion_prior_px) \
+        if fast else None
+    if placed is not None:
+        positions, confidence, link_failed, n_pairs, n_kept = placed
+        angles_deg = np.zeros(t_n)
+        prep_used = prep
+        placement = "key-frame tracker"
+    else:
+        positions, angles_deg, confidence, link_failed, prep_used, n_pairs, n_kept = \
+            _full_placement(x, prep, chain, dt_frames, frame_rate_hz=frame_rate_hz,
+                            max_across_px=max_across_px, motion_prior_px=motion_prior_px)
+        placement = "multi-baseline pairs"
+
+    # ---- every frame against a super-resolved model of the finger ----
+    # Passes: the stretch and shear converge over several (13-swipe suite, default mode:
+    # median across RMS 0.127 / 0.101 / 0.080 px after 4 / 6 / 8 passes, but on a swipe of
+    # varying speed the across error creeps up again after 6). Fast mode: none by default.
+    # Fast mode: none after the tracker; where the tracker handed over, as in default mode.
+    n_model = (0 if placed is not None else 6) if model_passes is None else int(model_passes)
+    if n_model > 0:
+        mw = (prep.contact & (confidence > 0.05)).astype(np.float32)[:, None, None] \
+            * prep.plate_ok[None].astype(np.float32)
+        if (mw > 0).any():
+            ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
+                                           dt=dt_frames, sigma_acc_px=motion_prior_px,
+                                           cut=link_failed, iterations=n_model,
+                                           rotation=rotation)
+            positions = ref.positions.copy()
+            if rotation:
+                angles_deg = np.degrees(ref.angles_rad)
+    return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
+                   dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
+                   pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
+                       "pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
+                       "output_pitch_um": out_pitch_um.tolist(), "estimate_rotation": rotation,
+                       "motion_prior_px": motion_prior_px, "max_across_px": max_across_px,
+                       "timestamps": timestamps_s is not None,
+                       "calibration": calibration is not None,
+                       "n_pairs": int(n_pairs), "n_pairs_kept": int(n_kept),
+                       "placement": placement})
+
+
+def _strong_frames(prep, chain, noise):
+    """Frames with clear texture (for telling a gap from faint frames at the finger's ends).
+
+    Texture here is what changes over the swipe: a blank frame shows the static (fixed)
+    pattern left over after preparation, which the per-plate median over time removes.
+    Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
+    """
+    # Per-plate median over a subsample of about 100 frames spread over the swipe: a rough
+    # static level is all this needs, and the cost stays bounded on long swipes.
+    sub = chain[:: max(1, len(chain) // 100)]
+    static = np.median(prep.z[sub], axis=0)
+    tex = _texture_about(prep.z, chain, static.astype(np.float32), prep.plate_ok)
+    sig2 = np.maximum(tex ** 2 - noise ** 2, 0.0)
+    return sig2 >= 0.25 * float(np.median(sig2))
+
+
+@numba.njit(cache=True, nogil=True)
+def _texture_about(z, frames, static, ok):
+    """Standard deviation over the good plates of z[k] - static, for each k in ``frames``."""
+    r_n, c_n = static.shape
+    out = np.zeros(frames.shape[0])
+    for i in range(frames.shape[0]):
+        k = frames[i]
+        s = 0.0
+        s2 = 0.0
+        n = 0
+        for r in range(r_n):
+            for c in range(c_n):
+                if ok[r, c]:
+                    d = float(z[k, r, c]) - float(static[r, c])
+                    s += d
+                    s2 += d * d
+                    n += 1
+        if n > 0:
+            mu = s / n
+            out[i] = np.sqrt(max(s2 / n - mu * mu, 0.0))
+    return out
+
+
+def _fast_placement(prep, chain, dt_frames, max_across_px, motion_prior_px):
+    """Fast mode: the key-frame tracker (:mod:`stripstitch.track`); None when it cannot
+    vouch for its placement (fewer than 4 rows, or more drift expected than 0.3 %)."""
+    t_n, r_n, c_n = prep.z.shape
+    if r_n < 4:
+        return None
+    times = np.concatenate([[0.0], np.cumsum(dt_frames)])
+    tr = _track.track(prep.z, prep.plate_ok, chain, times=times, max_across_px=max_across_px,
+                      sigma_acc_px=motion_prior_px)
+    # The filter's own account of the drift at the ends: beyond 0.3 % of the swipe (short
+    # strips, low SNR: many noisy hops) the multi-baseline pairs do better.
+    span = float(np.ptp(tr.positions[:, 0]))
+    if np.sqrt(tr.variance[:, 0].max()) > 0.003 * span + 0.05:
+        return None
+    link_ok = tr.link_ok
+    placed = tr.reference >= 0
+    noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
+    strong = _strong_frames(prep, chain, noise)
+    link_gap = ~link_ok & strong[:-1] & strong[1:]
+    # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
+    positions = np.empty((t_n, 2))
+    for k in range(2):
+        positions[:, k] = np.interp(times, times[chain], tr.positions[:, k])
+    positions -= positions[0]
+    cpairs = np.stack([chain[:-1], chain[1:]], 1)
+    _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
+    # Confidence from each frame's registration (the first frame: its successor's).
+    info = _with_model_error(tr.info, tr.positions - tr.positions[np.maximum(tr.reference, 0)])
+    if len(chain) > 1 and placed[1]:
+        info[0] = info[1]
+        placed = placed.copy()
+        placed[0] = True
+    frame_info = np.zeros((t_n, 2, 2))
+    frame_info[chain] = info
+    ok_frac = np.zeros(t_n)
+    ok_frac[chain] = placed
+    confidence = _confidence(frame_info, prep.contact, ok_frac)
+    link_failed = _failed_links(t_n, cpairs, link_gap)
+    return positions, confidence, link_failed, int(len(chain) - 1), int(link_ok.sum())
+
+
+def _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n):
+    """Across a link with no overlap (too fast, no dropped frame to explain it) the frames
+    moved by at least the strip's height: the motion alone would place them too close and
+    overlay rows that were never seen together. Push what follows out to R rows (in place)."""
+    direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
+    for (i, j), gap in zip(cpairs, link_gap):
+        if not gap or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
+            continue
+        step = direction * (positions[j, 0] - positions[i, 0])
+        if step < r_n:
+            positions[j:, 0] += direction * (r_n - step)
+
+
+def _failed_links(t_n, cpairs, link_gap):
+    link_failed = np.zeros(t_n - 1, dtype=bool)
+    for (i, j), gap in zip(cpairs, link_gap):
+        if gap:
+            link_failed[i:j] = True
+    return link_failed
+
+
+def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, motion_prior_px):
+    """Multi-baseline pairwise registration, robust trajectory solve and model refinement."""
+    t_n, r_n, c_n = x.shape
     # ---- successive pairs: coarse search with a temporal prior, then refinement ----
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
     zn = _reg._row_normalise(prep.z, prep.plate_ok)
@@ -265,7 +425,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     atlas = _reg._Atlas(prep.z)
     grads = _reg._template_gradients(prep.z)
     est_c = _reg.refine_shifts(prep, cpairs, coarse, estimate_rotation=False,
-                               iterations=2 if fast else 3, atlas=atlas, grads=grads)
+                               iterations=3, atlas=atlas, grads=grads)
     # A link fails when nothing overlaps: the coarse NCC is at noise level or the refined
     # overlap is too small to place the frame.
     # (The refined NCC decides: the coarse score is taken at the pooled shift, which lags
@@ -276,19 +436,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # with faint texture fail to match for want of texture, not of overlap: the motion prior
     # bridges them, their low confidence keeps them out of the image, and nothing is pushed
     # apart.
-    # Texture here is what changes over the swipe: a blank frame shows the static (fixed)
-    # pattern left over after preparation, which the per-plate median over time removes.
-    # Per-plate median over a subsample of frames (memory stays bounded on long swipes).
-    sub = chain[:: max(1, len(chain) // 512)]
-    static = np.median(prep.z[sub], axis=0)
-    tex = np.array([float(np.std((prep.z[k] - static)[prep.plate_ok])) if prep.plate_ok.any() else 0.0
-                    for k in chain])
-    # Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
     # The noise is what is left after aligning the links that held (each pair's residual,
     # per frame); successive differences would count a fast swipe's motion as noise.
     noise = float(np.median(est_c.sigma[link_ok])) if link_ok.any() else prep.noise_sigma
-    sig2 = np.maximum(tex ** 2 - noise ** 2, 0.0)
-    strong = sig2 >= 0.25 * float(np.median(sig2))
+    strong = _strong_frames(prep, chain, noise)
     link_gap = ~link_ok & strong[:-1] & strong[1:]
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
     # Coarse chain positions (failed links bridged by the neighbours' median step).
@@ -303,7 +454,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     reach = max(1, min(r_n - 2, int(np.floor(0.75 * (r_n - 1)))))
     short_targets = sorted({1, min(2, reach)})
     long_targets = sorted({0, 1, max(1, reach // 2), reach})
-    iters = 2 if fast else 3
+    iters = 3
 
     def build_pairs(cpos, targets):
         """Successive links that held, plus partners picked from chain positions ``cpos``;
@@ -334,47 +485,33 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     pairs, init = build_pairs(chain_pos, short_targets)
     est, good, tr = solve(pairs, init)
     prep_used = prep
-    if fast:
-        # One re-pick from the solved trajectory (no fixed-pattern refit, no rotation).
-        pairs, init = build_pairs(tr.positions[chain], long_targets)
-        est, good, tr = solve(pairs, init)
-    else:
-        # Second pass: the fixed pattern re-estimated against the fused image, partners
-        # re-picked from the solved trajectory (the successive chain drifts where aliasing
-        # biases half-pixel steps), and everything refined again.
-        prep2 = _refit_fixed_pattern(x, prep, tr.positions, np.degrees(tr.angles_rad))
-        if prep2 is not None:
-            prep = prep2
-            atlas = grads = zn = None            # let the old ones go before the new exist
-            zn = _reg._row_normalise(prep.z, prep.plate_ok)
-            atlas = _reg._Atlas(prep.z)
-            grads = _reg._template_gradients(prep.z)
-        # Partners re-picked from the solved trajectory (frame 0's axes -> chain positions).
-        # Translation only: on a narrow strip a free rotation per pair makes every shift
-        # noisier (the two are nearly confounded over a few rows), and the few tenths of a
-        # degree aliasing puts into each pair's angle turned straight swipes. The finger's
-        # turn is read later, against the model of the whole finger (refine: twist).
-        # One pass: the model refinement below takes the placement the rest of the way (a
-        # second pairwise pass changed the suite's medians by nothing and cost 15 %).
-        pairs, init = build_pairs(tr.positions[chain], long_targets)
-        est, good, tr = solve(pairs, init)
-        prep_used = prep
+    # Second pass: the fixed pattern re-estimated against the fused image, partners
+    # re-picked from the solved trajectory (the successive chain drifts where aliasing
+    # biases half-pixel steps), and everything refined again.
+    prep2 = _refit_fixed_pattern(x, prep, tr.positions, np.degrees(tr.angles_rad))
+    if prep2 is not None:
+        prep = prep2
+        atlas = grads = zn = None            # let the old ones go before the new exist
+        zn = _reg._row_normalise(prep.z, prep.plate_ok)
+        atlas = _reg._Atlas(prep.z)
+        grads = _reg._template_gradients(prep.z)
+    # Partners re-picked from the solved trajectory (frame 0's axes -> chain positions).
+    # Translation only: on a narrow strip a free rotation per pair makes every shift
+    # noisier (the two are nearly confounded over a few rows), and the few tenths of a
+    # degree aliasing puts into each pair's angle turned straight swipes. The finger's
+    # turn is read later, against the model of the whole finger (refine: twist).
+    # One pass: the model refinement below takes the placement the rest of the way (a
+    # second pairwise pass changed the suite's medians by nothing and cost 15 %).
+    pairs, init = build_pairs(tr.positions[chain], long_targets)
+    est, good, tr = solve(pairs, init)
+    prep_used = prep
     # The pairwise stage is done: its upsampled frames, gradients and normalised copies (about
     # 50 KB a frame of 8 x 192) need not outlive it.
     atlas = grads = zn = None
 
     positions = tr.positions.copy()
     angles_deg = np.degrees(tr.angles_rad)
-    # Across a link with no overlap (too fast, no dropped frame to explain it) the frames moved
-    # by at least the strip's height: the motion prior alone would place them too close and
-    # overlay rows that were never seen together. Push what follows out to R rows.
-    direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
-    for (i, j), gap in zip(cpairs, link_gap):
-        if not gap or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
-            continue
-        step = direction * (positions[j, 0] - positions[i, 0])
-        if step < r_n:
-            positions[j:, 0] += direction * (r_n - step)
+    _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
     # Pairs kept per frame, for confidence.
     kept = np.zeros(t_n)
     total = np.zeros(t_n)
@@ -383,27 +520,14 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     ok_frac = np.where(total > 0, kept / np.maximum(total, 1), 0.0)
     confidence = _confidence(tr.frame_info, prep.contact, np.clip(ok_frac, 0, 1))
 
-    # ---- every frame against a super-resolved model of the finger ----
-    link_failed = np.zeros(t_n - 1, dtype=bool)
-    for (i, j), gap in zip(cpairs, link_gap):
-        if gap:
-            link_failed[i:j] = True
-    # Passes: the stretch and shear converge over several (13-swipe suite, default mode:
-    # median across RMS 0.127 / 0.101 / 0.080 px after 4 / 6 / 8 passes, but on a swipe of
-    # varying speed the across error creeps up again after 6); fast mode stops at 2.
-    n_model = (6 if not fast else 2) if model_passes is None else int(model_passes)
-    if n_model > 0:
-        mw = (prep.contact & (confidence > 0.05)).astype(np.float32)[:, None, None] \
-            * prep.plate_ok[None].astype(np.float32)
-        if (mw > 0).any():
-            ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
-                                           dt=dt_frames, sigma_acc_px=motion_prior_px,
-                                           cut=link_failed, iterations=n_model,
-                                           rotation=rotation)
-            positions = ref.positions.copy()
-            if rotation:
-                angles_deg = np.degrees(ref.angles_rad)
+    link_failed = _failed_links(t_n, cpairs, link_gap)
+    return positions, angles_deg, confidence, link_failed, prep_used, len(pairs), int(good.sum())
 
+
+def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, dt_frames, times,
+            frame_rate_hz, pitch_um, out_pitch_um, options):
+    """Fusion, events and report."""
+    r_n = prep.z.shape[1]
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
     level = float(np.mean(prep_used.offset))
@@ -426,11 +550,6 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                               confidence=confidence, contact=prep.contact, times_s=times,
                               frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,
                               image=mos.image)
-    options = {"pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
-               "output_pitch_um": out_pitch_um.tolist(), "estimate_rotation": rotation,
-               "motion_prior_px": motion_prior_px, "max_across_px": max_across_px,
-               "timestamps": timestamps_s is not None, "calibration": calibration is not None,
-               "n_pairs": int(len(pairs)), "n_pairs_kept": int(good.sum())}
     return Reconstruction(image=mos.image, positions=positions, angles=angles_deg,
                           confidence=confidence, events=events, report=rep, weight=mos.weight,
                           origin_px=mos.origin_px, pitch_um=out_pitch_um,
