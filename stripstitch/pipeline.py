@@ -138,11 +138,13 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     calibration : object with ``apply(frames)``, optional
         A :class:`stripstitch.calibrate.Calibration` applied before anything else. Default None.
     mode : {"default", "fast"}
-        ``"fast"`` places the frames with the key-frame tracker (:mod:`stripstitch.track`:
-        one compiled pass, several times the frame rate of an 8 x 192 strip), without
-        rotation; where the tracker cannot vouch for its result (fewer than 4 rows, or more
-        drift expected than 0.3 % of the swipe, e.g. at low SNR) it hands over to the
-        default path (``result.options["placement"]`` says which). Default is "default".
+        Both place the frames with the key-frame tracker (:mod:`stripstitch.track`, one
+        compiled pass); ``"default"`` then refines every frame against a model of the finger
+        (stretch, shear, turn, pixel locking), ``"fast"`` stops there (no rotation), for
+        drivers. Where the tracker cannot vouch for its placement (fewer than 4 rows, or
+        more drift expected than 0.3 % of the swipe, e.g. at low SNR) both hand over to the
+        multi-baseline pairs (``result.options["placement"]`` says which). Default is
+        "default".
     output_pitch_um : float or (2,) float, optional
         Resample the image to this pitch (e.g. 50.8 for exactly 500 ppi). Default is None
         (the sensor pitch).
@@ -157,8 +159,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         clipped to 3..12.
     model_passes : int, optional
         Passes of the final refinement of every frame against a super-resolved model of the
-        finger (:mod:`stripstitch.refine`); 0 skips it. Default None: 6 in default mode; in
-        fast mode 0 after the tracker, 6 where it handed over.
+        finger (:mod:`stripstitch.refine`); 0 skips it. Default None: after the tracker 2 in
+        default mode and 0 in fast mode; after the multi-baseline pairs 6.
 
     Returns
     -------
@@ -168,33 +170,27 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     -----
     1. Per-plate offset and gain (fixed pattern) are removed; dead, stuck and noisy plates
        are excluded; frames without finger texture are set aside.
-    2. Successive frames are matched by normalised cross-correlation over every integer shift
-       (FFT), with a temporal prior against ridge-period jumps, then refined by
-       inverse-compositional Gauss-Newton with cubic-convolution interpolation (shift, gain,
-       offset), which gives each pair a 2x2 information matrix (cluster-robust over blocks
-       of columns).
-    3. Frames are also paired at longer baselines at nearly whole-pixel displacements (up to
-       about 0.7 R rows apart, and at fixed time lags for stalls), so errors do not
-       accumulate along the chain.
-    4. Positions are solved jointly over all pairs by robust (Huber, then Cauchy)
-       iteratively reweighted least squares with a weak acceleration prior, which carries
-       the trajectory across gaps without inventing content.
-    5. In default mode the fixed pattern is then re-estimated against the fused image (the
-       first estimate holds a trace of finger texture that pulls shifts towards zero) and
-       the pairs are refined again.
-    6. Every frame is refined against a model of the finger finer than the plates
-       (:mod:`stripstitch.refine`): this removes the pixel-locking bias of the pairwise
-       shifts, the stretch and shear that overlaps hardly see, and reads the finger's turn
-       (kept when it adds up to a degree or more).
-    7. Every observation is placed at its sub-pixel position on a uniform grid and fused with
+    2. The key-frame tracker places every frame in one pass: inverse-compositional
+       Gauss-Newton with cubic-convolution interpolation (shift, offset) against the current
+       and the previous key frame, started from a constant-velocity Kalman prediction that
+       also carries the directions an overlap leaves open (ridges parallel to the shift);
+       the key frames' positions are part of the filter's state (stochastic cloning [5]_),
+       so their errors are corrected rather than inherited, and tracking runs outwards from
+       the best-seen frame in the middle of the swipe.
+    3. Where the tracker cannot vouch for its placement, successive frames are matched by
+       normalised cross-correlation over every integer shift (FFT) and refined by
+       Gauss-Newton with a 2x2 information matrix per pair (cluster-robust over blocks of
+       columns); frames are also paired at longer baselines at nearly whole-pixel
+       displacements; positions are solved jointly by robust (Huber, then Cauchy)
+       iteratively reweighted least squares with a weak acceleration prior; the fixed pattern
+       is re-estimated against the fused image and the pairs refined again.
+    4. Default mode: every frame is refined against a model of the finger finer than the
+       plates (:mod:`stripstitch.refine`): this removes the pixel-locking bias of the
+       pairwise shifts, the stretch and shear that overlaps hardly see, and reads the
+       finger's turn (kept when it adds up to a degree or more).
+    5. Every observation is placed at its sub-pixel position on a uniform grid and fused with
        bilinear weights; the report lists gaps, stalls, backtracks, low confidence, skew and
        rotation.
-
-    Fast mode replaces steps 2 to 6 by the key-frame tracker: each frame is registered
-    (Gauss-Newton, as in step 2) against the current and the previous key frame, starting
-    from a constant-velocity Kalman prediction that also carries the directions the overlap
-    leaves open; the key frames' positions are part of the filter's state (stochastic
-    cloning [5]_), so their errors are corrected rather than inherited.
 
     References
     ----------
@@ -269,12 +265,11 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         raise ReconstructionError("no finger found: fewer than two frames show finger texture "
                                   f"(of {t_n} frames); check the capture or the calibration")
 
-    placed = _fast_placement(prep, chain, dt_frames, max_across_px, motion_prior_px) \
-        if fast else None
+    placed = _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px,
+                                refit=not fast)
     if placed is not None:
-        positions, confidence, link_failed, n_pairs, n_kept = placed
+        positions, confidence, link_failed, prep_used, n_pairs, n_kept = placed
         angles_deg = np.zeros(t_n)
-        prep_used = prep
         placement = "key-frame tracker"
     else:
         positions, angles_deg, confidence, link_failed, prep_used, n_pairs, n_kept = \
@@ -283,11 +278,18 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         placement = "multi-baseline pairs"
 
     # ---- every frame against a super-resolved model of the finger ----
-    # Passes: the stretch and shear converge over several (13-swipe suite, default mode:
-    # median across RMS 0.127 / 0.101 / 0.080 px after 4 / 6 / 8 passes, but on a swipe of
-    # varying speed the across error creeps up again after 6). Fast mode: none by default.
-    # Fast mode: none after the tracker; where the tracker handed over, as in default mode.
-    n_model = (0 if placed is not None else 6) if model_passes is None else int(model_passes)
+    # Passes: the stretch, shear and turn converge over several. From the tracker's placement
+    # 2 (the 9 gap-free swipes of the 13-swipe suite it placed: median span error 0.031 /
+    # 0.026 / 0.026 %, mean along RMS 0.066 / 0.063 / 0.063 px, mean across RMS 0.128 /
+    # 0.145 / 0.160 px after 2 / 3 / 4 passes); from the pairs 6 (across RMS 0.127 / 0.101 /
+    # 0.080 px after 4 / 6 / 8, but on a swipe of varying speed it creeps up again after 6).
+    # Fast mode: none after the tracker.
+    if model_passes is not None:
+        n_model = int(model_passes)
+    elif placed is not None:
+        n_model = 0 if fast else 2
+    else:
+        n_model = 6
     if n_model > 0:
         mw = (prep.contact & (confidence > 0.05)).astype(np.float32)[:, None, None] \
             * prep.plate_ok[None].astype(np.float32)
@@ -350,15 +352,35 @@ def _texture_about(z, frames, static, ok):
     return out
 
 
-def _fast_placement(prep, chain, dt_frames, max_across_px, motion_prior_px):
-    """Fast mode: the key-frame tracker (:mod:`stripstitch.track`); None when it cannot
-    vouch for its placement (fewer than 4 rows, or more drift expected than 0.3 %)."""
+def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px, *, refit):
+    """The key-frame tracker's placement (:mod:`stripstitch.track`); None when it cannot
+    vouch for it (fewer than 4 rows, or more drift expected than 0.3 % of the swipe)."""
     t_n, r_n, c_n = prep.z.shape
     if r_n < 4:
         return None
     times = np.concatenate([[0.0], np.cumsum(dt_frames)])
-    tr = _track.track(prep.z, prep.plate_ok, chain, times=times, max_across_px=max_across_px,
-                      sigma_acc_px=motion_prior_px)
+
+    def run(p):
+        return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
+                            sigma_acc_px=motion_prior_px)
+
+    def spread(tr):
+        out = np.empty((t_n, 2))
+        for k in range(2):
+            out[:, k] = np.interp(times, times[chain], tr.positions[:, k])
+        return out - out[0]
+
+    tr = run(prep)
+    if refit and (~prep.contact).sum() < 8:
+        # Without blank frames the fixed pattern was estimated from the finger itself (the
+        # per-plate mean over the swipe), which also holds the mean texture each plate saw:
+        # a static pattern that pulls every registration towards zero shift. Refitted
+        # against the fused image, then tracked again. (With blank frames the refit did not
+        # help: 13-swipe suite, median span error 0.031 % without, 0.070 % with.)
+        prep2 = _refit_fixed_pattern(x, prep, spread(tr), np.zeros(t_n))
+        if prep2 is not None:
+            prep = prep2
+            tr = run(prep)
     # The filter's own account of the drift at the ends: beyond 0.3 % of the swipe (short
     # strips, low SNR: many noisy hops) the multi-baseline pairs do better.
     span = float(np.ptp(tr.positions[:, 0]))
@@ -370,25 +392,25 @@ def _fast_placement(prep, chain, dt_frames, max_across_px, motion_prior_px):
     strong = _strong_frames(prep, chain, noise)
     link_gap = ~link_ok & strong[:-1] & strong[1:]
     # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
-    positions = np.empty((t_n, 2))
-    for k in range(2):
-        positions[:, k] = np.interp(times, times[chain], tr.positions[:, k])
-    positions -= positions[0]
+    positions = spread(tr)
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
     _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
-    # Confidence from each frame's registration (the first frame: its successor's).
+    # Confidence from each frame's registration (the frame tracking started from: its
+    # neighbour's).
     info = _with_model_error(tr.info, tr.positions - tr.positions[np.maximum(tr.reference, 0)])
-    if len(chain) > 1 and placed[1]:
-        info[0] = info[1]
+    k0 = tr.start
+    nb = k0 + 1 if k0 + 1 < len(chain) and placed[k0 + 1] else k0 - 1
+    if 0 <= nb < len(chain) and placed[nb]:
+        info[k0] = info[nb]
         placed = placed.copy()
-        placed[0] = True
+        placed[k0] = True
     frame_info = np.zeros((t_n, 2, 2))
     frame_info[chain] = info
     ok_frac = np.zeros(t_n)
     ok_frac[chain] = placed
     confidence = _confidence(frame_info, prep.contact, ok_frac)
     link_failed = _failed_links(t_n, cpairs, link_gap)
-    return positions, confidence, link_failed, int(len(chain) - 1), int(link_ok.sum())
+    return positions, confidence, link_failed, prep, int(len(chain) - 1), int(link_ok.sum())
 
 
 def _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n):

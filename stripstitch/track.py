@@ -74,6 +74,8 @@ class TrackResult:
     variance : (N, 2) float64
         The filter's variance (px^2) of each position relative to the frame tracking started
         from (grows towards the ends: the drift the filter expects).
+    start : int
+        Chain index tracking started from (its ``reference`` is -1 and ``info`` zero).
     """
 
     positions: np.ndarray
@@ -84,6 +86,7 @@ class TrackResult:
     link_ok: np.ndarray
     n_keys: int
     variance: np.ndarray
+    start: int
 
 
 @numba.njit(**_JIT)
@@ -513,6 +516,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     P = np.zeros((_NS, _NS))
     have_v = False
     have_old = False
+    ncc_run = 0.0
     key = 0
     _upsample_extend(z[chain[0]], lor, wr, loc, wc, up_key)
     n_keys = 1
@@ -547,7 +551,10 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             if cres[2] > 0.0:
                 _upsample_extend(a, lor, wr, loc, wc, up_prev)
                 _gauss_newton(up_prev, m, b, g0, g1, m, cres[0], cres[1], iters + 2, lam, res)
-                if (res[8] > 0.0 and res[5] >= min_ncc
+                # The prediction failed, so something abrupt happened (a jump, a dropped
+                # frame): a match found by search must be about as good as the links so far,
+                # or it is a chance resemblance and the link is a gap.
+                if (res[8] > 0.0 and res[5] >= max(min_ncc, ncc_run - 0.25)
                         and abs(res[0] - cres[0]) < 1.5 and abs(res[1] - cres[1]) < 1.5):
                     placed = True
                     fresh = True
@@ -598,6 +605,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             sig[j] = res[6]
             link_ok[j - 1] = True
             have_v = True
+            # running mean of the accepted correlations (about the last ten links)
+            ncc_run = res[5] if ncc_run == 0.0 else 0.9 * ncc_run + 0.1 * res[5]
         else:
             # No overlap found: carried by the motion; the frame starts a new key.
             pos[j, 0] = x[0]
@@ -614,13 +623,27 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             pvar[j, 0] = P[0, 0]
             pvar[j, 1] = P[1, 1]
             continue
-        # A new key: far enough from the current one, at a nearly whole-pixel displacement
-        # (or as far as the overlap allows). The current key becomes the older one.
+        # A new key: far enough from the current one (half the reach), at the displacement
+        # nearest a whole pixel among this frame and the frames predicted to follow before
+        # the reach is exceeded (or as far as the overlap allows). The current key becomes
+        # the older one.
         e0 = x[0] - x[4]
         e1 = x[1] - x[5]
         frac = max(abs(e0 - np.round(e0)), abs(e1 - np.round(e1)))
-        if (abs(e0) >= reach or abs(e1) >= c_n // 4
-                or (abs(e0) >= 0.5 * reach and frac < 0.15)):
+        promote = abs(e0) >= reach or abs(e1) >= c_n // 4
+        if not promote and abs(e0) >= 0.5 * reach:
+            promote = frac < 0.1
+            if not promote:
+                best = 1.0
+                step = max(dt, 1e-9)
+                for k in range(1, 65):
+                    f0 = e0 + x[2] * step * k
+                    f1 = e1 + x[3] * step * k
+                    if abs(f0) >= reach or abs(f1) >= c_n // 4:
+                        break
+                    best = min(best, max(abs(f0 - np.round(f0)), abs(f1 - np.round(f1))))
+                promote = frac <= best + 0.02
+        if promote:
             key = j
             tmp = up_old
             up_old = up_key
@@ -793,4 +816,4 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         link_ok[np.minimum(sub[:-1], sub[1:])] = l_
     pos -= pos[0]
     return TrackResult(positions=pos, info=info, reference=ref, ncc=ncc, sigma=sig,
-                       link_ok=link_ok, n_keys=int(n_keys), variance=pvar)
+                       link_ok=link_ok, n_keys=int(n_keys), variance=pvar, start=int(start))
