@@ -24,6 +24,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse import linalg as splinalg
@@ -131,43 +132,14 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     lo = np.array([k0.min(), k1.min()]) - margin_px
     hi = np.array([k0.max(), k1.max()]) + margin_px
     shape = tuple((np.ceil((hi - lo) / h)).astype(np.int64) + 2)
-    n_nodes = int(shape[0] * shape[1])
     # Moments per node for a local linear fit: sums of w, w dy, w dx, w dy^2, w dx^2,
     # w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset (px) of the observation from
     # the node it is splatted to.
-    acc = np.zeros((9, n_nodes))
-    step = _chunk_frames(r_n, c_n)
-    for s0 in range(0, t_n, step):
-        sl = slice(s0, min(t_n, s0 + step))
-        ww = np.asarray(w[sl], dtype=np.float64).reshape(-1)
-        keep = ww > 0
-        if not keep.any():
-            continue
-        q0, q1 = _mosaic.plate_coordinates(z[sl].shape, positions[sl], angles_rad[sl])
-        f0 = ((q0.reshape(-1) - lo[0]) / h[0])[keep]
-        f1 = ((q1.reshape(-1) - lo[1]) / h[1])[keep]
-        v = np.asarray(z[sl], dtype=np.float64).reshape(-1)[keep]
-        ww = ww[keep]
-        i0 = np.floor(f0).astype(np.int64)
-        i1 = np.floor(f1).astype(np.int64)
-        a0 = f0 - i0
-        a1 = f1 - i1
-        # The four splat corners side by side, so each moment takes one bincount per chunk
-        # (the output array is as large as the grid; fewer calls, less memory traffic).
-        di = np.repeat([0, 0, 1, 1], len(f0))
-        dj = np.repeat([0, 1, 0, 1], len(f0))
-        a0c = np.tile(a0, 4)
-        a1c = np.tile(a1, 4)
-        k = (np.tile(i0, 4) + di) * shape[1] + (np.tile(i1, 4) + dj)
-        wk = np.tile(ww, 4) * np.where(di == 1, a0c, 1.0 - a0c) * np.where(dj == 1, a1c, 1.0 - a1c)
-        dy = (a0c - di) * h[0]
-        dx = (a1c - dj) * h[1]
-        vc = np.tile(v, 4)
-        wy = wk * dy
-        wx = wk * dx
-        for row, wts in enumerate((wk, wy, wx, wy * dy, wx * dx, wy * dx, wk * vc, wy * vc, wx * vc)):
-            acc[row] += np.bincount(k, weights=wts, minlength=n_nodes)
-    acc = acc.reshape((9,) + shape)
+    acc = np.zeros((9,) + shape)
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    th = np.asarray(angles_rad, dtype=np.float64)
+    _splat_moments(z, w, np.asarray(positions, dtype=np.float64), np.cos(th), np.sin(th), cf,
+                   lo, h, acc)
     sig = np.asarray(smooth_px, dtype=np.float64) / h
 
     def kernels(sigma, spacing):
@@ -223,6 +195,52 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
             w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
             model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
     return model, s00, lo
+
+
+@numba.njit(cache=True, nogil=True)
+def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
+    """Per node the moments of a local linear fit, from every observation splatted onto its
+    four nearest nodes with bilinear weights (in place into acc, shape (9, H, W)): sums of
+    w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset
+    (px) of the observation from the node."""
+    t_n, r_n, c_n = z.shape
+    for t in range(t_n):
+        ct = cos_t[t]
+        st = sin_t[t]
+        for r in range(r_n):
+            u0 = r - cf[0]
+            for c in range(c_n):
+                wv = float(w[t, r, c])
+                if wv <= 0.0:
+                    continue
+                u1 = c - cf[1]
+                f0 = (cf[0] + pos[t, 0] + ct * u0 - st * u1 - lo[0]) / h[0]
+                f1 = (cf[1] + pos[t, 1] + st * u0 + ct * u1 - lo[1]) / h[1]
+                i0 = int(np.floor(f0))
+                i1 = int(np.floor(f1))
+                a0 = f0 - i0
+                a1 = f1 - i1
+                v = float(z[t, r, c])
+                for di in range(2):
+                    wa = a0 if di == 1 else 1.0 - a0
+                    dy = (a0 - di) * h[0]
+                    for dj in range(2):
+                        wb = a1 if dj == 1 else 1.0 - a1
+                        dx = (a1 - dj) * h[1]
+                        wk = wv * wa * wb
+                        wy = wk * dy
+                        wx = wk * dx
+                        n0 = i0 + di
+                        n1 = i1 + dj
+                        acc[0, n0, n1] += wk
+                        acc[1, n0, n1] += wy
+                        acc[2, n0, n1] += wx
+                        acc[3, n0, n1] += wy * dy
+                        acc[4, n0, n1] += wx * dx
+                        acc[5, n0, n1] += wy * dx
+                        acc[6, n0, n1] += wk * v
+                        acc[7, n0, n1] += wy * v
+                        acc[8, n0, n1] += wx * v
 
 
 def _sample(stack, f0, f1):
