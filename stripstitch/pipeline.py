@@ -320,9 +320,9 @@ def _strong_frames(prep, chain, noise):
     pattern left over after preparation, which the per-plate median over time removes.
     Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
     """
-    # Per-plate median over a subsample of about 100 frames spread over the swipe: a rough
+    # Per-plate median over a subsample of about 40 frames spread over the swipe: a rough
     # static level is all this needs, and the cost stays bounded on long swipes.
-    sub = chain[:: max(1, len(chain) // 100)]
+    sub = chain[:: max(1, len(chain) // 40)]
     static = np.median(prep.z[sub], axis=0)
     tex = _texture_about(prep.z, chain, static.astype(np.float32), prep.plate_ok)
     sig2 = np.maximum(tex ** 2 - noise ** 2, 0.0)
@@ -553,14 +553,17 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
     level = float(np.mean(prep_used.offset))
-    # Single precision per observation (the fusion accumulates in double, chunk by chunk).
-    values = prep_used.z * np.float32(scale) + np.float32(level)
     fw = (prep.contact & (confidence > 0.05)).astype(np.float32)
     weights = fw[:, None, None] * prep.plate_ok[None].astype(np.float32)
     if not (weights > 0).any():
         weights = prep.contact.astype(np.float32)[:, None, None] * prep.plate_ok[None].astype(np.float32)
     pitch_px = out_pitch_um / pitch_um
-    mos = _mosaic.fuse(values, positions, angles_deg, weights=weights, output_pitch_px=pitch_px)
+    # The fusion is a weighted mean, so the prepared values are fused and the image mapped
+    # back to input units afterwards (no frame-sized copy).
+    mos = _mosaic.fuse(prep_used.z, positions, angles_deg, weights=weights,
+                       output_pitch_px=pitch_px)
+    mos = _mosaic.Mosaic(image=mos.image * scale + level, weight=mos.weight,
+                         origin_px=mos.origin_px, pitch_px=mos.pitch_px)
 
     # ---- events and report ----
     events = _report.find_events(positions=positions, angles_deg=angles_deg,

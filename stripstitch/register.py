@@ -253,14 +253,19 @@ def _normalise(x, offset, scale, plate_ok):
         for c in range(c_n):
             if plate_ok[r, c]:
                 n_ok += 1
+    # multiply by the inverse (0 on bad plates) rather than divide: no branch, no division
+    inv = np.zeros((r_n, c_n))
+    for r in range(r_n):
+        for c in range(c_n):
+            if plate_ok[r, c]:
+                inv[r, c] = 1.0 / scale[r, c]
     for t in range(t_n):
         s = 0.0
         for r in range(r_n):
             for c in range(c_n):
-                if plate_ok[r, c]:
-                    v = np.float32((float(x[t, r, c]) - offset[r, c]) / scale[r, c])
-                    z[t, r, c] = v
-                    s += float(v) * float(v)
+                v = np.float32((float(x[t, r, c]) - offset[r, c]) * inv[r, c])
+                z[t, r, c] = v
+                s += float(v) * float(v)
         tex[t] = np.sqrt(s / n_ok) if n_ok > 0 else 0.0
     return z, tex
 

@@ -157,32 +157,54 @@ def _gradients(b, g0, g1):
 def _upsample_extend(a, lor, wr, loc, wc, out):
     """Twice-denser grid (Lagrange mid-points, up to 6 taps) with Keys' boundary extension:
     interpolating it by cubic convolution has about eight times less phase error at ridge
-    frequencies than interpolating the plates themselves."""
+    frequencies than interpolating the plates themselves. Written into ``out``
+    (2R + 3, 2C + 3) in place."""
     r_n, c_n = a.shape
-    u1 = np.empty((2 * r_n - 1, c_n), dtype=np.float32)
+    nr = 2 * r_n - 1
+    nc = 2 * c_n - 1
+    kr = wr.shape[1]
+    kc = wc.shape[1]
+    # rows: even rows are the plates, odd rows the mid-points (interior columns 2, 4, ...)
     for i in range(r_n):
         for c in range(c_n):
-            u1[2 * i, c] = a[i, c]
+            out[2 + 2 * i, 2 + 2 * c] = a[i, c]
     for i in range(r_n - 1):
         for c in range(c_n):
             acc = 0.0
-            for k in range(wr.shape[1]):
+            for k in range(kr):
                 acc += wr[i, k] * a[lor[i] + k, c]
-            u1[2 * i + 1, c] = acc
-    u2 = np.empty((2 * r_n - 1, 2 * c_n - 1), dtype=np.float32)
-    for r in range(2 * r_n - 1):
-        for j in range(c_n):
-            u2[r, 2 * j] = u1[r, j]
+            out[3 + 2 * i, 2 + 2 * c] = acc
+    # columns: mid-points between the even columns, on every row
+    for r in range(nr):
+        rr = 2 + r
         for j in range(c_n - 1):
             acc = 0.0
-            for k in range(wc.shape[1]):
-                acc += wc[j, k] * u1[r, loc[j] + k]
-            u2[r, 2 * j + 1] = acc
-    _extend(u2, out)
+            for k in range(kc):
+                acc += wc[j, k] * out[rr, 2 + 2 * (loc[j] + k)]
+            out[rr, 3 + 2 * j] = acc
+    # Keys' boundary extension, two samples per side: rows, then columns (all rows)
+    for c in range(2, 2 + nc):
+        if nr >= 3:
+            lo1 = 3.0 * out[2, c] - 3.0 * out[3, c] + out[4, c]
+            hi1 = 3.0 * out[nr + 1, c] - 3.0 * out[nr, c] + out[nr - 1, c]
+        else:
+            lo1 = 2.0 * out[2, c] - out[nr + 1, c]
+            hi1 = 2.0 * out[nr + 1, c] - out[2, c]
+        out[1, c] = lo1
+        out[0, c] = 2.0 * lo1 - out[2, c]
+        out[nr + 2, c] = hi1
+        out[nr + 3, c] = 2.0 * hi1 - out[nr + 1, c]
+    for r in range(nr + 4):
+        lo1 = 3.0 * out[r, 2] - 3.0 * out[r, 3] + out[r, 4]
+        hi1 = 3.0 * out[r, nc + 1] - 3.0 * out[r, nc] + out[r, nc - 1]
+        out[r, 1] = lo1
+        out[r, 0] = 2.0 * lo1 - out[r, 2]
+        out[r, nc + 2] = hi1
+        out[r, nc + 3] = 2.0 * hi1 - out[r, nc + 1]
 
 
 @numba.njit(**_JIT)
-def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res):
+def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, full, pre):
     """Shift (d0, d1) with b(u) ~ a(u + d) + offset, from the start (d0, d1).
 
     ``up_a``: frame a on the twice-denser grid, Keys-extended (see _upsample_extend).
@@ -191,10 +213,11 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res):
     res gets: d0, d1, I00, I01, I11 (noise-only information, px^-2), ncc, sigma, n, ok.
     """
     r_n, c_n = b.shape
-    wy = np.empty(4, dtype=np.float32)
-    wx = np.empty(4, dtype=np.float32)
-    tmp = np.empty(2 * c_n + 8, dtype=np.float32)
-    wrow = np.empty(c_n, dtype=np.float32)
+    # work arrays from the caller (no allocation per call): 8 + (2C + 8) + C floats
+    wy = scratch[0:4]
+    wx = scratch[4:8]
+    tmp = scratch[8:2 * c_n + 16]
+    wrow = scratch[2 * c_n + 16:3 * c_n + 16]
     ok = 0.0
     st0 = d0
     st1 = d1
@@ -230,6 +253,38 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res):
                 cc = x_first + q + 2
                 tmp[q] = (wy[0] * up_a[ra, cc] + wy[1] * up_a[ra + 1, cc]
                           + wy[2] * up_a[ra + 2, cc] + wy[3] * up_a[ra + 3, cc])
+            if full:
+                # Every plate usable: the template's own sums over the row come from its
+                # prefix sums; only the sums that involve the interpolated key remain.
+                z32 = np.float32(0.0)
+                ri = rii = rit = r0i = r1i = z32
+                for c in range(c_lo, c_hi + 1):
+                    q = 2 * (c - c_lo)
+                    iv = (wx[0] * tmp[q] + wx[1] * tmp[q + 1] + wx[2] * tmp[q + 2]
+                          + wx[3] * tmp[q + 3])
+                    ri += iv
+                    rii += iv * iv
+                    rit += iv * b[r, c]
+                    r0i += g0[r, c] * iv
+                    r1i += g1[r, c] * iv
+                lo_ = c_lo
+                hi_ = c_hi + 1
+                sw += hi_ - lo_
+                sg0 += pre[0, r, hi_] - pre[0, r, lo_]
+                sg1 += pre[1, r, hi_] - pre[1, r, lo_]
+                sgg00 += pre[2, r, hi_] - pre[2, r, lo_]
+                sgg01 += pre[3, r, hi_] - pre[3, r, lo_]
+                sgg11 += pre[4, r, hi_] - pre[4, r, lo_]
+                rt_ = pre[5, r, hi_] - pre[5, r, lo_]
+                st += rt_
+                stt += pre[6, r, hi_] - pre[6, r, lo_]
+                si += ri
+                sii += rii
+                sit += rit
+                sr += ri - rt_
+                sg0r += r0i - (pre[7, r, hi_] - pre[7, r, lo_])
+                sg1r += r1i - (pre[8, r, hi_] - pre[8, r, lo_])
+                continue
             # weight: both plates usable (a's nearest plate to the sample point)
             rm = min(max(int(np.floor(r + d0 + 0.5)), 0), r_n - 1)
             for c in range(c_lo, c_hi + 1):
@@ -331,6 +386,38 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res):
 
 
 @numba.njit(**_JIT)
+def _template_prefix(b, g0, g1, pre):
+    """Per-row prefix sums over columns of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b."""
+    r_n, c_n = b.shape
+    for r in range(r_n):
+        s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = s8 = 0.0
+        pre[0, r, 0] = pre[1, r, 0] = pre[2, r, 0] = pre[3, r, 0] = pre[4, r, 0] = 0.0
+        pre[5, r, 0] = pre[6, r, 0] = pre[7, r, 0] = pre[8, r, 0] = 0.0
+        for c in range(c_n):
+            a0 = float(g0[r, c])
+            a1 = float(g1[r, c])
+            t = float(b[r, c])
+            s0 += a0
+            s1 += a1
+            s2 += a0 * a0
+            s3 += a0 * a1
+            s4 += a1 * a1
+            s5 += t
+            s6 += t * t
+            s7 += a0 * t
+            s8 += a1 * t
+            pre[0, r, c + 1] = s0
+            pre[1, r, c + 1] = s1
+            pre[2, r, c + 1] = s2
+            pre[3, r, c + 1] = s3
+            pre[4, r, c + 1] = s4
+            pre[5, r, c + 1] = s5
+            pre[6, r, c + 1] = s6
+            pre[7, r, c + 1] = s7
+            pre[8, r, c + 1] = s8
+
+
+@numba.njit(**_JIT)
 def _row_norm(a, m, out):
     r_n, c_n = a.shape
     for r in range(r_n):
@@ -422,7 +509,7 @@ def _kalman_predict(x, P, dt, q_acc):
 
 
 @numba.njit(**_JIT)
-def _kalman_update(x, P, slot, m0, m1, j00, j01, j11):
+def _kalman_update(x, P, slot, m0, m1, j00, j01, j11, ks):
     """Update with a measurement (m0, m1) of position - clone[slot] whose information is
     [[j00, j01], [j01, j11]].
 
@@ -437,7 +524,9 @@ def _kalman_update(x, P, slot, m0, m1, j00, j01, j11):
     r01 = -j01 / det
     r11 = a / det
     # P H^T: column k is P[:, k] - P[:, slot + k]
-    PH = np.empty((_NS, 2))
+    PH = ks[:, 0:2]
+    K = ks[:, 2:4]
+    Pn = ks[:, 4:4 + _NS]
     for i in range(_NS):
         for k in range(2):
             PH[i, k] = P[i, k] - P[i, slot + k]
@@ -450,14 +539,12 @@ def _kalman_update(x, P, slot, m0, m1, j00, j01, j11):
     i11 = s00 / sd
     e0 = m0 - (x[0] - x[slot])
     e1 = m1 - (x[1] - x[slot + 1])
-    K = np.empty((_NS, 2))
     for i in range(_NS):
         K[i, 0] = PH[i, 0] * i00 + PH[i, 1] * i01
         K[i, 1] = PH[i, 0] * i01 + PH[i, 1] * i11
     for i in range(_NS):
         x[i] += K[i, 0] * e0 + K[i, 1] * e1
     # P <- P - K (H P) with H P = (P H^T)^T
-    Pn = np.empty((_NS, _NS))
     for i in range(_NS):
         for j in range(_NS):
             Pn[i, j] = P[i, j] - K[i, 0] * PH[j, 0] - K[i, 1] * PH[j, 1]
@@ -511,6 +598,14 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     bn = np.empty((r_n, c_n), dtype=np.float32)
     res = np.zeros(9)
     res2 = np.zeros(9)
+    scratch = np.zeros(3 * c_n + 16, dtype=np.float32)
+    pre = np.zeros((9, r_n, c_n + 1))
+    full = True
+    for r in range(r_n):
+        for c in range(c_n):
+            if m[r, c] != 1.0:
+                full = False
+    ks = np.zeros((_NS, _NS + 4))                # Kalman work array
     cres = np.zeros(3)
     x = np.zeros(_NS)
     P = np.zeros((_NS, _NS))
@@ -528,6 +623,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         t = chain[j]
         b = z[t]
         _gradients(b, g0, g1)
+        if full:
+            _template_prefix(b, g0, g1, pre)
         dt = tchain[j] - tchain[j - 1]
         _kalman_predict(x, P, dt, q_acc)
         placed = False
@@ -536,7 +633,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             s0 = x[0] - x[4]
             s1 = x[1] - x[5]
             if abs(s0) < r_n - 1 and abs(s1) < c_n // 2:
-                _gauss_newton(up_key, m, b, g0, g1, m, s0, s1, iters, lam, res)
+                _gauss_newton(up_key, m, b, g0, g1, m, s0, s1, iters, lam, res, scratch, full,
+                              pre)
                 if (res[8] > 0.0 and res[5] >= min_ncc
                         and abs(res[0] - s0) < 1.5 and abs(res[1] - s1) < 1.5):
                     placed = True
@@ -550,7 +648,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             _coarse(an, bn, max_along, max_across, pp0, pp1, have_v, cres)
             if cres[2] > 0.0:
                 _upsample_extend(a, lor, wr, loc, wc, up_prev)
-                _gauss_newton(up_prev, m, b, g0, g1, m, cres[0], cres[1], iters + 2, lam, res)
+                _gauss_newton(up_prev, m, b, g0, g1, m, cres[0], cres[1], iters + 2, lam, res,
+                              scratch, full, pre)
                 # The prediction failed, so something abrupt happened (a jump, a dropped
                 # frame): a match found by search must be about as good as the links so far,
                 # or it is a chance resemblance and the link is a gap.
@@ -584,16 +683,17 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
                     P[k, k + 2] = pv / max(dt, 1e-9)
                     P[k + 2, k] = pv / max(dt, 1e-9)
             else:
-                _kalman_update(x, P, 4, res[0], res[1], e00, e01, e11)
+                _kalman_update(x, P, 4, res[0], res[1], e00, e01, e11, ks)
                 if have_old:
                     s0 = x[0] - x[6]
                     s1 = x[1] - x[7]
                     if abs(s0) <= old_reach and abs(s1) < c_n // 2:
-                        _gauss_newton(up_old, m, b, g0, g1, m, s0, s1, iters, lam, res2)
+                        _gauss_newton(up_old, m, b, g0, g1, m, s0, s1, iters, lam, res2, scratch,
+                                      full, pre)
                         if (res2[8] > 0.0 and res2[5] >= min_ncc
                                 and abs(res2[0] - s0) < 0.5 and abs(res2[1] - s1) < 0.5):
                             f00, f01, f11 = _with_model_error(res2[2], res2[3], res2[4], s2m)
-                            _kalman_update(x, P, 6, res2[0], res2[1], f00, f01, f11)
+                            _kalman_update(x, P, 6, res2[0], res2[1], f00, f01, f11, ks)
             pos[j, 0] = x[0]
             pos[j, 1] = x[1]
             info[j, 0, 0] = e00
