@@ -74,10 +74,6 @@ class Refined:
             object.__setattr__(self, name, arr)
 
 
-def _chunk_frames(r_n, c_n, budget=200_000):
-    return max(1, budget // max(1, r_n * c_n))
-
-
 def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3),
                 margin_px=3.0):
     """Model of the finger on a fine grid, by normalised convolution of all observations.
@@ -153,29 +149,13 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     gy0, gy1, gy2 = kernels(sig[0], h[0])
     gx0, gx1, gx2 = kernels(sig[1], h[1])
 
-    def across(x, k):
-        return ndimage.correlate1d(x, k, axis=1, mode="constant")
-
-    def along(x, k):
-        return ndimage.correlate1d(x, k, axis=0, mode="constant")
-
-    a00, a10, a01, a20, a02, a11, b0, b1y, b1x = acc
     # Moments about each output node: the offset from splat node to output node is added in,
-    # (dy + oy)^a (dx + ox)^b expanded; the across pass is shared and terms with the same
-    # along kernel are summed before the along pass.
-    x0 = [across(v, gx0) for v in acc]
-    x1_a00, x1_a01, x1_a10, x1_b0 = (across(v, gx1) for v in (a00, a01, a10, b0))
-    x2_a00 = across(a00, gx2)
-    xa00, xa10, xa01, xa20, xa02, xa11, xb0, xb1y, xb1x = x0
-    s00 = along(xa00, gy0)
-    s10 = along(xa10, gy0) + along(xa00, gy1)
-    s01 = along(xa01 + x1_a00, gy0)
-    s20 = along(xa20, gy0) + 2.0 * along(xa10, gy1) + along(xa00, gy2)
-    s02 = along(xa02 + 2.0 * x1_a01 + x2_a00, gy0)
-    s11 = along(xa11 + x1_a10, gy0) + along(xa01 + x1_a00, gy1)
-    t0 = along(xb0, gy0)
-    t1y = along(xb1y, gy0) + along(xb0, gy1)
-    t1x = along(xb1x + x1_b0, gy0)
+    # (dy + oy)^a (dx + ox)^b expanded; one compiled pass across, one along (see
+    # _smooth_moments).
+    sm = np.empty_like(acc)
+    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, sm)
+    s00, s10, s01, s20, s02, s11, t0, t1y, t1x = sm
+    b0, a00 = acc[6], acc[0]
     c00 = s20 * s02 - s11 * s11
     c01 = s11 * s01 - s10 * s02
     c02 = s10 * s11 - s20 * s01
@@ -195,6 +175,86 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
             w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
             model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
     return model, s00, lo
+
+
+@numba.njit(cache=True, nogil=True)
+def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
+    """Separable Gaussian moments of the splatted sums (zero outside the grid).
+
+    ``acc`` holds the per-node sums (w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy,
+    w z dx); ``g*0, g*1, g*2`` are a Gaussian and its first and second offset moments across
+    (x) and along (y). Writes s00, s10, s01, s20, s02, s11, t0, t1y, t1x (moments about each
+    output node) into ``out`` (9, H, W): the same sums as scipy.ndimage.correlate1d with
+    mode "constant", grouped so that every input is read once per pass.
+    """
+    _, hh, ww = acc.shape
+    rx = gx0.shape[0] // 2
+    ry = gy0.shape[0] // 2
+    # across: the nine inputs of the along pass
+    p = np.zeros((9, hh, ww))
+    for i in range(hh):
+        for c in range(ww):
+            v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
+            x1a00 = x1a01 = x1a10 = x1b0 = x2a00 = 0.0
+            for j in range(max(-rx, -c), min(rx, ww - 1 - c) + 1):
+                cc = c + j
+                k0 = gx0[j + rx]
+                k1 = gx1[j + rx]
+                k2 = gx2[j + rx]
+                a00 = acc[0, i, cc]
+                a01 = acc[2, i, cc]
+                a10 = acc[1, i, cc]
+                b0 = acc[6, i, cc]
+                v0 += k0 * a00
+                v1 += k0 * a10
+                v2 += k0 * a01
+                v3 += k0 * acc[3, i, cc]
+                v4 += k0 * acc[4, i, cc]
+                v5 += k0 * acc[5, i, cc]
+                v6 += k0 * b0
+                v7 += k0 * acc[7, i, cc]
+                v8 += k0 * acc[8, i, cc]
+                x1a00 += k1 * a00
+                x1a01 += k1 * a01
+                x1a10 += k1 * a10
+                x1b0 += k1 * b0
+                x2a00 += k2 * a00
+            p[0, i, c] = v0                          # xa00
+            p[1, i, c] = v1                          # xa10
+            p[2, i, c] = v2 + x1a00                  # xa01 + x1_a00
+            p[3, i, c] = v3                          # xa20
+            p[4, i, c] = v4 + 2.0 * x1a01 + x2a00    # xa02 + 2 x1_a01 + x2_a00
+            p[5, i, c] = v5 + x1a10                  # xa11 + x1_a10
+            p[6, i, c] = v6                          # xb0
+            p[7, i, c] = v7                          # xb1y
+            p[8, i, c] = v8 + x1b0                   # xb1x + x1_b0
+    # along (rows are contiguous: the inner loop runs over columns)
+    for k in range(9):
+        for i in range(hh):
+            for c in range(ww):
+                out[k, i, c] = 0.0
+    for i in range(hh):
+        for j in range(-ry, ry + 1):
+            ii = i + j
+            if ii < 0 or ii >= hh:
+                continue
+            k0 = gy0[j + ry]
+            k1 = gy1[j + ry]
+            k2 = gy2[j + ry]
+            for c in range(ww):
+                q0 = p[0, ii, c]
+                q1 = p[1, ii, c]
+                q2 = p[2, ii, c]
+                q6 = p[6, ii, c]
+                out[0, i, c] += k0 * q0                              # s00
+                out[1, i, c] += k0 * q1 + k1 * q0                    # s10
+                out[2, i, c] += k0 * q2                              # s01
+                out[3, i, c] += k0 * p[3, ii, c] + 2.0 * k1 * q1 + k2 * q0   # s20
+                out[4, i, c] += k0 * p[4, ii, c]                     # s02
+                out[5, i, c] += k0 * p[5, ii, c] + k1 * q2           # s11
+                out[6, i, c] += k0 * q6                              # t0
+                out[7, i, c] += k0 * p[7, ii, c] + k1 * q6           # t1y
+                out[8, i, c] += k0 * p[8, ii, c]                     # t1x
 
 
 @numba.njit(cache=True, nogil=True)
@@ -243,29 +303,6 @@ def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
                         acc[8, n0, n1] += wx * v
 
 
-def _sample(stack, f0, f1):
-    """Bilinear samples of the channels of ``stack`` (H, W, K) at fractional nodes (f0, f1)."""
-    hh, ww, kk = stack.shape
-    i0 = np.clip(np.floor(f0).astype(np.int64), 0, hh - 2)
-    i1 = np.clip(np.floor(f1).astype(np.int64), 0, ww - 2)
-    a0 = np.clip(f0 - i0, 0.0, 1.0)
-    a1 = np.clip(f1 - i1, 0.0, 1.0)
-    k = (i0 * ww + i1).ravel()
-    w00 = ((1.0 - a0) * (1.0 - a1)).ravel()
-    w01 = ((1.0 - a0) * a1).ravel()
-    w10 = (a0 * (1.0 - a1)).ravel()
-    w11 = (a0 * a1).ravel()
-    out = np.empty(f0.shape + (kk,))
-    for c in range(kk):
-        ch = np.ascontiguousarray(stack[..., c]).ravel()
-        v = np.take(ch, k) * w00
-        v += np.take(ch, k + 1) * w01
-        v += np.take(ch, k + ww) * w10
-        v += np.take(ch, k + ww + 1) * w11
-        out[..., c] = v.reshape(f0.shape)
-    return out
-
-
 def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     """Gauss-Newton normal equations of every frame against the model.
 
@@ -281,48 +318,11 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     rss = np.zeros(t_n)
     nobs = np.zeros(t_n)
     ncc = np.zeros(t_n)
-    u0 = (np.arange(r_n) - (r_n - 1) / 2.0)[:, None] * np.ones((1, c_n))
-    u1 = np.ones((r_n, 1)) * (np.arange(c_n) - (c_n - 1) / 2.0)[None, :]
-    step = _chunk_frames(r_n, c_n)
-    for s0 in range(0, t_n, step):
-        sl = slice(s0, min(t_n, s0 + step))
-        n = sl.stop - sl.start
-        ww = np.asarray(w[sl], dtype=np.float64)
-        q0, q1 = _mosaic.plate_coordinates((n, r_n, c_n), positions[sl], angles_rad[sl])
-        g = _sample(stack, (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1])
-        m, gy, gx = g[..., 0], g[..., 1], g[..., 2]
-        zz = np.asarray(z[sl], dtype=np.float64)
-        r = zz - m
-        # Robust weights (Huber, k = 2 robust sigmas per frame), so plates the model does not
-        # explain (the pad edge, a fleck of moisture) do not pull the frame.
-        rf = r.reshape(n, -1)
-        wf = ww.reshape(n, -1)
-        # Per-frame median of |r| over the weighted plates (unweighted ones sorted last).
-        srt = np.sort(np.where(wf > 0, np.abs(rf), np.inf), axis=1)
-        cnt = (wf > 0).sum(1)
-        rows = np.arange(n)
-        med = np.where(cnt > 0, 0.5 * (srt[rows, np.maximum(cnt - 1, 0) // 2] + srt[rows, cnt // 2 - (cnt == 0)]),
-                       0.0)
-        med = np.where(np.isfinite(med), med, 0.0)
-        sig = 1.4826 * med + 1e-9
-        a = np.abs(rf) / (2.0 * sig[:, None])
-        wr = wf * np.where(a > 1.0, 1.0 / np.maximum(a, 1e-12), 1.0)
-        # Twist: an along offset growing with row x column, what a model whose rows were
-        # built at slowly drifting angles looks like to a frame (its across counterpart,
-        # growing with row^2, is small on a strip and would be confounded with the shift).
-        cols = [gy, gx, gy * u0, gx * u0, -gy * u0 * u1, m, np.ones_like(m)]
-        jac = np.stack([c.reshape(n, -1) for c in cols], axis=1)          # (n, 6, N)
-        jw = jac * wr[:, None, :]
-        hess[sl] = np.einsum("tpn,tqn->tpq", jw, jac)
-        grad[sl] = np.einsum("tpn,tn->tp", jw, rf)
-        rss[sl] = np.einsum("tn,tn->t", wr * rf, rf)
-        nobs[sl] = (wf > 0).sum(1)
-        zm = (zz.reshape(n, -1))
-        mm = m.reshape(n, -1)
-        sw = np.maximum(wf.sum(1), 1e-12)
-        za = zm - (wf * zm).sum(1, keepdims=True) / sw[:, None]
-        ma = mm - (wf * mm).sum(1, keepdims=True) / sw[:, None]
-        ncc[sl] = (wf * za * ma).sum(1) / np.sqrt(np.maximum((wf * za * za).sum(1) * (wf * ma * ma).sum(1), 1e-24))
+    th = np.asarray(angles_rad, dtype=np.float64)
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    _frame_normals(z, w, np.asarray(positions, dtype=np.float64), np.cos(th), np.sin(th), cf,
+                   np.ascontiguousarray(stack, dtype=np.float64), np.asarray(lo, np.float64),
+                   np.asarray(h, np.float64), hess, grad, rss, nobs, ncc)
     tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
     hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
     full_step = np.linalg.solve(hreg, grad[..., None])[..., 0]
@@ -347,6 +347,114 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     sh_var[bad] = np.inf
     tw_var[bad] = np.inf
     return full_step[:, :2], info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc
+
+
+@numba.njit(cache=True, nogil=True)
+def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, nobs, ncc):
+    """Per frame: the model (and its gradients) sampled bilinearly where each plate looked,
+    Huber weights (k = 2 robust sigmas of the frame's residuals), and the weighted normal
+    equations of the 7 parameters (shift along, across, stretch, shear, twist, gain, offset),
+    the weighted residual sum of squares, the count and the NCC with the model (in place)."""
+    t_n, r_n, c_n = z.shape
+    hh, ww_, _ = stack.shape
+    n_px = r_n * c_n
+    res = np.empty(n_px)
+    absr = np.empty(n_px)
+    wts = np.empty(n_px)
+    mv = np.empty(n_px)
+    gyv = np.empty(n_px)
+    gxv = np.empty(n_px)
+    zv = np.empty(n_px)
+    jac = np.empty(7)
+    for t in range(t_n):
+        ct = cos_t[t]
+        st = sin_t[t]
+        cnt = 0
+        for r in range(r_n):
+            u0 = r - cf[0]
+            for c in range(c_n):
+                k = r * c_n + c
+                u1 = c - cf[1]
+                f0 = (cf[0] + pos[t, 0] + ct * u0 - st * u1 - lo[0]) / h[0]
+                f1 = (cf[1] + pos[t, 1] + st * u0 + ct * u1 - lo[1]) / h[1]
+                i0 = min(max(int(np.floor(f0)), 0), hh - 2)
+                i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
+                a0 = min(max(f0 - i0, 0.0), 1.0)
+                a1 = min(max(f1 - i1, 0.0), 1.0)
+                w00 = (1.0 - a0) * (1.0 - a1)
+                w01 = (1.0 - a0) * a1
+                w10 = a0 * (1.0 - a1)
+                w11 = a0 * a1
+                mv[k] = (stack[i0, i1, 0] * w00 + stack[i0, i1 + 1, 0] * w01
+                         + stack[i0 + 1, i1, 0] * w10 + stack[i0 + 1, i1 + 1, 0] * w11)
+                gyv[k] = (stack[i0, i1, 1] * w00 + stack[i0, i1 + 1, 1] * w01
+                          + stack[i0 + 1, i1, 1] * w10 + stack[i0 + 1, i1 + 1, 1] * w11)
+                gxv[k] = (stack[i0, i1, 2] * w00 + stack[i0, i1 + 1, 2] * w01
+                          + stack[i0 + 1, i1, 2] * w10 + stack[i0 + 1, i1 + 1, 2] * w11)
+                zv[k] = float(z[t, r, c])
+                res[k] = zv[k] - mv[k]
+                wts[k] = float(w[t, r, c])
+                if wts[k] > 0.0:
+                    absr[cnt] = abs(res[k])
+                    cnt += 1
+        nobs[t] = cnt
+        med = np.median(absr[:cnt]) if cnt > 0 else 0.0
+        sig = 1.4826 * med + 1e-9
+        for i in range(7):
+            grad[t, i] = 0.0
+            for j in range(7):
+                hess[t, i, j] = 0.0
+        rs = 0.0
+        sw = szw = smw = 0.0
+        for k in range(n_px):
+            wk = wts[k]
+            if wk <= 0.0:
+                continue
+            sw += wk
+            szw += wk * zv[k]
+            smw += wk * mv[k]
+        for k in range(n_px):
+            wk = wts[k]
+            if wk <= 0.0:
+                continue
+            a = abs(res[k]) / (2.0 * sig)
+            wr = wk / a if a > 1.0 else wk
+            r = k // c_n
+            c = k - r * c_n
+            u0 = r - cf[0]
+            u1 = c - cf[1]
+            jac[0] = gyv[k]
+            jac[1] = gxv[k]
+            jac[2] = gyv[k] * u0
+            jac[3] = gxv[k] * u0
+            jac[4] = -gyv[k] * u0 * u1
+            jac[5] = mv[k]
+            jac[6] = 1.0
+            rk = res[k]
+            for i in range(7):
+                ji = jac[i] * wr
+                grad[t, i] += ji * rk
+                for j in range(i, 7):
+                    hess[t, i, j] += ji * jac[j]
+            rs += wr * rk * rk
+        for i in range(7):
+            for j in range(i):
+                hess[t, i, j] = hess[t, j, i]
+        rss[t] = rs
+        sw = max(sw, 1e-12)
+        zm = szw / sw
+        mm = smw / sw
+        szz = smm = szm = 0.0
+        for k in range(n_px):
+            wk = wts[k]
+            if wk <= 0.0:
+                continue
+            za = zv[k] - zm
+            ma = mv[k] - mm
+            szz += wk * za * za
+            smm += wk * ma * ma
+            szm += wk * za * ma
+        ncc[t] = szm / np.sqrt(max(szz * smm, 1e-24))
 
 
 def _phase_concentration(along, active, n_rows, phase_of=None):

@@ -236,3 +236,83 @@ def test_compiled_moment_splat_matches_the_formula():
                                    wk * v, wk * dy * v, wk * dx * v)):
                 np.add.at(ref[k], (i0 + di, i1 + dj), m)
     np.testing.assert_allclose(acc, ref, rtol=1e-9, atol=1e-12)
+
+
+def test_compiled_normal_equations_match_the_formula():
+    # The compiled per-frame normal equations of the model fit against the same sums in
+    # numpy: bilinear samples of the model and its gradients, Huber weights at two robust
+    # sigmas (1.4826 MAD, common practice), 7 x 7 normal equations, NCC.
+    from stripstitch import mosaic
+    from stripstitch.refine import _frame_normals
+    rng = np.random.default_rng(6)
+    t_n, r_n, c_n = 6, 5, 11
+    z = rng.standard_normal((t_n, r_n, c_n))
+    w = rng.uniform(0, 1, (t_n, r_n, c_n))
+    w[w < 0.2] = 0
+    pos = np.cumsum(rng.uniform(0.2, 0.8, (t_n, 2)), axis=0)
+    ang = rng.uniform(-0.02, 0.02, t_n)
+    stack = rng.standard_normal((60, 40, 3))
+    lo, h = np.array([-3.0, -4.0]), np.array([0.25, 0.5])
+    cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
+    hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
+    rss, nobs, ncc = np.zeros(t_n), np.zeros(t_n), np.zeros(t_n)
+    _frame_normals(z, w, pos, np.cos(ang), np.sin(ang), cf, stack, lo, h, hess, grad, rss, nobs, ncc)
+    q0, q1 = mosaic.plate_coordinates(z.shape, pos, ang)
+    f0, f1 = (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1]
+    i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
+    a0, a1 = f0 - i0, f1 - i1
+    samp = (stack[i0, i1] * ((1 - a0) * (1 - a1))[..., None] + stack[i0, i1 + 1] * ((1 - a0) * a1)[..., None]
+            + stack[i0 + 1, i1] * (a0 * (1 - a1))[..., None] + stack[i0 + 1, i1 + 1] * (a0 * a1)[..., None])
+    u0 = (np.arange(r_n) - cf[0])[:, None] * np.ones((1, c_n))
+    u1 = np.ones((r_n, 1)) * (np.arange(c_n) - cf[1])[None, :]
+    for t in range(t_n):
+        m, gy, gx = samp[t, ..., 0], samp[t, ..., 1], samp[t, ..., 2]
+        r = z[t] - m
+        sel = w[t] > 0
+        sig = 1.4826 * np.median(np.abs(r[sel])) + 1e-9
+        a = np.abs(r) / (2 * sig)
+        wr = w[t] * np.where(a > 1, 1 / np.maximum(a, 1e-12), 1.0)
+        jac = np.stack([gy, gx, gy * u0, gx * u0, -gy * u0 * u1, m, np.ones_like(m)]).reshape(7, -1)
+        np.testing.assert_allclose(hess[t], (jac * wr.ravel()) @ jac.T, rtol=1e-10, atol=1e-10)
+        np.testing.assert_allclose(grad[t], jac @ (wr * r).ravel(), rtol=1e-10, atol=1e-10)
+        np.testing.assert_allclose(rss[t], np.sum(wr * r * r), rtol=1e-10)
+        assert nobs[t] == sel.sum()
+        wt = w[t]
+        za, ma = z[t] - np.sum(wt * z[t]) / wt.sum(), m - np.sum(wt * m) / wt.sum()
+        np.testing.assert_allclose(ncc[t], np.sum(wt * za * ma) / np.sqrt(np.sum(wt * za ** 2) * np.sum(wt * ma ** 2)), rtol=1e-10)
+
+
+def test_compiled_smoothing_matches_scipy_correlate1d():
+    # Outside reference: scipy.ndimage.correlate1d (mode "constant") for every pass of the
+    # first-order normalised convolution of build_model.
+    from scipy import ndimage
+    from stripstitch.refine import _smooth_moments
+    rng = np.random.default_rng(7)
+    acc = rng.standard_normal((9, 37, 23))
+    def kern(n, sp):
+        off = np.arange(-n, n + 1.0)
+        g = np.exp(-0.5 * (off / (n / 3.0)) ** 2)
+        g /= g.sum()
+        return g, g * off * sp, g * (off * sp) ** 2
+    gy0, gy1, gy2 = kern(5, 0.25)
+    gx0, gx1, gx2 = kern(2, 0.5)
+    out = np.empty_like(acc)
+    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out)
+    def across(x, k):
+        return ndimage.correlate1d(x, k, axis=1, mode="constant")
+    def along(x, k):
+        return ndimage.correlate1d(x, k, axis=0, mode="constant")
+    a00, a10, a01, a20, a02, a11, b0, b1y, b1x = acc
+    xa00, xa10, xa01, xa20, xa02, xa11, xb0, xb1y, xb1x = (across(v, gx0) for v in acc)
+    x1_a00, x1_a01, x1_a10, x1_b0 = (across(v, gx1) for v in (a00, a01, a10, b0))
+    x2_a00 = across(a00, gx2)
+    expect = [along(xa00, gy0),
+              along(xa10, gy0) + along(xa00, gy1),
+              along(xa01 + x1_a00, gy0),
+              along(xa20, gy0) + 2.0 * along(xa10, gy1) + along(xa00, gy2),
+              along(xa02 + 2.0 * x1_a01 + x2_a00, gy0),
+              along(xa11 + x1_a10, gy0) + along(xa01 + x1_a00, gy1),
+              along(xb0, gy0),
+              along(xb1y, gy0) + along(xb0, gy1),
+              along(xb1x + x1_b0, gy0)]
+    np.testing.assert_allclose(out, np.stack(expect), rtol=1e-10, atol=1e-12)
