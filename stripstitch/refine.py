@@ -191,7 +191,7 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
     rx = gx0.shape[0] // 2
     ry = gy0.shape[0] // 2
     # across: the nine inputs of the along pass
-    p = np.zeros((9, hh, ww))
+    p = np.empty((9, hh, ww))
     for i in range(hh):
         for c in range(ww):
             v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
@@ -228,16 +228,13 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
             p[6, i, c] = v6                          # xb0
             p[7, i, c] = v7                          # xb1y
             p[8, i, c] = v8 + x1b0                   # xb1x + x1_b0
-    # along (rows are contiguous: the inner loop runs over columns)
-    for k in range(9):
-        for i in range(hh):
-            for c in range(ww):
-                out[k, i, c] = 0.0
+    # along (rows are contiguous: the inner loop runs over columns); each output row is
+    # accumulated in a small buffer that stays in cache and written once
+    buf = np.empty((9, ww))
     for i in range(hh):
-        for j in range(-ry, ry + 1):
+        buf[:, :] = 0.0
+        for j in range(max(-ry, -i), min(ry, hh - 1 - i) + 1):
             ii = i + j
-            if ii < 0 or ii >= hh:
-                continue
             k0 = gy0[j + ry]
             k1 = gy1[j + ry]
             k2 = gy2[j + ry]
@@ -246,15 +243,16 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
                 q1 = p[1, ii, c]
                 q2 = p[2, ii, c]
                 q6 = p[6, ii, c]
-                out[0, i, c] += k0 * q0                              # s00
-                out[1, i, c] += k0 * q1 + k1 * q0                    # s10
-                out[2, i, c] += k0 * q2                              # s01
-                out[3, i, c] += k0 * p[3, ii, c] + 2.0 * k1 * q1 + k2 * q0   # s20
-                out[4, i, c] += k0 * p[4, ii, c]                     # s02
-                out[5, i, c] += k0 * p[5, ii, c] + k1 * q2           # s11
-                out[6, i, c] += k0 * q6                              # t0
-                out[7, i, c] += k0 * p[7, ii, c] + k1 * q6           # t1y
-                out[8, i, c] += k0 * p[8, ii, c]                     # t1x
+                buf[0, c] += k0 * q0                              # s00
+                buf[1, c] += k0 * q1 + k1 * q0                    # s10
+                buf[2, c] += k0 * q2                              # s01
+                buf[3, c] += k0 * p[3, ii, c] + 2.0 * k1 * q1 + k2 * q0   # s20
+                buf[4, c] += k0 * p[4, ii, c]                     # s02
+                buf[5, c] += k0 * p[5, ii, c] + k1 * q2           # s11
+                buf[6, c] += k0 * q6                              # t0
+                buf[7, c] += k0 * p[7, ii, c] + k1 * q6           # t1y
+                buf[8, c] += k0 * p[8, ii, c]                     # t1x
+        out[:, i, :] = buf
 
 
 @numba.njit(cache=True, nogil=True)
@@ -365,7 +363,6 @@ def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, n
     gyv = np.empty(n_px)
     gxv = np.empty(n_px)
     zv = np.empty(n_px)
-    jac = np.empty(7)
     for t in range(t_n):
         ct = cos_t[t]
         st = sin_t[t]
@@ -413,30 +410,92 @@ def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, n
             sw += wk
             szw += wk * zv[k]
             smw += wk * mv[k]
-        for k in range(n_px):
-            wk = wts[k]
-            if wk <= 0.0:
-                continue
-            a = abs(res[k]) / (2.0 * sig)
-            wr = wk / a if a > 1.0 else wk
-            r = k // c_n
-            c = k - r * c_n
+        # The Jacobian is (gy, gx, gy u0, gx u0, -gy u0 u1, m, 1): per row u0 is constant,
+        # so the sums are taken over (gy, gx, m, 1) times powers of u1 within a row and
+        # combined with u0 per row (fewer products per plate than the full 7 x 7).
+        inv2s = 1.0 / (2.0 * sig)
+        for r in range(r_n):
             u0 = r - cf[0]
-            u1 = c - cf[1]
-            jac[0] = gyv[k]
-            jac[1] = gxv[k]
-            jac[2] = gyv[k] * u0
-            jac[3] = gxv[k] * u0
-            jac[4] = -gyv[k] * u0 * u1
-            jac[5] = mv[k]
-            jac[6] = 1.0
-            rk = res[k]
-            for i in range(7):
-                ji = jac[i] * wr
-                grad[t, i] += ji * rk
-                for j in range(i, 7):
-                    hess[t, i, j] += ji * jac[j]
-            rs += wr * rk * rk
+            # row sums: yy, yx, xx, ym, xm, mm, y1, x1, m1, w; with u1: yyu, yxu, ymu, yu1,
+            # yyuu, and the gradient sums
+            syy = syx = sxx = sym = sxm = smm = sy = sx = sm_ = sw1 = 0.0
+            syyu = syxu = symu = syu = syyuu = 0.0
+            gy_r = gx_r = gm_r = g1_r = gyu_r = 0.0
+            rs_r = 0.0
+            for c in range(c_n):
+                k = r * c_n + c
+                wk = wts[k]
+                if wk <= 0.0:
+                    continue
+                rk = res[k]
+                a = abs(rk) * inv2s
+                wr = wk / a if a > 1.0 else wk
+                u1 = c - cf[1]
+                gyk = gyv[k]
+                gxk = gxv[k]
+                mk = mv[k]
+                wgy = wr * gyk
+                wgx = wr * gxk
+                wm = wr * mk
+                syy += wgy * gyk
+                syx += wgy * gxk
+                sxx += wgx * gxk
+                sym += wgy * mk
+                sxm += wgx * mk
+                smm += wm * mk
+                sy += wgy
+                sx += wgx
+                sm_ += wm
+                sw1 += wr
+                syyu += wgy * gyk * u1
+                syxu += wgy * gxk * u1
+                symu += wgy * mk * u1
+                syu += wgy * u1
+                syyuu += wgy * gyk * u1 * u1
+                gy_r += wgy * rk
+                gx_r += wgx * rk
+                gm_r += wm * rk
+                g1_r += wr * rk
+                gyu_r += wgy * u1 * rk
+                rs_r += wr * rk * rk
+            rs += rs_r
+            # parameters: 0 gy, 1 gx, 2 gy u0, 3 gx u0, 4 -gy u0 u1, 5 m, 6 1
+            H = hess[t]
+            H[0, 0] += syy
+            H[0, 1] += syx
+            H[0, 2] += u0 * syy
+            H[0, 3] += u0 * syx
+            H[0, 4] -= u0 * syyu
+            H[0, 5] += sym
+            H[0, 6] += sy
+            H[1, 1] += sxx
+            H[1, 2] += u0 * syx
+            H[1, 3] += u0 * sxx
+            H[1, 4] -= u0 * syxu
+            H[1, 5] += sxm
+            H[1, 6] += sx
+            H[2, 2] += u0 * u0 * syy
+            H[2, 3] += u0 * u0 * syx
+            H[2, 4] -= u0 * u0 * syyu
+            H[2, 5] += u0 * sym
+            H[2, 6] += u0 * sy
+            H[3, 3] += u0 * u0 * sxx
+            H[3, 4] -= u0 * u0 * syxu
+            H[3, 5] += u0 * sxm
+            H[3, 6] += u0 * sx
+            H[4, 4] += u0 * u0 * syyuu
+            H[4, 5] -= u0 * symu
+            H[4, 6] -= u0 * syu
+            H[5, 5] += smm
+            H[5, 6] += sm_
+            H[6, 6] += sw1
+            grad[t, 0] += gy_r
+            grad[t, 1] += gx_r
+            grad[t, 2] += u0 * gy_r
+            grad[t, 3] += u0 * gx_r
+            grad[t, 4] -= u0 * gyu_r
+            grad[t, 5] += gm_r
+            grad[t, 6] += g1_r
         for i in range(7):
             for j in range(i):
                 hess[t, i, j] = hess[t, j, i]
