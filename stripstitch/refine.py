@@ -154,20 +154,14 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     # _smooth_moments).
     sm = np.empty_like(acc)
     _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, sm)
-    s00, s10, s01, s20, s02, s11, t0, t1y, t1x = sm
+    s00 = sm[0]
     b0, a00 = acc[6], acc[0]
-    c00 = s20 * s02 - s11 * s11
-    c01 = s11 * s01 - s10 * s02
-    c02 = s10 * s11 - s20 * s01
-    det = s00 * c00 + s10 * c01 + s01 * c02
     # Local linear where the samples around a node determine both slopes, local mean
-    # elsewhere; nodes with little weight take a wider local mean (no holes).
+    # elsewhere (_local_linear); nodes with little weight take a wider local mean (no holes).
+    local = _local_linear(sm)
     pos_w = s00[s00 > 0]
     full = (s00 >= 0.05 * float(np.percentile(pos_w, 90))) & (s00 > 1e-9) if pos_w.size else s00 > 0
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        lin = det > 1e-6 * s00 * np.maximum(s20 * s02, 1e-30)
-        local = np.where(lin, (c00 * t0 + c01 * t1y + c02 * t1x) / np.where(lin, det, 1.0),
-                         t0 / np.where(s00 > 0, s00, 1.0))
         model = np.where(full, local, 0.0)
         if not full.all():
             wide = 2.0 * sig + 0.5
@@ -253,6 +247,33 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
                 buf[7, c] += k0 * p[7, ii, c] + k1 * q6           # t1y
                 buf[8, c] += k0 * p[8, ii, c]                     # t1x
         out[:, i, :] = buf
+
+
+@numba.njit(cache=True, nogil=True)
+def _local_linear(sm):
+    """Value at each node of the weighted local plane fit (3 x 3 normal equations by
+    cofactors), or the local mean where the plane is not determined (or 0 without weight)."""
+    _, hh, ww = sm.shape
+    out = np.empty((hh, ww))
+    for i in range(hh):
+        for c in range(ww):
+            s00 = sm[0, i, c]
+            s10 = sm[1, i, c]
+            s01 = sm[2, i, c]
+            s20 = sm[3, i, c]
+            s02 = sm[4, i, c]
+            s11 = sm[5, i, c]
+            c00 = s20 * s02 - s11 * s11
+            c01 = s11 * s01 - s10 * s02
+            c02 = s10 * s11 - s20 * s01
+            det = s00 * c00 + s10 * c01 + s01 * c02
+            if det > 1e-6 * s00 * max(s20 * s02, 1e-30):
+                out[i, c] = (c00 * sm[6, i, c] + c01 * sm[7, i, c] + c02 * sm[8, i, c]) / det
+            elif s00 > 0.0:
+                out[i, c] = sm[6, i, c] / s00
+            else:
+                out[i, c] = sm[6, i, c]
+    return out
 
 
 @numba.njit(cache=True, nogil=True)
