@@ -165,8 +165,8 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
         model = np.where(full, local, 0.0)
         if not full.all():
             wide = 2.0 * sig + 0.5
-            s3 = ndimage.gaussian_filter(b0, wide, mode="constant")
-            w3 = ndimage.gaussian_filter(a00, wide, mode="constant")
+            s3 = ndimage.gaussian_filter(b0, wide, mode="constant", truncate=3.0)
+            w3 = ndimage.gaussian_filter(a00, wide, mode="constant", truncate=3.0)
             model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
     return model, s00, lo
 
