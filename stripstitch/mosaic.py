@@ -173,6 +173,14 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
     return Mosaic(image=img, weight=wacc, origin_px=origin, pitch_px=pitch)
 
 
+@numba.njit(cache=True, inline="always")
+def plate_point(p0, p1, ct, st, cf0, cf1, u0, u1):
+    """Frame-0 coordinates of the plate at offset (u0, u1) from the centre (cf0, cf1) of a
+    frame at (p0, p1) turned by an angle of cosine ct and sine st: the compiled counterpart
+    of :func:`plate_coordinates` for one plate."""
+    return cf0 + p0 + ct * u0 - st * u1, cf1 + p1 + st * u0 + ct * u1
+
+
 @numba.njit(cache=True, nogil=True)
 def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
     """Bilinear splat of every observation with weight > 0 into (acc, wacc), in place."""
@@ -214,9 +222,9 @@ def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
                 wv = float(w[t, r, c])
                 if wv <= 0.0:
                     continue
-                u1 = c - cf[1]
-                f0 = (cf[0] + pos[t, 0] + ct * u0 - st * u1) / pitch[0] - lo0
-                f1 = (cf[1] + pos[t, 1] + st * u0 + ct * u1) / pitch[1] - lo1
+                q0, q1 = plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0, c - cf[1])
+                f0 = q0 / pitch[0] - lo0
+                f1 = q1 / pitch[1] - lo1
                 i0 = int(np.floor(f0))
                 i1 = int(np.floor(f1))
                 a0 = f0 - i0

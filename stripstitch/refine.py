@@ -292,9 +292,10 @@ def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
                 wv = float(w[t, r, c])
                 if wv <= 0.0:
                     continue
-                u1 = c - cf[1]
-                f0 = (cf[0] + pos[t, 0] + ct * u0 - st * u1 - lo[0]) / h[0]
-                f1 = (cf[1] + pos[t, 1] + st * u0 + ct * u1 - lo[1]) / h[1]
+                q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
+                                             c - cf[1])
+                f0 = (q0 - lo[0]) / h[0]
+                f1 = (q1 - lo[1]) / h[1]
                 i0 = int(np.floor(f0))
                 i1 = int(np.floor(f1))
                 a0 = f0 - i0
@@ -392,9 +393,10 @@ def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, n
             u0 = r - cf[0]
             for c in range(c_n):
                 k = r * c_n + c
-                u1 = c - cf[1]
-                f0 = (cf[0] + pos[t, 0] + ct * u0 - st * u1 - lo[0]) / h[0]
-                f1 = (cf[1] + pos[t, 1] + st * u0 + ct * u1 - lo[1]) / h[1]
+                q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
+                                             c - cf[1])
+                f0 = (q0 - lo[0]) / h[0]
+                f1 = (q1 - lo[1]) / h[1]
                 i0 = min(max(int(np.floor(f0)), 0), hh - 2)
                 i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
                 a0 = min(max(f0 - i0, 0.0), 1.0)
