@@ -11,6 +11,7 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
+from ._jit import JIT
 from ._validate import check_array, check_frames, check_positive
 
 __all__ = ["Mosaic", "fuse"]
@@ -181,7 +182,7 @@ def plate_point(p0, p1, ct, st, cf0, cf1, u0, u1):
     return cf0 + p0 + ct * u0 - st * u1, cf1 + p1 + st * u0 + ct * u1
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
     """Bilinear splat of every observation with weight > 0 into (acc, wacc), in place."""
     t_n, r_n, c_n = vals.shape

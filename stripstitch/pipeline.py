@@ -14,6 +14,7 @@ from . import register as _reg
 from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
+from ._jit import JIT
 from ._types import Reconstruction, ReconstructionError
 from ._validate import check_array, check_choice, check_frames, check_int, check_positive
 
@@ -329,7 +330,7 @@ def _strong_frames(prep, chain, noise):
     return sig2 >= 0.25 * float(np.median(sig2))
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _texture_about(z, frames, static, ok):
     """Standard deviation over the good plates of z[k] - static, for each k in ``frames``."""
     r_n, c_n = static.shape

@@ -31,6 +31,7 @@ from scipy.sparse import linalg as splinalg
 
 from . import mosaic as _mosaic
 from . import trajectory as _traj
+from ._jit import JIT
 from ._validate import check_array, check_frames, check_int
 
 __all__ = ["Refined", "build_model", "refine_positions"]
@@ -171,7 +172,7 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     return model, s00, lo
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
     """Separable Gaussian moments of the splatted sums (zero outside the grid).
 
@@ -249,7 +250,7 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
         out[:, i, :] = buf
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _local_linear(sm):
     """Value at each node of the weighted local plane fit (3 x 3 normal equations by
     cofactors), or the local mean where the plane is not determined (or 0 without weight)."""
@@ -276,7 +277,7 @@ def _local_linear(sm):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
     """Per node the moments of a local linear fit, from every observation splatted onto its
     four nearest nodes with bilinear weights (in place into acc, shape (9, H, W)): sums of
@@ -369,7 +370,7 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     return full_step[:, :2], info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, nobs, ncc):
     """Per frame: the model (and its gradients) sampled bilinearly where each plate looked,
     Huber weights (k = 2 robust sigmas of the frame's residuals), and the weighted normal

@@ -17,6 +17,8 @@ import numba
 import numpy as np
 from scipy import ndimage
 
+from ._jit import JIT
+
 __all__ = ["Prepared", "PairEstimates", "prepare", "coarse_shifts", "refine_shifts"]
 
 
@@ -167,7 +169,7 @@ def prepare(frames, *, frame_weights=None):
                     texture=texture, noise_sigma=noise_sigma)
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _frame_stats(x):
     """Per frame: RMS difference of neighbouring plates (both axes, summed in quadrature) and
     RMS change from the previous frame (T - 1 values)."""
@@ -198,7 +200,7 @@ def _frame_stats(x):
     return tex, chg
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _plate_stats(x, wn, blank, pairs_used):
     """Per plate: weighted mean and spread over time (weights wn, summing to 1), mean over the
     blank frames, and temporal noise sqrt(mean(diff^2) / 2) over the successive pairs used."""
@@ -241,7 +243,7 @@ def _plate_stats(x, wn, blank, pairs_used):
     return mean, spread, bmean, pn
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(**JIT)
 def _normalise(x, offset, scale, plate_ok):
     """z = (x - offset) / scale as float32 (0 on bad plates) and each frame's RMS over the
     good plates."""

@@ -42,11 +42,11 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
+from ._jit import JIT
 from ._validate import check_array, check_frames, check_int, check_positive
 
 __all__ = ["TrackResult", "track"]
 
-_JIT = dict(cache=True, nogil=True, fastmath=True, error_model="numpy")
 
 
 @dataclass(frozen=True, eq=False)
@@ -89,7 +89,7 @@ class TrackResult:
     start: int
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _keys_w(f, w):
     f = np.float32(f)
     f2 = f * f
@@ -100,7 +100,7 @@ def _keys_w(f, w):
     w[3] = 0.5 * f3 - 0.5 * f2
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _extend(a, out):
     """Two samples of Keys' boundary extension (f(-1) = 3 f(0) - 3 f(1) + f(2)) per side."""
     r_n, c_n = a.shape
@@ -129,7 +129,7 @@ def _extend(a, out):
         out[r, c_n + 3] = 2.0 * hi1 - tmp[r, c_n - 1]
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _gradients(b, g0, g1):
     """Central differences; at the first and last row/column the nearest interior difference
     (a gradient through the residual's own sample would bias the shift towards zero)."""
@@ -153,7 +153,7 @@ def _gradients(b, g0, g1):
                 g1[r, c] = 0.5 * (b[r, c + 1] - b[r, c - 1])
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _upsample_extend(a, lor, wr, loc, wc, out):
     """Twice-denser grid (Lagrange mid-points, up to 6 taps) with Keys' boundary extension:
     interpolating it by cubic convolution has about eight times less phase error at ridge
@@ -203,7 +203,7 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
         out[r, nc + 3] = 2.0 * hi1 - out[r, nc + 1]
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, full, pre):
     """Shift (d0, d1) with b(u) ~ a(u + d) + offset, from the start (d0, d1).
 
@@ -385,7 +385,7 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
     res[8] = ok
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _template_prefix(b, g0, g1, pre):
     """Per-row prefix sums over columns of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b."""
     r_n, c_n = b.shape
@@ -417,7 +417,7 @@ def _template_prefix(b, g0, g1, pre):
             pre[8, r, c + 1] = s8
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _row_norm(a, m, out):
     r_n, c_n = a.shape
     for r in range(r_n):
@@ -437,7 +437,7 @@ def _row_norm(a, m, out):
             out[r, c] = out[r, c] / max(sd, 1e-6)
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _coarse(an, bn, max_along, max_across, p0, p1, use_prior, res):
     """Integer shift of bn against an by normalised cross-correlation over every candidate,
     scored by a lower confidence bound (NCC - 2 / sqrt(n)); a candidate within 1.5 px of
@@ -488,7 +488,7 @@ def _coarse(an, bn, max_along, max_across, p0, p1, use_prior, res):
 _NS = 8
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _kalman_predict(x, P, dt, q_acc):
     """Constant-velocity prediction over dt frames with white acceleration (px/frame^2)."""
     for k in range(2):
@@ -508,7 +508,7 @@ def _kalman_predict(x, P, dt, q_acc):
         P[k + 2, k + 2] += dt * dt * a2
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _kalman_update(x, P, slot, m0, m1, j00, j01, j11, ks):
     """Update with a measurement (m0, m1) of position - clone[slot] whose information is
     [[j00, j01], [j01, j11]].
@@ -553,7 +553,7 @@ def _kalman_update(x, P, slot, m0, m1, j00, j01, j11, ks):
             P[i, j] = 0.5 * (Pn[i, j] + Pn[j, i])
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _kalman_copy(x, P, src, dst):
     """State components src, src + 1 copied into dst, dst + 1 (a clone: fully correlated)."""
     for k in range(2):
@@ -566,7 +566,7 @@ def _kalman_copy(x, P, src, dst):
             P[dst + k, j] = P[src + k, j]
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _with_model_error(j00, j01, j11, s2m):
     """Noise-only information plus a model-error allowance (aliasing, interpolation):
     J_eff = (J^-1 + s^2 I)^-1 = J - J (J + I / s^2)^-1 J."""
@@ -584,7 +584,7 @@ def _with_model_error(j00, j01, j11, s2m):
             j11 - (t10 * j01 + t11 * j11))
 
 
-@numba.njit(**_JIT)
+@numba.njit(**JIT)
 def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, iters, lam,
            min_ncc, q_acc, model_px, pos, info, ref, ncc, sig, link_ok, pvar):
     n_ch = chain.shape[0]
