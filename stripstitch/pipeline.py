@@ -418,9 +418,11 @@ def _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n):
     """Across a link with no overlap (too fast, no dropped frame to explain it) the frames
     moved by at least the strip's height: the motion alone would place them too close and
     overlay rows that were never seen together. Push what follows out to R rows (in place)."""
+    if not np.any(link_gap):
+        return
     direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
-    for (i, j), gap in zip(cpairs, link_gap):
-        if not gap or np.sum(dt_frames[i:j] - 1.0) >= 0.5:
+    for i, j in cpairs[np.asarray(link_gap, dtype=bool)]:
+        if np.sum(dt_frames[i:j] - 1.0) >= 0.5:
             continue
         step = direction * (positions[j, 0] - positions[i, 0])
         if step < r_n:
@@ -429,9 +431,8 @@ def _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n):
 
 def _failed_links(t_n, cpairs, link_gap):
     link_failed = np.zeros(t_n - 1, dtype=bool)
-    for (i, j), gap in zip(cpairs, link_gap):
-        if gap:
-            link_failed[i:j] = True
+    for i, j in cpairs[np.asarray(link_gap, dtype=bool)]:
+        link_failed[i:j] = True
     return link_failed
 
 
