@@ -296,10 +296,13 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         mw = (prep.contact & (confidence > 0.05)).astype(np.float32)[:, None, None] \
             * prep.plate_ok[None].astype(np.float32)
         if (mw > 0).any():
-            ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
-                                           dt=dt_frames, sigma_acc_px=motion_prior_px,
-                                           cut=link_failed, iterations=n_model,
-                                           rotation=rotation)
+            def refine(iterations, **kw):
+                return _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
+                                                dt=dt_frames, sigma_acc_px=motion_prior_px,
+                                                cut=link_failed, iterations=iterations,
+                                                rotation=rotation, **kw)
+
+            ref = refine(n_model)
             positions = ref.positions.copy()
             if rotation:
                 angles_deg = np.degrees(ref.angles_rad)
@@ -311,10 +314,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # gained little more. Swipes that do not turn are not touched.
             if (model_passes is None and placed is not None and rotation
                     and np.ptp(angles_deg[prep.contact]) >= 1.0):
-                ref = _refine.refine_positions(prep_used.z, mw, positions, np.radians(angles_deg),
-                                               dt=dt_frames, sigma_acc_px=motion_prior_px,
-                                               cut=link_failed, iterations=2,
-                                               rotation=rotation, min_turn_deg=0.0)
+                ref = refine(2, min_turn_deg=0.0)
                 positions = ref.positions.copy()
                 angles_deg = np.degrees(ref.angles_rad)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,

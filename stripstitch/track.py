@@ -101,35 +101,6 @@ def _keys_w(f, w):
 
 
 @numba.njit(**JIT)
-def _extend(a, out):
-    """Two samples of Keys' boundary extension (f(-1) = 3 f(0) - 3 f(1) + f(2)) per side."""
-    r_n, c_n = a.shape
-    tmp = np.empty((r_n + 4, c_n), dtype=np.float32)
-    for c in range(c_n):
-        for r in range(r_n):
-            tmp[r + 2, c] = a[r, c]
-        if r_n >= 3:
-            lo1 = 3.0 * a[0, c] - 3.0 * a[1, c] + a[2, c]
-            hi1 = 3.0 * a[r_n - 1, c] - 3.0 * a[r_n - 2, c] + a[r_n - 3, c]
-        else:
-            lo1 = 2.0 * a[0, c] - a[r_n - 1, c]
-            hi1 = 2.0 * a[r_n - 1, c] - a[0, c]
-        tmp[1, c] = lo1
-        tmp[0, c] = 2.0 * lo1 - a[0, c]
-        tmp[r_n + 2, c] = hi1
-        tmp[r_n + 3, c] = 2.0 * hi1 - a[r_n - 1, c]
-    for r in range(r_n + 4):
-        for c in range(c_n):
-            out[r, c + 2] = tmp[r, c]
-        lo1 = 3.0 * tmp[r, 0] - 3.0 * tmp[r, 1] + tmp[r, 2]
-        hi1 = 3.0 * tmp[r, c_n - 1] - 3.0 * tmp[r, c_n - 2] + tmp[r, c_n - 3]
-        out[r, 1] = lo1
-        out[r, 0] = 2.0 * lo1 - tmp[r, 0]
-        out[r, c_n + 2] = hi1
-        out[r, c_n + 3] = 2.0 * hi1 - tmp[r, c_n - 1]
-
-
-@numba.njit(**JIT)
 def _gradients(b, g0, g1):
     """Central differences; at the first and last row/column the nearest interior difference
     (a gradient through the residual's own sample would bias the shift towards zero)."""
