@@ -123,170 +123,264 @@ def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smoot
     w = np.asarray(weights)                   # any real dtype; chunks are taken in double
     if w.ndim == 1:
         w = np.broadcast_to(w[:, None, None], z.shape)
+    positions = np.asarray(positions, dtype=np.float64)
+    angles_rad = np.asarray(angles_rad, dtype=np.float64)
     # Bounds from the frame corners (a rotated rectangle's extremes are its corners).
     k0, k1 = _mosaic.plate_coordinates(z.shape, positions, angles_rad, rows=[0, r_n - 1],
                                        cols=[0, c_n - 1])
     lo = np.array([k0.min(), k1.min()]) - margin_px
     hi = np.array([k0.max(), k1.max()]) + margin_px
-    shape = tuple((np.ceil((hi - lo) / h)).astype(np.int64) + 2)
+    shape = tuple(int(v) for v in np.ceil((hi - lo) / h).astype(np.int64) + 2)
+    model, s00 = _model_window(z, w, np.arange(t_n), positions, angles_rad, h, smooth_px, lo,
+                               shape, _Workspace())
+    return model.copy(), s00.copy(), lo
+
+
+class _Workspace:
+    """Grow-only scratch buffers, reused by the tiles and passes of one refinement: fresh
+    swipe-sized arrays cost page faults (first touch) that took as long as the arithmetic."""
+
+    def __init__(self):
+        self._bufs = {}
+
+    def get(self, name, shape):
+        n = int(np.prod(shape))
+        buf = self._bufs.get(name)
+        if buf is None or buf.size < n:
+            buf = self._bufs[name] = np.empty(max(n, 1))
+        return buf[:n].reshape(shape)
+
+
+def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work):
+    """Model (and smoothed weight) on the grid of ``shape`` nodes from ``lo``, from the
+    observations of frames ``src`` that fall on it (see :func:`build_model`). The arrays
+    returned are views into ``work``."""
+    r_n, c_n = z.shape[1:]
+    acc = work.get("acc", tuple(shape) + (9,))
+    acc[...] = 0.0
     # Moments per node for a local linear fit: sums of w, w dy, w dx, w dy^2, w dx^2,
     # w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset (px) of the observation from
     # the node it is splatted to.
-    acc = np.zeros((9,) + shape)
     cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    th = np.asarray(angles_rad, dtype=np.float64)
-    _splat_moments(z, w, np.asarray(positions, dtype=np.float64), np.cos(th), np.sin(th), cf,
-                   lo, h, acc)
+    _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
+                   np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc)
     sig = np.asarray(smooth_px, dtype=np.float64) / h
 
     def kernels(sigma, spacing):
-        radius = int(4.0 * sigma + 0.5)
-        off = np.arange(-radius, radius + 1, dtype=np.float64)
-        g = np.exp(-0.5 * (off / max(sigma, 1e-9)) ** 2)
-        g /= g.sum()
-        d = off * spacing
+        g = _gauss_kernel(sigma, int(4.0 * sigma + 0.5))
+        d = (np.arange(g.size) - g.size // 2) * spacing
         return g, g * d, g * d * d
 
     gy0, gy1, gy2 = kernels(sig[0], h[0])
     gx0, gx1, gx2 = kernels(sig[1], h[1])
-
     # Moments about each output node: the offset from splat node to output node is added in,
-    # (dy + oy)^a (dx + ox)^b expanded; one compiled pass across, one along (see
-    # _smooth_moments).
-    sm = np.empty_like(acc)
-    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, sm)
-    s00 = sm[0]
-    b0, a00 = acc[6], acc[0]
-    # Local linear where the samples around a node determine both slopes, local mean
-    # elsewhere (_local_linear); nodes with little weight take a wider local mean (no holes).
-    local = _local_linear(sm)
+    # (dy + oy)^a (dx + ox)^b expanded; one compiled pass across, one along, and the local
+    # linear fit where the samples around a node determine both slopes, local mean elsewhere
+    # (_smooth_moments); nodes with little weight take a wider local mean below (no holes).
+    model = work.get("model", shape)
+    s00 = work.get("s00", shape)
+    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, np.empty((9, 0, 0)))
     pos_w = s00[s00 > 0]
     full = (s00 >= 0.05 * float(np.percentile(pos_w, 90))) & (s00 > 1e-9) if pos_w.size else s00 > 0
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        model = np.where(full, local, 0.0)
-        if not full.all():
-            wide = 2.0 * sig + 0.5
-            s3 = ndimage.gaussian_filter(b0, wide, mode="constant", truncate=3.0)
-            w3 = ndimage.gaussian_filter(a00, wide, mode="constant", truncate=3.0)
-            model = np.where(full, model, np.where(w3 > 1e-9, s3 / np.where(w3 > 0, w3, 1.0), 0.0))
-    return model, s00, lo
+    if not full.all():
+        # The wide local mean only fills holes and borders: single precision (OpenCV's
+        # separable filter, zero outside like ndimage mode "constant", truncated at 3 sigma).
+        import cv2
+        wide = 2.0 * sig + 0.5
+        ky, kx = (_gauss_kernel(s_, int(3.0 * s_ + 0.5)).astype(np.float32) for s_ in wide)
+        s3, w3 = (cv2.sepFilter2D(acc[..., k].astype(np.float32), cv2.CV_32F, kx, ky,
+                                  borderType=cv2.BORDER_CONSTANT) for k in (6, 0))
+        hole = ~full
+        fill = np.zeros(int(hole.sum()))
+        wv = w3[hole]
+        ok = wv > 1e-9
+        fill[ok] = s3[hole][ok] / wv[ok]
+        model[hole] = fill
+    return model, s00
+
+
+def _gauss_kernel(sigma, radius):
+    off = np.arange(-radius, radius + 1, dtype=np.float64)
+    g = np.exp(-0.5 * (off / max(sigma, 1e-9)) ** 2)
+    return g / g.sum()
 
 
 @numba.njit(**JIT)
-def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out):
-    """Separable Gaussian moments of the splatted sums (zero outside the grid).
+def _plane_value(s00, s10, s01, s20, s02, s11, t0, t1y, t1x):
+    """Value at the node of the weighted local plane fit (3 x 3 normal equations by
+    cofactors), or the local mean where the plane is not determined (or 0 without weight)."""
+    c00 = s20 * s02 - s11 * s11
+    c01 = s11 * s01 - s10 * s02
+    c02 = s10 * s11 - s20 * s01
+    det = s00 * c00 + s10 * c01 + s01 * c02
+    if det > 1e-6 * s00 * max(s20 * s02, 1e-30):
+        return (c00 * t0 + c01 * t1y + c02 * t1x) / det
+    if s00 > 0.0:
+        return t0 / s00
+    return t0
 
-    ``acc`` holds the per-node sums (w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy,
-    w z dx); ``g*0, g*1, g*2`` are a Gaussian and its first and second offset moments across
-    (x) and along (y). Writes s00, s10, s01, s20, s02, s11, t0, t1y, t1x (moments about each
-    output node) into ``out`` (9, H, W): the same sums as scipy.ndimage.correlate1d with
-    mode "constant", grouped so that every input is read once per pass.
+
+@numba.njit(**JIT)
+def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, out):
+    """Separable Gaussian moments of the splatted sums (zero outside the grid) and the local
+    plane fit they define, row by row.
+
+    ``acc`` (H, W, 9) holds the per-node sums (w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z,
+    w z dy, w z dx); ``g*0, g*1, g*2`` are a Gaussian and its first and second offset moments across
+    (x) and along (y). The moments about each output node (s00, s10, s01, s20, s02, s11, t0,
+    t1y, t1x) are the same sums as scipy.ndimage.correlate1d with mode "constant", grouped
+    so that every input is read once per pass. Writes the plane fit's value to ``model`` and
+    s00 to ``s00`` (H, W); the nine moments to ``out`` (9, H, W) only if it has that shape
+    (tests), since they are never needed whole: the across pass is kept for the last
+    ``2 ry + 1`` rows only (a ring that stays in cache, no swipe-sized temporary).
     """
-    _, hh, ww = acc.shape
+    hh, ww, _ = acc.shape
     rx = gx0.shape[0] // 2
     ry = gy0.shape[0] // 2
-    # across: the nine inputs of the along pass
-    p = np.empty((9, hh, ww))
-    for i in range(hh):
-        for c in range(ww):
-            v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
-            x1a00 = x1a01 = x1a10 = x1b0 = x2a00 = 0.0
-            for j in range(max(-rx, -c), min(rx, ww - 1 - c) + 1):
-                cc = c + j
-                k0 = gx0[j + rx]
-                k1 = gx1[j + rx]
-                k2 = gx2[j + rx]
-                a00 = acc[0, i, cc]
-                a01 = acc[2, i, cc]
-                a10 = acc[1, i, cc]
-                b0 = acc[6, i, cc]
-                v0 += k0 * a00
-                v1 += k0 * a10
-                v2 += k0 * a01
-                v3 += k0 * acc[3, i, cc]
-                v4 += k0 * acc[4, i, cc]
-                v5 += k0 * acc[5, i, cc]
-                v6 += k0 * b0
-                v7 += k0 * acc[7, i, cc]
-                v8 += k0 * acc[8, i, cc]
-                x1a00 += k1 * a00
-                x1a01 += k1 * a01
-                x1a10 += k1 * a10
-                x1b0 += k1 * b0
-                x2a00 += k2 * a00
-            p[0, i, c] = v0                          # xa00
-            p[1, i, c] = v1                          # xa10
-            p[2, i, c] = v2 + x1a00                  # xa01 + x1_a00
-            p[3, i, c] = v3                          # xa20
-            p[4, i, c] = v4 + 2.0 * x1a01 + x2a00    # xa02 + 2 x1_a01 + x2_a00
-            p[5, i, c] = v5 + x1a10                  # xa11 + x1_a10
-            p[6, i, c] = v6                          # xb0
-            p[7, i, c] = v7                          # xb1y
-            p[8, i, c] = v8 + x1b0                   # xb1x + x1_b0
-    # along (rows are contiguous: the inner loop runs over columns); each output row is
-    # accumulated in a small buffer that stays in cache and written once
+    keep = out.shape[1] == hh and out.shape[2] == ww
+    n_ring = 2 * ry + 1
+    p = np.empty((n_ring, 9, ww))
     buf = np.empty((9, ww))
-    for i in range(hh):
+    for i in range(hh + ry):
+        if i < hh:
+            # across pass of row i into its ring slot: the nine inputs of the along pass
+            q = p[i % n_ring]
+            for c in range(ww):
+                v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
+                x1a00 = x1a01 = x1a10 = x1b0 = x2a00 = 0.0
+                for j in range(max(-rx, -c), min(rx, ww - 1 - c) + 1):
+                    cc = c + j
+                    k0 = gx0[j + rx]
+                    k1 = gx1[j + rx]
+                    k2 = gx2[j + rx]
+                    a00 = acc[i, cc, 0]
+                    a01 = acc[i, cc, 2]
+                    a10 = acc[i, cc, 1]
+                    b0 = acc[i, cc, 6]
+                    v0 += k0 * a00
+                    v1 += k0 * a10
+                    v2 += k0 * a01
+                    v3 += k0 * acc[i, cc, 3]
+                    v4 += k0 * acc[i, cc, 4]
+                    v5 += k0 * acc[i, cc, 5]
+                    v6 += k0 * b0
+                    v7 += k0 * acc[i, cc, 7]
+                    v8 += k0 * acc[i, cc, 8]
+                    x1a00 += k1 * a00
+                    x1a01 += k1 * a01
+                    x1a10 += k1 * a10
+                    x1b0 += k1 * b0
+                    x2a00 += k2 * a00
+                q[0, c] = v0                          # xa00
+                q[1, c] = v1                          # xa10
+                q[2, c] = v2 + x1a00                  # xa01 + x1_a00
+                q[3, c] = v3                          # xa20
+                q[4, c] = v4 + 2.0 * x1a01 + x2a00    # xa02 + 2 x1_a01 + x2_a00
+                q[5, c] = v5 + x1a10                  # xa11 + x1_a10
+                q[6, c] = v6                          # xb0
+                q[7, c] = v7                          # xb1y
+                q[8, c] = v8 + x1b0                   # xb1x + x1_b0
+        o = i - ry
+        if o < 0:
+            continue
+        # along pass of output row o (rows o - ry .. o + ry are in the ring; the inner loop
+        # runs over columns, contiguous)
         buf[:, :] = 0.0
-        for j in range(max(-ry, -i), min(ry, hh - 1 - i) + 1):
-            ii = i + j
+        for j in range(max(-ry, -o), min(ry, hh - 1 - o) + 1):
+            q = p[(o + j) % n_ring]
             k0 = gy0[j + ry]
             k1 = gy1[j + ry]
             k2 = gy2[j + ry]
             for c in range(ww):
-                q0 = p[0, ii, c]
-                q1 = p[1, ii, c]
-                q2 = p[2, ii, c]
-                q6 = p[6, ii, c]
+                q0 = q[0, c]
+                q1 = q[1, c]
+                q2 = q[2, c]
+                q6 = q[6, c]
                 buf[0, c] += k0 * q0                              # s00
                 buf[1, c] += k0 * q1 + k1 * q0                    # s10
                 buf[2, c] += k0 * q2                              # s01
-                buf[3, c] += k0 * p[3, ii, c] + 2.0 * k1 * q1 + k2 * q0   # s20
-                buf[4, c] += k0 * p[4, ii, c]                     # s02
-                buf[5, c] += k0 * p[5, ii, c] + k1 * q2           # s11
+                buf[3, c] += k0 * q[3, c] + 2.0 * k1 * q1 + k2 * q0   # s20
+                buf[4, c] += k0 * q[4, c]                         # s02
+                buf[5, c] += k0 * q[5, c] + k1 * q2               # s11
                 buf[6, c] += k0 * q6                              # t0
-                buf[7, c] += k0 * p[7, ii, c] + k1 * q6           # t1y
-                buf[8, c] += k0 * p[8, ii, c]                     # t1x
-        out[:, i, :] = buf
-
-
-@numba.njit(**JIT)
-def _local_linear(sm):
-    """Value at each node of the weighted local plane fit (3 x 3 normal equations by
-    cofactors), or the local mean where the plane is not determined (or 0 without weight)."""
-    _, hh, ww = sm.shape
-    out = np.empty((hh, ww))
-    for i in range(hh):
+                buf[7, c] += k0 * q[7, c] + k1 * q6               # t1y
+                buf[8, c] += k0 * q[8, c]                         # t1x
         for c in range(ww):
-            s00 = sm[0, i, c]
-            s10 = sm[1, i, c]
-            s01 = sm[2, i, c]
-            s20 = sm[3, i, c]
-            s02 = sm[4, i, c]
-            s11 = sm[5, i, c]
-            c00 = s20 * s02 - s11 * s11
-            c01 = s11 * s01 - s10 * s02
-            c02 = s10 * s11 - s20 * s01
-            det = s00 * c00 + s10 * c01 + s01 * c02
-            if det > 1e-6 * s00 * max(s20 * s02, 1e-30):
-                out[i, c] = (c00 * sm[6, i, c] + c01 * sm[7, i, c] + c02 * sm[8, i, c]) / det
-            elif s00 > 0.0:
-                out[i, c] = sm[6, i, c] / s00
-            else:
-                out[i, c] = sm[6, i, c]
-    return out
+            s00[o, c] = buf[0, c]
+            model[o, c] = _plane_value(buf[0, c], buf[1, c], buf[2, c], buf[3, c], buf[4, c],
+                                       buf[5, c], buf[6, c], buf[7, c], buf[8, c])
+        if keep:
+            out[:, o, :] = buf
 
 
 @numba.njit(**JIT)
-def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
-    """Per node the moments of a local linear fit, from every observation splatted onto its
-    four nearest nodes with bilinear weights (in place into acc, shape (9, H, W)): sums of
-    w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset
-    (px) of the observation from the node."""
-    t_n, r_n, c_n = z.shape
-    for t in range(t_n):
+def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc):
+    """Per node the moments of a local linear fit, from every observation of the frames
+    ``src`` splatted onto its four nearest nodes with bilinear weights (in place into acc,
+    shape (H, W, 9)): sums of w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy, w z dx,
+    with (dy, dx) the offset (px) of the observation from the node. Nodes off the grid are
+    skipped (a grid may be a window of the swipe)."""
+    _, r_n, c_n = z.shape
+    hh, ww, _ = acc.shape
+    # Across steps per plate when that is a whole number of nodes (0.5 px grid: 2)
+    m_across = 1.0 / h[1]
+    step1 = int(round(m_across)) if abs(m_across - round(m_across)) < 1e-9 else 0
+    cw = np.empty((2, 2, 9))
+    for t in src:
         ct = cos_t[t]
         st = sin_t[t]
+        if st == 0.0 and ct == 1.0 and step1 > 0:
+            # Unturned frame: every plate of a row has the same bilinear weights and offsets
+            # (plates one pixel apart land a whole number of nodes apart), so the nine
+            # moment coefficients of the four corners are set once per row.
+            b1 = (pos[t, 1] - lo[1]) / h[1]
+            j1 = int(np.floor(b1))
+            a1 = b1 - j1
+            for r in range(r_n):
+                f0 = (cf[0] + pos[t, 0] + (r - cf[0]) - lo[0]) / h[0]
+                i0 = int(np.floor(f0))
+                if i0 < -1 or i0 >= hh:
+                    continue
+                a0 = f0 - i0
+                for di in range(2):
+                    wa = a0 if di == 1 else 1.0 - a0
+                    dy = (a0 - di) * h[0]
+                    for dj in range(2):
+                        wb = a1 if dj == 1 else 1.0 - a1
+                        dx = (a1 - dj) * h[1]
+                        wk = wa * wb
+                        cw[di, dj, 0] = wk
+                        cw[di, dj, 1] = wk * dy
+                        cw[di, dj, 2] = wk * dx
+                        cw[di, dj, 3] = wk * dy * dy
+                        cw[di, dj, 4] = wk * dx * dx
+                        cw[di, dj, 5] = wk * dy * dx
+                for c in range(c_n):
+                    wv = float(w[t, r, c])
+                    if wv <= 0.0:
+                        continue
+                    wz = wv * float(z[t, r, c])
+                    n1b = j1 + step1 * c
+                    for di in range(2):
+                        n0 = i0 + di
+                        if n0 < 0 or n0 >= hh:
+                            continue
+                        for dj in range(2):
+                            n1 = n1b + dj
+                            if n1 < 0 or n1 >= ww:
+                                continue
+                            k = cw[di, dj]
+                            a = acc[n0, n1]
+                            a[0] += wv * k[0]
+                            a[1] += wv * k[1]
+                            a[2] += wv * k[2]
+                            a[3] += wv * k[3]
+                            a[4] += wv * k[4]
+                            a[5] += wv * k[5]
+                            a[6] += wz * k[0]
+                            a[7] += wz * k[1]
+                            a[8] += wz * k[2]
+            continue
         for r in range(r_n):
             u0 = r - cf[0]
             for c in range(c_n):
@@ -299,51 +393,61 @@ def _splat_moments(z, w, pos, cos_t, sin_t, cf, lo, h, acc):
                 f1 = (q1 - lo[1]) / h[1]
                 i0 = int(np.floor(f0))
                 i1 = int(np.floor(f1))
+                if i0 < -1 or i0 >= hh or i1 < -1 or i1 >= ww:
+                    continue
                 a0 = f0 - i0
                 a1 = f1 - i1
                 v = float(z[t, r, c])
                 for di in range(2):
+                    n0 = i0 + di
+                    if n0 < 0 or n0 >= hh:
+                        continue
                     wa = a0 if di == 1 else 1.0 - a0
                     dy = (a0 - di) * h[0]
                     for dj in range(2):
+                        n1 = i1 + dj
+                        if n1 < 0 or n1 >= ww:
+                            continue
                         wb = a1 if dj == 1 else 1.0 - a1
                         dx = (a1 - dj) * h[1]
                         wk = wv * wa * wb
                         wy = wk * dy
                         wx = wk * dx
-                        n0 = i0 + di
-                        n1 = i1 + dj
-                        acc[0, n0, n1] += wk
-                        acc[1, n0, n1] += wy
-                        acc[2, n0, n1] += wx
-                        acc[3, n0, n1] += wy * dy
-                        acc[4, n0, n1] += wx * dx
-                        acc[5, n0, n1] += wy * dx
-                        acc[6, n0, n1] += wk * v
-                        acc[7, n0, n1] += wy * v
-                        acc[8, n0, n1] += wx * v
+                        acc[n0, n1, 0] += wk
+                        acc[n0, n1, 1] += wy
+                        acc[n0, n1, 2] += wx
+                        acc[n0, n1, 3] += wy * dy
+                        acc[n0, n1, 4] += wx * dx
+                        acc[n0, n1, 5] += wy * dx
+                        acc[n0, n1, 6] += wk * v
+                        acc[n0, n1, 7] += wy * v
+                        acc[n0, n1, 8] += wx * v
 
 
-def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
-    """Gauss-Newton normal equations of every frame against the model.
+@numba.njit(**JIT)
+def _gradient_stack(model, h0, h1, stack):
+    """``stack[..., 0]`` = model, ``[..., 1:]`` = its gradient along and across, as
+    numpy.gradient (central differences inside, one-sided at the edges)."""
+    hh, ww = model.shape
+    for i in range(hh):
+        im = max(i - 1, 0)
+        ip = min(i + 1, hh - 1)
+        dy = (ip - im) * h0
+        for c in range(ww):
+            cm = max(c - 1, 0)
+            cp = min(c + 1, ww - 1)
+            stack[i, c, 0] = model[i, c]
+            stack[i, c, 1] = (model[ip, c] - model[im, c]) / dy if dy > 0 else 0.0
+            stack[i, c, 2] = (model[i, cp] - model[i, cm]) / ((cp - cm) * h1) if cp > cm else 0.0
 
-    Parameters per frame: along and across shift, stretch (along offset per row), shear
-    (across offset per row), gain and offset. Returns the position information and step
-    with the other four marginalised (Schur complement), the stretch and shear estimates
-    with their variances, and the NCC with the model.
-    """
-    t_n, r_n, c_n = z.shape
-    n_par = 7
-    hess = np.zeros((t_n, n_par, n_par))
-    grad = np.zeros((t_n, n_par))
-    rss = np.zeros(t_n)
-    nobs = np.zeros(t_n)
-    ncc = np.zeros(t_n)
-    th = np.asarray(angles_rad, dtype=np.float64)
-    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    _frame_normals(z, w, np.asarray(positions, dtype=np.float64), np.cos(th), np.sin(th), cf,
-                   np.ascontiguousarray(stack, dtype=np.float64), np.asarray(lo, np.float64),
-                   np.asarray(h, np.float64), hess, grad, rss, nobs, ncc)
+
+def _solve_frames(hess, grad, rss, nobs):
+    """Gauss-Newton step of every frame from its normal equations (7 parameters: along and
+    across shift, stretch (along offset per row), shear (across offset per row), twist, gain
+    and offset). Returns the position step with the position information (the other five
+    marginalised: Schur complement), and the stretch, shear and twist estimates with their
+    variances."""
+    n_par = hess.shape[1]
     tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
     hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
     full_step = np.linalg.solve(hreg, grad[..., None])[..., 0]
@@ -355,30 +459,72 @@ def _fit_frames(z, w, positions, angles_rad, stack, lo, h):
     cov_p = hinv[:, :2, :2] / inv_var[:, None, None]
     with np.errstate(invalid="ignore", over="ignore"):
         info = np.linalg.inv(cov_p + np.eye(2)[None] * 1e-12)
-    info[nobs < 16] = 0.0
-    info[~np.isfinite(info).all(axis=(1, 2))] = 0.0
-    st = full_step[:, 2]
-    sh = full_step[:, 3]
-    st_var = hinv[:, 2, 2] / inv_var
-    sh_var = hinv[:, 3, 3] / inv_var
     bad = nobs < 16
-    tw = full_step[:, 4]
-    tw_var = hinv[:, 4, 4] / inv_var
-    st_var[bad] = np.inf
-    sh_var[bad] = np.inf
-    tw_var[bad] = np.inf
-    return full_step[:, :2], info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc
+    info[bad] = 0.0
+    info[~np.isfinite(info).all(axis=(1, 2))] = 0.0
+    extra = []
+    for k in (2, 3, 4):
+        v = hinv[:, k, k] / inv_var
+        v[bad] = np.inf
+        extra.append((full_step[:, k], v))
+    return full_step[:, :2], info, extra[0], extra[1], extra[2]
 
 
 @numba.njit(**JIT)
-def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, nobs, ncc):
-    """Per frame: the model (and its gradients) sampled bilinearly where each plate looked,
+def _select_inplace(a, lo, hi, k):
+    """k-th smallest of a[lo:hi] by quickselect (Hoare partition, median-of-three pivot);
+    reorders a[lo:hi] in place. Expected linear time."""
+    hi -= 1
+    while hi > lo:
+        mid = (lo + hi) // 2
+        x, y, zz = a[lo], a[mid], a[hi]
+        piv = max(min(x, y), min(max(x, y), zz))
+        i, j = lo, hi
+        while i <= j:
+            while a[i] < piv:
+                i += 1
+            while a[j] > piv:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if k <= j:
+            hi = j
+        elif k >= i:
+            lo = i
+        else:
+            return a[k]
+    return a[k]
+
+
+@numba.njit(**JIT)
+def _median_inplace(a, n_all, n):
+    """Median of the n smallest of a[:n_all] (the rest: +inf, excluded values), as
+    numpy.median (mean of the two middle values for even n); reorders a[:n_all] in place
+    (no copy: it runs once per frame)."""
+    k = n // 2
+    upper = _select_inplace(a, 0, n_all, k)
+    if n % 2 == 1:
+        return upper
+    # a[:k] now holds the k smallest: the lower middle value is their maximum
+    lower = a[0]
+    for i in range(1, k):
+        if a[i] > lower:
+            lower = a[i]
+    return 0.5 * (lower + upper)
+
+
+@numba.njit(**JIT)
+def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, nobs, ncc):
+    """Per frame of ``idx``: the model (and its gradients) sampled bilinearly where each plate looked,
     Huber weights (k = 2 robust sigmas of the frame's residuals), and the weighted normal
     equations of the 7 parameters (shift along, across, stretch, shear, twist, gain, offset),
     the weighted residual sum of squares, the count and the NCC with the model (in place)."""
-    t_n, r_n, c_n = z.shape
+    _, r_n, c_n = z.shape
     hh, ww_, _ = stack.shape
     n_px = r_n * c_n
+    stride = max(1, n_px // 256)
     res = np.empty(n_px)
     absr = np.empty(n_px)
     wts = np.empty(n_px)
@@ -386,7 +532,7 @@ def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, n
     gyv = np.empty(n_px)
     gxv = np.empty(n_px)
     zv = np.empty(n_px)
-    for t in range(t_n):
+    for t in idx:
         ct = cos_t[t]
         st = sin_t[t]
         cnt = 0
@@ -415,11 +561,23 @@ def _frame_normals(z, w, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, n
                 zv[k] = float(z[t, r, c])
                 res[k] = zv[k] - mv[k]
                 wts[k] = float(w[t, r, c])
-                if wts[k] > 0.0:
-                    absr[cnt] = abs(res[k])
-                    cnt += 1
+                cnt += 1 if wts[k] > 0.0 else 0
         nobs[t] = cnt
-        med = np.median(absr[:cnt]) if cnt > 0 else 0.0
+        # Robust scale from an even subsample of about 256 residuals: it only sets the Huber
+        # threshold (its relative error ~8 %), and a full median per frame cost as much as
+        # the rest of the fit.
+        n_s = 0
+        for k in range(0, n_px, stride):
+            if wts[k] > 0.0:
+                absr[n_s] = abs(res[k])
+                n_s += 1
+        if n_s < 16:
+            n_s = 0
+            for k in range(n_px):
+                if wts[k] > 0.0:
+                    absr[n_s] = abs(res[k])
+                    n_s += 1
+        med = _median_inplace(absr, n_s, n_s) if n_s > 0 else 0.0
         sig = 1.4826 * med + 1e-9
         for i in range(7):
             grad[t, i] = 0.0
@@ -563,39 +721,48 @@ def _phase_concentration(along, active, n_rows, phase_of=None):
     return out
 
 
-def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px):
-    """Model and frame fits tile by tile along the swipe, so memory follows the tile, not the
-    swipe: the frames whose centres lie in a tile are fitted to a model built from every
-    frame whose footprint reaches into it (with a margin)."""
+def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, margin_px=3.0):
+    """Model and frame fits tile by tile along the swipe, so memory and cache follow the
+    tile, not the swipe: the frames whose centres lie in a tile are fitted to a model of the
+    window they cover (plus a margin for the smoothing and the gradients), built from every
+    observation that falls in that window."""
     t_n, r_n, c_n = z.shape
-    # Reach of a frame along the swipe from its centre (a turned frame reaches further).
-    half = float(np.max(0.5 * (r_n * np.abs(np.cos(angles_rad)) + c_n * np.abs(np.sin(angles_rad))))) + 2.0
-    centre = positions[:, 0] + 0.5 * (r_n - 1)
+    work = _Workspace() if work is None else work
+    positions = np.asarray(positions, dtype=np.float64)
+    angles_rad = np.asarray(angles_rad, dtype=np.float64)
+    k0, k1 = _mosaic.plate_coordinates(z.shape, positions, angles_rad, rows=[0, r_n - 1],
+                                       cols=[0, c_n - 1])
+    k0 = k0.reshape(t_n, -1)
+    k1 = k1.reshape(t_n, -1)
+    y_lo, y_hi = k0.min(axis=1), k0.max(axis=1)
+    x_lo, x_hi = k1.min(axis=1), k1.max(axis=1)
+    centre = 0.5 * (y_lo + y_hi)
     lo_c, hi_c = float(centre.min()), float(centre.max())
     n_tiles = max(1, int(np.ceil((hi_c - lo_c + 1e-9) / float(tile_px))))
     edges = lo_c + (hi_c - lo_c + 1e-6) * np.arange(n_tiles + 1) / n_tiles
-    delta = np.zeros((t_n, 2))
-    info = np.zeros((t_n, 2, 2))
-    extra = [np.zeros(t_n), np.full(t_n, np.inf), np.zeros(t_n), np.full(t_n, np.inf),
-             np.zeros(t_n), np.full(t_n, np.inf)]
+    order = np.argsort(centre, kind="stable")
+    cuts = np.searchsorted(centre[order], edges[1:-1], side="left")
+    hess = np.zeros((t_n, 7, 7))
+    grad = np.zeros((t_n, 7))
+    rss = np.zeros(t_n)
+    nobs = np.zeros(t_n)
     ncc = np.zeros(t_n)
-    for k in range(n_tiles):
-        fit = np.flatnonzero((centre >= edges[k]) & ((centre < edges[k + 1]) | (k == n_tiles - 1)))
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    ct, st = np.cos(angles_rad), np.sin(angles_rad)
+    for fit in np.split(order, cuts):
         if fit.size == 0:
             continue
-        a, b = centre[fit].min() - 2 * half, centre[fit].max() + 2 * half
-        src = np.flatnonzero((centre >= a) & (centre <= b))
-        model, _, lo = build_model(z[src], w[src], positions[src], angles_rad[src], fine_px=h,
-                                   smooth_px=smooth_px)
-        gy, gx = np.gradient(model, h[0], h[1])
-        stack = np.stack([model, gy, gx], axis=-1)
-        del model, gy, gx
-        d, i, (st, stv), (sh, shv), (tw, twv), nc = _fit_frames(z[fit], w[fit], positions[fit],
-                                                                angles_rad[fit], stack, lo, h)
-        delta[fit], info[fit], ncc[fit] = d, i, nc
-        for arr, val in zip(extra, (st, stv, sh, shv, tw, twv)):
-            arr[fit] = val
-    return delta, info, (extra[0], extra[1]), (extra[2], extra[3]), (extra[4], extra[5]), ncc
+        lo = np.array([y_lo[fit].min(), x_lo[fit].min()]) - margin_px
+        hi = np.array([y_hi[fit].max(), x_hi[fit].max()]) + margin_px
+        src = np.flatnonzero((y_hi >= lo[0]) & (y_lo <= hi[0]) & (x_hi >= lo[1]) & (x_lo <= hi[1]))
+        shape = tuple(int(v) for v in np.ceil((hi - lo) / h).astype(np.int64) + 2)
+        model, _ = _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work)
+        stack = work.get("stack", shape + (3,))
+        _gradient_stack(model, float(h[0]), float(h[1]), stack)
+        _frame_normals(z, w, fit.astype(np.int64), positions, ct, st, cf, stack, lo, h, hess,
+                       grad, rss, nobs, ncc)
+    delta, info, st_, sh_, tw_ = _solve_frames(hess, grad, rss, nobs)
+    return delta, info, st_, sh_, tw_, ncc
 
 
 def _smooth_weighted(values, var, sigma_frames):
@@ -706,9 +873,10 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     steps = np.diff(pos[:, 0])
     speed = float(np.median(np.abs(steps[active[1:] & active[:-1]]))) if t_n > 2 and active.sum() > 2 else 1.0
     sigma_frames = float(np.clip(2.0 * r_n / max(speed, 0.02), 8.0, max(8.0, t_n / 2.0)))
+    work = _Workspace()
     for it in range(max(1, int(iterations))):
         delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = _fit_tiles(
-            z, w, pos, ang, h, smooth_px, tile_px)
+            z, w, pos, ang, h, smooth_px, tile_px, work)
         # Only where the frames sample many sub-pixel phases is the model finer than the
         # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
         # like any other, and the pairwise placement stands.

@@ -204,9 +204,11 @@ def test_refine_bad_input(kw, exc, match):
                             iterations=kw.get("iterations", 2))
 
 
-def test_compiled_moment_splat_matches_the_formula():
+@pytest.mark.parametrize("turned", [True, False])
+def test_compiled_moment_splat_matches_the_formula(turned):
     # The compiled splat of build_model against the same nine moments written out in numpy
-    # (np.add.at over the four bilinear corners).
+    # (np.add.at over the four bilinear corners); unturned frames take the kernel's per-row
+    # path, turned ones the per-plate path.
     from stripstitch import mosaic
     from stripstitch.refine import _splat_moments
     rng = np.random.default_rng(5)
@@ -215,15 +217,15 @@ def test_compiled_moment_splat_matches_the_formula():
     w = rng.uniform(0, 1, (t_n, r_n, c_n))
     w[w < 0.2] = 0
     pos = np.cumsum(rng.uniform(0.1, 1.2, (t_n, 2)), axis=0)
-    ang = rng.uniform(-0.05, 0.05, t_n)
+    ang = rng.uniform(-0.05, 0.05, t_n) if turned else np.zeros(t_n)
     h = np.array([0.25, 0.5])
     q0, q1 = mosaic.plate_coordinates(z.shape, pos, ang)
     lo = np.array([q0.min(), q1.min()]) - 1.0
     shape = (int(np.ceil((q0.max() - lo[0]) / h[0])) + 3, int(np.ceil((q1.max() - lo[1]) / h[1])) + 3)
-    acc = np.zeros((9,) + shape)
-    _splat_moments(z, w, pos, np.cos(ang), np.sin(ang), np.array([(r_n - 1) / 2, (c_n - 1) / 2]),
-                   lo, h, acc)
-    ref = np.zeros_like(acc)
+    acc = np.zeros(shape + (9,))
+    _splat_moments(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang),
+                   np.array([(r_n - 1) / 2, (c_n - 1) / 2]), lo, h, acc)
+    ref = np.zeros((9,) + shape)
     f0, f1 = ((q0 - lo[0]) / h[0]).ravel(), ((q1 - lo[1]) / h[1]).ravel()
     i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
     a0, a1 = f0 - i0, f1 - i1
@@ -235,28 +237,31 @@ def test_compiled_moment_splat_matches_the_formula():
             for k, m in enumerate((wk, wk * dy, wk * dx, wk * dy * dy, wk * dx * dx, wk * dy * dx,
                                    wk * v, wk * dy * v, wk * dx * v)):
                 np.add.at(ref[k], (i0 + di, i1 + dj), m)
-    np.testing.assert_allclose(acc, ref, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(np.moveaxis(acc, -1, 0), ref, rtol=1e-9, atol=1e-12)
 
 
-def test_compiled_normal_equations_match_the_formula():
+@pytest.mark.parametrize("r_n, c_n", [(5, 11), (4, 131)])
+def test_compiled_normal_equations_match_the_formula(r_n, c_n):
     # The compiled per-frame normal equations of the model fit against the same sums in
     # numpy: bilinear samples of the model and its gradients, Huber weights at two robust
-    # sigmas (1.4826 MAD, common practice), 7 x 7 normal equations, NCC.
+    # sigmas (1.4826 MAD, common practice; the MAD of every plate, or of every k-th for
+    # frames of more than 256 plates, k = plates // 256), 7 x 7 normal equations, NCC.
     from stripstitch import mosaic
     from stripstitch.refine import _frame_normals
     rng = np.random.default_rng(6)
-    t_n, r_n, c_n = 6, 5, 11
+    t_n = 6
     z = rng.standard_normal((t_n, r_n, c_n))
     w = rng.uniform(0, 1, (t_n, r_n, c_n))
     w[w < 0.2] = 0
     pos = np.cumsum(rng.uniform(0.2, 0.8, (t_n, 2)), axis=0)
     ang = rng.uniform(-0.02, 0.02, t_n)
-    stack = rng.standard_normal((60, 40, 3))
+    stack = rng.standard_normal((60, 2 * c_n + 30, 3))
     lo, h = np.array([-3.0, -4.0]), np.array([0.25, 0.5])
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
     hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
     rss, nobs, ncc = np.zeros(t_n), np.zeros(t_n), np.zeros(t_n)
-    _frame_normals(z, w, pos, np.cos(ang), np.sin(ang), cf, stack, lo, h, hess, grad, rss, nobs, ncc)
+    _frame_normals(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang), cf, stack, lo, h, hess,
+                   grad, rss, nobs, ncc)
     q0, q1 = mosaic.plate_coordinates(z.shape, pos, ang)
     f0, f1 = (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1]
     i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
@@ -269,7 +274,8 @@ def test_compiled_normal_equations_match_the_formula():
         m, gy, gx = samp[t, ..., 0], samp[t, ..., 1], samp[t, ..., 2]
         r = z[t] - m
         sel = w[t] > 0
-        sig = 1.4826 * np.median(np.abs(r[sel])) + 1e-9
+        k = max(1, r.size // 256)
+        sig = 1.4826 * np.median(np.abs(r.ravel()[::k][sel.ravel()[::k]])) + 1e-9
         a = np.abs(r) / (2 * sig)
         wr = w[t] * np.where(a > 1, 1 / np.maximum(a, 1e-12), 1.0)
         jac = np.stack([gy, gx, gy * u0, gx * u0, -gy * u0 * u1, m, np.ones_like(m)]).reshape(7, -1)
@@ -297,7 +303,8 @@ def test_compiled_smoothing_matches_scipy_correlate1d():
     gy0, gy1, gy2 = kern(5, 0.25)
     gx0, gx1, gx2 = kern(2, 0.5)
     out = np.empty_like(acc)
-    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, out)
+    model, s00 = np.empty(acc.shape[1:]), np.empty(acc.shape[1:])
+    _smooth_moments(np.moveaxis(acc, 0, -1).copy(), gx0, gx1, gx2, gy0, gy1, gy2, model, s00, out)
     def across(x, k):
         return ndimage.correlate1d(x, k, axis=1, mode="constant")
     def along(x, k):
@@ -316,3 +323,14 @@ def test_compiled_smoothing_matches_scipy_correlate1d():
               along(xb1y, gy0) + along(xb0, gy1),
               along(xb1x + x1_b0, gy0)]
     np.testing.assert_allclose(out, np.stack(expect), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(s00, expect[0], rtol=1e-10, atol=1e-12)
+    # The local plane fit at every node: the weighted least-squares plane through the
+    # moments, solved by numpy.linalg.solve (local mean where the plane is degenerate).
+    s00_, s10, s01, s20, s02, s11, t0, t1y, t1x = expect
+    mat = np.stack([np.stack([s00_, s10, s01], -1), np.stack([s10, s20, s11], -1),
+                    np.stack([s01, s11, s02], -1)], -2)
+    plane = np.linalg.solve(mat, np.stack([t0, t1y, t1x], -1)[..., None])[..., 0, 0]
+    det = np.linalg.det(mat)
+    well = det > 1e-3 * s00_ * s20 * s02
+    assert well.mean() > 0.5
+    np.testing.assert_allclose(model[well], plane[well], rtol=1e-7, atol=1e-9)
