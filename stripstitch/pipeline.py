@@ -368,6 +368,9 @@ def _texture_about(z, frames, static, ok):
     return out
 
 
+_TRACK_FAST = {}
+
+
 def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px, *, refit):
     """The key-frame tracker's placement (:mod:`stripstitch.track`); None when it cannot
     vouch for it (fewer than 4 rows, or more drift expected than 0.3 % of the swipe)."""
@@ -378,7 +381,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 
     def run(p):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
-                            sigma_acc_px=motion_prior_px)
+                            sigma_acc_px=motion_prior_px, **_TRACK_FAST if not refit else {})
 
     def spread(tr):
         out = np.empty((t_n, 2))

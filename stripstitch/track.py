@@ -226,7 +226,7 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
                           + wy[2] * up_a[ra + 2, cc] + wy[3] * up_a[ra + 3, cc])
             if full:
                 # Every plate usable: the template's own sums over the row come from its
-                # prefix sums; only the sums that involve the interpolated key remain.
+                # row totals; only the sums that involve the interpolated key remain.
                 z32 = np.float32(0.0)
                 ri = rii = rit = r0i = r1i = z32
                 for c in range(c_lo, c_hi + 1):
@@ -238,23 +238,38 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
                     rit += iv * b[r, c]
                     r0i += g0[r, c] * iv
                     r1i += g1[r, c] * iv
-                lo_ = c_lo
-                hi_ = c_hi + 1
-                sw += hi_ - lo_
-                sg0 += pre[0, r, hi_] - pre[0, r, lo_]
-                sg1 += pre[1, r, hi_] - pre[1, r, lo_]
-                sgg00 += pre[2, r, hi_] - pre[2, r, lo_]
-                sgg01 += pre[3, r, hi_] - pre[3, r, lo_]
-                sgg11 += pre[4, r, hi_] - pre[4, r, lo_]
-                rt_ = pre[5, r, hi_] - pre[5, r, lo_]
+                # template sums over the row minus the columns outside the overlap (few)
+                e0 = e1 = e2 = e3 = e4 = e5 = e6 = e7 = e8 = 0.0
+                width = c_hi + 1 - c_lo
+                for k in range(c_n - width):
+                    c = k if k < c_lo else k + width
+                    x0 = float(g0[r, c])
+                    x1 = float(g1[r, c])
+                    tv = float(b[r, c])
+                    e0 += x0
+                    e1 += x1
+                    e2 += x0 * x0
+                    e3 += x0 * x1
+                    e4 += x1 * x1
+                    e5 += tv
+                    e6 += tv * tv
+                    e7 += x0 * tv
+                    e8 += x1 * tv
+                sw += c_hi + 1 - c_lo
+                sg0 += pre[0, r] - e0
+                sg1 += pre[1, r] - e1
+                sgg00 += pre[2, r] - e2
+                sgg01 += pre[3, r] - e3
+                sgg11 += pre[4, r] - e4
+                rt_ = pre[5, r] - e5
                 st += rt_
-                stt += pre[6, r, hi_] - pre[6, r, lo_]
+                stt += pre[6, r] - e6
                 si += ri
                 sii += rii
                 sit += rit
                 sr += ri - rt_
-                sg0r += r0i - (pre[7, r, hi_] - pre[7, r, lo_])
-                sg1r += r1i - (pre[8, r, hi_] - pre[8, r, lo_])
+                sg0r += r0i - (pre[7, r] - e7)
+                sg1r += r1i - (pre[8, r] - e8)
                 continue
             # weight: both plates usable (a's nearest plate to the sample point)
             rm = min(max(int(np.floor(r + d0 + 0.5)), 0), r_n - 1)
@@ -357,13 +372,12 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
 
 
 @numba.njit(**JIT)
-def _template_prefix(b, g0, g1, pre):
-    """Per-row prefix sums over columns of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b."""
+def _template_sums(b, g0, g1, pre):
+    """Per-row sums over all columns of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b
+    (``pre``, (9, R)); a registration subtracts the few columns outside its overlap."""
     r_n, c_n = b.shape
     for r in range(r_n):
         s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = s8 = 0.0
-        pre[0, r, 0] = pre[1, r, 0] = pre[2, r, 0] = pre[3, r, 0] = pre[4, r, 0] = 0.0
-        pre[5, r, 0] = pre[6, r, 0] = pre[7, r, 0] = pre[8, r, 0] = 0.0
         for c in range(c_n):
             a0 = float(g0[r, c])
             a1 = float(g1[r, c])
@@ -377,15 +391,15 @@ def _template_prefix(b, g0, g1, pre):
             s6 += t * t
             s7 += a0 * t
             s8 += a1 * t
-            pre[0, r, c + 1] = s0
-            pre[1, r, c + 1] = s1
-            pre[2, r, c + 1] = s2
-            pre[3, r, c + 1] = s3
-            pre[4, r, c + 1] = s4
-            pre[5, r, c + 1] = s5
-            pre[6, r, c + 1] = s6
-            pre[7, r, c + 1] = s7
-            pre[8, r, c + 1] = s8
+        pre[0, r] = s0
+        pre[1, r] = s1
+        pre[2, r] = s2
+        pre[3, r] = s3
+        pre[4, r] = s4
+        pre[5, r] = s5
+        pre[6, r] = s6
+        pre[7, r] = s7
+        pre[8, r] = s8
 
 
 @numba.njit(**JIT)
@@ -557,7 +571,7 @@ def _with_model_error(j00, j01, j11, s2m):
 
 @numba.njit(**JIT)
 def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, iters, lam,
-           min_ncc, q_acc, model_px, pos, info, ref, ncc, sig, link_ok, pvar):
+           min_ncc, q_acc, model_px, use_old, pos, info, ref, ncc, sig, link_ok, pvar):
     n_ch = chain.shape[0]
     r_n, c_n = z.shape[1], z.shape[2]
     up_key = np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32)
@@ -570,7 +584,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     res = np.zeros(9)
     res2 = np.zeros(9)
     scratch = np.zeros(3 * c_n + 16, dtype=np.float32)
-    pre = np.zeros((9, r_n, c_n + 1))
+    pre = np.zeros((9, r_n))
     full = True
     for r in range(r_n):
         for c in range(c_n):
@@ -595,7 +609,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         b = z[t]
         _gradients(b, g0, g1)
         if full:
-            _template_prefix(b, g0, g1, pre)
+            _template_sums(b, g0, g1, pre)
         dt = tchain[j] - tchain[j - 1]
         _kalman_predict(x, P, dt, q_acc)
         placed = False
@@ -722,7 +736,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             _upsample_extend(b, lor, wr, loc, wc, up_key)
             _kalman_copy(x, P, 4, 6)
             _kalman_copy(x, P, 0, 4)
-            have_old = r_n >= 4
+            have_old = use_old and r_n >= 4
             n_keys += 1
         pvar[j, 0] = P[0, 0]
         pvar[j, 1] = P[1, 1]
@@ -751,7 +765,7 @@ def _lagrange_taps(n):
 
 def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_across_px=None,
           reach_px=None, iterations=3, prior_px=0.5, min_ncc=0.5, sigma_acc_px=0.05,
-          model_px=0.02, start=None):
+          model_px=0.02, start=None, second_key=True):
     """Place frames by registering each against a key frame (see the module notes).
 
     Parameters
@@ -789,6 +803,10 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     start : int, optional
         Chain index tracking starts from (forwards to the end, then backwards to the
         beginning). Default: the frame of strongest texture in the middle third.
+    second_key : bool
+        Also register every frame against the previous key frame while it still overlaps
+        (its position is in the filter state, so key errors are averaged, not inherited).
+        Default True; False halves the work per frame at some cost in drift.
 
     Returns
     -------
@@ -812,6 +830,18 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         raise ValueError(f"plate_mask must be a boolean array of shape {(r_n, c_n)}; got "
                          f"dtype {m.dtype}, shape {m.shape}")
     m = np.ascontiguousarray(m != 0, dtype=np.float32)
+    # Only the band of rows and columns that holds usable plates is registered (a finger
+    # narrower than the strip leaves whole columns unused): less work, and the key frame's
+    # boundary extension then starts at the band's edge instead of interpolating across
+    # unused plates. Shifts do not depend on the crop.
+    rows_ok = np.flatnonzero(m.any(axis=1))
+    cols_ok = np.flatnonzero(m.any(axis=0))
+    if rows_ok.size >= 2 and cols_ok.size >= 8 and (rows_ok.size < r_n or cols_ok.size < c_n):
+        band = (slice(rows_ok[0], rows_ok[-1] + 1), slice(cols_ok[0], cols_ok[-1] + 1))
+        z_run = np.ascontiguousarray(z[:, band[0], band[1]])
+        m_run = np.ascontiguousarray(m[band])
+    else:
+        z_run, m_run = z, m
     if chain is None:
         chain = np.arange(t_n)
     chain = np.asarray(chain)
@@ -839,8 +869,10 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     n_ch = chain.size
     # The prior's weight in units of the residual variance: lam * sigma^2 = sigma^2 / prior^2.
     lam = 1.0 / prior_px ** 2
-    lor, wr = _lagrange_taps(r_n)
-    loc, wc = _lagrange_taps(c_n)
+    lor, wr = _lagrange_taps(z_run.shape[1])
+    loc, wc = _lagrange_taps(z_run.shape[2])
+    max_along = min(max_along, z_run.shape[1] - 1)
+    max_across = min(max_across, z_run.shape[2] - 4)
     if start is None:
         # Start where the finger is best seen: the frame of strongest texture in the middle
         # third of the chain. The ends (the fingertip arriving, the finger leaving) show
@@ -873,9 +905,10 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         s_ = np.zeros(k)
         l_ = np.zeros(k - 1, dtype=np.bool_)
         v_ = np.zeros((k, 2))
-        n_keys += _track(z, m, chain[sub], np.ascontiguousarray(times_sub), lor, wr, loc, wc,
+        n_keys += _track(z_run, m_run, chain[sub], np.ascontiguousarray(times_sub), lor, wr, loc, wc,
                          int(max_along), int(max_across), reach_px, int(iterations), lam,
-                         float(min_ncc), sigma_acc_px, model_px, p_, i_, r_, n_, s_, l_, v_)
+                         float(min_ncc), sigma_acc_px, model_px, bool(second_key), p_, i_, r_,
+                         n_, s_, l_, v_)
         pvar[sub[1:]] = v_[1:]
         pos[sub[1:]] = p_[1:]
         info[sub[1:]] = i_[1:]

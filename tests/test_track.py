@@ -177,6 +177,25 @@ def test_dead_plates_masked():
     assert (_err(res, pos) < 0.05).all()
 
 
+def test_finger_narrower_than_the_strip():
+    # Columns the finger never touched are masked: only the band of usable plates is
+    # registered, with its own boundary; the texture's sampling is the truth.
+    t = np.arange(120)
+    pos = np.stack([0.45 * t, 0.03 * t], 1)
+    z = _frames(pos, shape=(8, 128))
+    m = np.ones(z.shape[1:], bool)
+    m[:, :20] = False
+    m[:, 110:] = False
+    z[:, :, :20] = 0.0                  # flat, as prepared frames are where nothing touched
+    z[:, :, 110:] = 0.0
+    res = track(z, m)
+    assert res.link_ok.all()
+    assert (_err(res, pos) < 0.05).all()
+    # the same as tracking the band alone
+    band = track(np.ascontiguousarray(z[:, :, 20:110]), np.ones((8, 90), bool))
+    assert np.abs(band.positions - res.positions).max() < 1e-6
+
+
 @pytest.mark.parametrize("kw, exc, msg", [
     (dict(plate_mask=np.ones((3, 3), bool)), ValueError, "plate_mask must be a boolean array of shape"),
     (dict(chain=[3, 2, 5]), ValueError, "chain must hold at least two increasing"),
