@@ -42,7 +42,12 @@ def check_frames(frames, *, name="frames", min_frames=2, min_rows=2, max_rows=No
         raise ValueError(f"{name} must have at most {max_rows} rows per frame; got {r} (shape {arr.shape})")
     if c < min_cols:
         raise ValueError(f"{name} must have at least {min_cols} columns per frame; got {c} (shape {arr.shape})")
-    if arr.dtype.kind == "f" and not np.isfinite(arr).all():
+    # A sum is finite exactly when no NaN or inf went in, unless it overflowed: only then
+    # (or with a NaN/inf) is the elementwise check needed (no frame-sized temporary).
+    if arr.dtype.kind == "f":
+        with np.errstate(over="ignore", invalid="ignore"):
+            total_ok = bool(np.isfinite(arr.sum()))
+    if arr.dtype.kind == "f" and not total_ok and not np.isfinite(arr).all():
         n_bad = int(np.size(arr) - np.count_nonzero(np.isfinite(arr)))
         raise ValueError(f"{name} contains {n_bad} NaN or inf value(s); replace or mask them before stitching "
                          "(e.g. stripstitch.calibrate repairs dead plates)")
@@ -58,7 +63,12 @@ def check_frame(frame, *, shape=None, name="frame"):
         raise ValueError(f"{name} must have shape (n_rows, n_cols); got shape {arr.shape}")
     if shape is not None and arr.shape != tuple(shape):
         raise ValueError(f"{name} must have the shape of the first frame {tuple(shape)}; got {arr.shape}")
-    if arr.dtype.kind == "f" and not np.isfinite(arr).all():
+    # A sum is finite exactly when no NaN or inf went in, unless it overflowed: only then
+    # (or with a NaN/inf) is the elementwise check needed (no frame-sized temporary).
+    if arr.dtype.kind == "f":
+        with np.errstate(over="ignore", invalid="ignore"):
+            total_ok = bool(np.isfinite(arr.sum()))
+    if arr.dtype.kind == "f" and not total_ok and not np.isfinite(arr).all():
         raise ValueError(f"{name} contains NaN or inf values")
     return arr
 

@@ -368,9 +368,6 @@ def _texture_about(z, frames, static, ok):
     return out
 
 
-_TRACK_FAST = {}
-
-
 def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px, *, refit):
     """The key-frame tracker's placement (:mod:`stripstitch.track`); None when it cannot
     vouch for it (fewer than 4 rows, or more drift expected than 0.3 % of the swipe)."""
@@ -381,7 +378,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 
     def run(p):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
-                            sigma_acc_px=motion_prior_px, **_TRACK_FAST if not refit else {})
+                            sigma_acc_px=motion_prior_px)
 
     def spread(tr):
         out = np.empty((t_n, 2))
@@ -407,9 +404,12 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         return None
     link_ok = tr.link_ok
     placed = tr.reference >= 0
-    noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
-    strong = _strong_frames(prep, chain, noise)
-    link_gap = ~link_ok & strong[:-1] & strong[1:]
+    if link_ok.all():
+        link_gap = np.zeros(len(link_ok), dtype=bool)
+    else:
+        noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
+        strong = _strong_frames(prep, chain, noise)
+        link_gap = ~link_ok & strong[:-1] & strong[1:]
     # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
     positions = spread(tr)
     cpairs = np.stack([chain[:-1], chain[1:]], 1)

@@ -540,6 +540,11 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
             u0 = r - cf[0]
             for c in range(c_n):
                 k = r * c_n + c
+                wts[k] = float(w[t, r, c])
+                if wts[k] <= 0.0:
+                    # excluded (every later sum skips it): not sampled
+                    res[k] = mv[k] = gyv[k] = gxv[k] = zv[k] = 0.0
+                    continue
                 q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
                                              c - cf[1])
                 f0 = (q0 - lo[0]) / h[0]
@@ -560,8 +565,7 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
                           + stack[i0 + 1, i1, 2] * w10 + stack[i0 + 1, i1 + 1, 2] * w11)
                 zv[k] = float(z[t, r, c])
                 res[k] = zv[k] - mv[k]
-                wts[k] = float(w[t, r, c])
-                cnt += 1 if wts[k] > 0.0 else 0
+                cnt += 1
         nobs[t] = cnt
         # Robust scale from an even subsample of about 256 residuals: it only sets the Huber
         # threshold (its relative error ~8 %), and a full median per frame cost as much as

@@ -135,23 +135,30 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
     nc = 2 * c_n - 1
     kr = wr.shape[1]
     kc = wc.shape[1]
-    # rows: even rows are the plates, odd rows the mid-points (interior columns 2, 4, ...)
-    for i in range(r_n):
-        for c in range(c_n):
-            out[2 + 2 * i, 2 + 2 * c] = a[i, c]
-    for i in range(r_n - 1):
-        for c in range(c_n):
-            acc = 0.0
-            for k in range(kr):
-                acc += wr[i, k] * a[lor[i] + k, c]
-            out[3 + 2 * i, 2 + 2 * c] = acc
-    # columns: mid-points between the even columns, on every row
+    # Row by row through a contiguous buffer: even rows are the plates, odd rows the
+    # mid-points between them; then the mid-points between columns, on every row.
+    row = np.empty(c_n, dtype=np.float32)
     for r in range(nr):
+        i = r // 2
+        if r % 2 == 0:
+            for c in range(c_n):
+                row[c] = a[i, c]
+        else:
+            for c in range(c_n):
+                row[c] = 0.0
+            for k in range(kr):
+                wk = wr[i, k]
+                src = lor[i] + k
+                for c in range(c_n):
+                    row[c] += wk * a[src, c]
         rr = 2 + r
+        for c in range(c_n):
+            out[rr, 2 + 2 * c] = row[c]
         for j in range(c_n - 1):
-            acc = 0.0
+            acc = np.float32(0.0)
+            b0 = loc[j]
             for k in range(kc):
-                acc += wc[j, k] * out[rr, 2 + 2 * (loc[j] + k)]
+                acc += wc[j, k] * row[b0 + k]
             out[rr, 3 + 2 * j] = acc
     # Keys' boundary extension, two samples per side: rows, then columns (all rows)
     for c in range(2, 2 + nc):
