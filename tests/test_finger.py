@@ -24,7 +24,7 @@ from _singular import (count_minutiae, count_singular_points, estimate_orientati
                        fft_peak_period, poincare_index)
 
 from stripstitch.simulate.finger import (PATTERNS, SKINS, Finger, make_finger,  # noqa: E402
-                                         orientation_field)
+                                         orientation_field, texture_finger)
 
 _CACHE = {}
 
@@ -424,3 +424,174 @@ def test_finger_constructor_copies_and_checks_shapes():
         Finger(**{**kw, "contact": np.zeros((3, 5))})
     with pytest.raises(ValueError, match=r"ridge must be a 2-D \(H, W\) array"):
         Finger(**{**kw, "ridge": np.zeros(5)})
+
+
+# --------------------------------------------------------------------------------------------
+# texture_finger: a finger whose ridge map is a given image
+
+
+def _plane_wave(shape, period_px, theta_rad, phase=0.0):
+    # Ridges whose tangent is (along, across) = (sin theta, cos theta): the wave vector is the
+    # normal (cos theta, -sin theta) / period, so the Fourier transform of this image is a
+    # single pair of impulses at radius 1 / period (analytic).
+    a, x = np.mgrid[0:shape[0], 0:shape[1]].astype(float)
+    return np.cos(2 * np.pi * (a * np.cos(theta_rad) - x * np.sin(theta_rad)) / period_px + phase)
+
+
+@pytest.mark.parametrize("period_px, theta_deg", [(8.0, 30.0), (12.5, -60.0), (20.0, 75.0),
+                                                  (10.0, 0.0)])
+def test_texture_finger_period_and_orientation_of_a_plane_wave(period_px, theta_deg):
+    # Analytic: a plane wave has one period (Fourier) and one ridge tangent everywhere.
+    th = np.radians(theta_deg)
+    f = texture_finger(_plane_wave((192, 160), period_px, th, phase=0.3), pixel_um=20.0)
+    np.testing.assert_allclose(f.period_um, period_px * 20.0, rtol=0.02)
+    assert np.ptp(f.period_um) == 0.0                          # one period filled everywhere
+    inner = f.orientation_rad[48:-48, 48:-48]                  # away from the reflected borders
+    err = 0.5 * np.angle(np.exp(2j * (inner - th)))            # orientation difference mod pi
+    assert np.abs(err).max() < np.radians(0.5)
+    assert f.orientation_rad.min() >= -np.pi / 2 and f.orientation_rad.max() < np.pi / 2
+
+
+@pytest.mark.parametrize("highpass_px", [16.0, 5.0, None, 0.0])
+def test_texture_finger_ridge_map_matches_reference_libraries(highpass_px):
+    # Documented ridge map recomputed with other libraries: scikit-image's Gaussian filter for
+    # the illumination, scipy.stats.median_abs_deviation(scale="normal") for the robust spread
+    # (MAD / Phi^-1(3/4), Hampel 1974), then tanh.
+    from scipy.stats import median_abs_deviation
+    from skimage import data, filters
+    img = data.gravel()[100:196, 200:280].astype(float)
+    d = img if not highpass_px else img - filters.gaussian(img, sigma=highpass_px, mode="reflect",
+                                                            preserve_range=True)
+    d = d - np.median(d)
+    want = np.tanh(d / median_abs_deviation(d, axis=None, scale="normal"))
+    f = texture_finger(data.gravel()[100:196, 200:280], highpass_px=highpass_px)
+    np.testing.assert_allclose(f.ridge, want, rtol=1e-5, atol=1e-9)
+    # ridges and valleys cover equal areas (the median is the zero level)
+    assert abs(np.mean(f.ridge > 0) - 0.5) < 0.01
+
+
+def test_texture_finger_surface_relations():
+    # Same surface model as make_finger (documented in Finger): height = depth (1 + ridge) / 2;
+    # on the full pad the gap is the truncated valley max(depth - height - indent, 0) with
+    # indent = depth (0.15 + 0.35 pressure); the gap only grows off the pad.
+    from skimage import data
+    depth, pressure = 40.0, 0.3
+    f = texture_finger(data.grass()[:256, :224], pixel_um=30.0, valley_depth_um=depth,
+                       pressure=pressure)
+    assert f.shape == (256, 224) and f.spacing_um == 30.0
+    assert f.pattern == "texture" and f.skin == "normal"
+    assert f.cores_um.shape == (0, 2) and f.deltas_um.shape == (0, 2)
+    np.testing.assert_array_equal(f.fluid_um, 0.0)
+    assert f.ridge.min() >= -1.0 and f.ridge.max() <= 1.0
+    assert f.height_um.min() >= 0.0 and f.height_um.max() <= depth
+    np.testing.assert_allclose(f.height_um, depth * (1.0 + f.ridge) / 2.0, atol=1e-12)
+    assert f.contact.min() >= 0.0 and f.contact.max() <= 1.0 and f.contact[0, 0] == 0.0
+    assert f.air_gap_um.min() >= 0.0
+    pad = f.contact == 1.0
+    indent = depth * (0.15 + 0.35 * pressure)
+    assert pad.sum() > 0.2 * pad.size
+    np.testing.assert_allclose(f.air_gap_um[pad],
+                               np.maximum(depth - f.height_um - indent * f.contact, 0.0)[pad],
+                               atol=1e-12)
+    assert np.all(f.air_gap_um >= np.maximum(depth - f.height_um - indent * f.contact, 0.0))
+    touch = np.mean(f.air_gap_um[pad] < 0.5)                   # crests pressed flat
+    assert 0.15 < touch < 0.6
+
+
+def test_texture_finger_has_the_pad_of_make_finger():
+    # Same grid, same pressure: identical footprint and identical lift off the pad.
+    h, w, s, p = 120, 100, 25.4, 0.7
+    img = _plane_wave((h, w), 14.0, 0.4)
+    t = texture_finger(img, pixel_um=s, pressure=p)
+    m = make_finger("arch", size_mm=(h * s / 1000, w * s / 1000), spacing_um=s, pressure=p,
+                    rng=0)
+    assert m.shape == t.shape
+    np.testing.assert_array_equal(t.contact, m.contact)
+
+    def lift(f):
+        indent = f.valley_depth_um * (0.15 + 0.35 * f.pressure) * f.contact
+        return f.air_gap_um - np.maximum(f.valley_depth_um - f.height_um - indent, 0.0)
+
+    np.testing.assert_allclose(lift(t), lift(m), atol=1e-9)
+    assert lift(t).max() > 50.0                                # the skin curves away
+
+
+@pytest.mark.parametrize("pattern, kwargs, stats", [
+    # (contact sum, cells with contact 1, cells with contact 0, air-gap sum, air-gap sum off
+    # the pad, height sum) recorded from make_finger BEFORE the pad code was moved into
+    # _pad / _pressed_gap (same machine, numpy/scipy of the venv); the refactor must not
+    # change them
+    ("right_loop", dict(size_mm=(6.0, 5.0), rng=0),
+     (85534.29378368516, 55260, 65096, 10851567.802664854, 7840320.18969424,
+      4790758.550108615)),
+    ("arch", dict(size_mm=(5.0, 7.0), spacing_um=25.4, pressure=1.0, skin="dry", rng=3),
+     (38536.16029667659, 28170, 6596, 1537468.5739032922, 660531.1044919156,
+      1449346.7887868476)),
+])
+def test_make_finger_unchanged_by_pad_refactor(pattern, kwargs, stats):
+    f = make_finger(pattern, **kwargs)
+    c, g = f.contact, f.air_gap_um
+    got = (float(c.sum()), int((c == 1).sum()), int((c == 0).sum()), float(g.sum()),
+           float(g[c == 0].sum()), float(f.height_um.sum()))
+    assert got[1:3] == stats[1:3]
+    assert got == pytest.approx(stats, rel=1e-9)
+
+
+def test_texture_finger_accepts_any_real_dtype():
+    from skimage import data
+    img = data.brick()[:64, :80]                               # uint8
+    ref = texture_finger(img)
+    for other in (img.astype(np.int32), img.astype(np.float32), img.tolist()):
+        np.testing.assert_allclose(texture_finger(other).ridge, ref.ridge, atol=1e-12)
+
+
+@pytest.mark.parametrize("image, kwargs, exc, match", [
+    (np.zeros(64), {}, ValueError,
+     r"image must be a 2-D \(H, W\).*got 1 dimension\(s\), shape \(64,\)"),
+    (np.zeros((4, 32, 32)), {}, ValueError, r"image must be a 2-D .*got 3 dimension"),
+    (np.full((32, 32), np.nan), {}, ValueError, r"image must be finite; got 1024 NaN or inf"),
+    (np.zeros((15, 40)), {}, ValueError,
+     r"image must be at least 16 x 16 pixels; got shape \(15, 40\)"),
+    (np.zeros((32, 32), complex), {}, TypeError,
+     r"image must be a real numeric array .*complex128"),
+    ([["a"] * 20] * 20, {}, TypeError, r"image must be a real numeric array"),
+    (np.ones((32, 32)), {}, ValueError, r"image must have some contrast .*got a flat 32 x 32"),
+    (None, dict(pixel_um=0.0), ValueError, r"pixel_um must be a finite number > 0; got 0.0"),
+    (None, dict(pixel_um=250.0), ValueError, r"pixel_um must be in \(0, 200\] um; got 250.0"),
+    (None, dict(pixel_um="25.4"), TypeError, r"pixel_um must be a real number; got str"),
+    (None, dict(pixel_um=float("inf")), ValueError, r"pixel_um must be a finite number > 0"),
+    (None, dict(valley_depth_um=-5.0), ValueError, r"valley_depth_um must be a finite number > 0"),
+    (None, dict(pressure=1.5), ValueError, r"pressure must be in \[0.0, 1.0\]; got 1.5"),
+    (None, dict(highpass_px=-1.0), ValueError,
+     r"highpass_px must be a finite number >= 0; got -1.0"),
+])
+def test_texture_finger_bad_arguments(image, kwargs, exc, match):
+    if image is None:
+        image = _plane_wave((32, 32), 8.0, 0.0)
+    with pytest.raises(exc, match=match):
+        texture_finger(image, **kwargs)
+
+
+def test_texture_finger_finds_a_single_inf():
+    img = _plane_wave((32, 32), 8.0, 0.0)
+    img[3, 4] = np.inf
+    with pytest.raises(ValueError, match=r"image must be finite; got 1 NaN or inf"):
+        texture_finger(img)
+
+
+def test_texture_finger_gravel_swipe_end_to_end():
+    # A real photographic texture (scikit-image's bundled gravel image) at 25.4 um per pixel:
+    # single-pixel detail is finer than the 50.8 um sensor pitch. The capture simulator must
+    # take it like any finger: entry off the pad, full contact, textured frames.
+    from skimage import data
+    from stripstitch import simulate
+    f = texture_finger(data.gravel()[:256, :224], pixel_um=25.4)
+    cap = simulate.swipe(finger=f, n_rows=8, n_cols=48, frame_rate_hz=4000.0,
+                         speed_mm_s=200.0, snr_db=30.0, exposure_steps=1, rng=0)
+    assert cap.frames.shape[1:] == (8, 48) and cap.frames.dtype == np.uint8
+    assert 60 <= cap.frames.shape[0] <= 200
+    assert cap.contact[0] == 0.0 and cap.contact.max() == 1.0
+    assert cap.snr_db == pytest.approx(30.0, abs=1e-6)
+    assert cap.finger is f and cap.finger_info["pattern"] == "texture"
+    full = cap.frames[cap.contact == 1.0].astype(float)
+    assert full.std(axis=(1, 2)).min() > 5.0                   # texture, not a flat grey

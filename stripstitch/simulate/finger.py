@@ -11,6 +11,9 @@ The finger is built in four steps, each from a published model or a stated assum
 4. the physical surface: a rounded ridge height profile, an elliptical contact pad whose size
    grows with pressure, the skin curving away from the sensor off the pad, and the skin
    condition (normal, dry, wet).
+
+:func:`texture_finger` puts a given grey-level image (e.g. a photographic texture) in place of
+steps 1-3 and keeps step 4 (normal skin).
 """
 
 from __future__ import annotations
@@ -24,7 +27,7 @@ from scipy import ndimage
 
 from .._validate import check_array, check_choice, check_in_range, check_positive, check_real
 
-__all__ = ["PATTERNS", "SKINS", "Finger", "make_finger", "orientation_field"]
+__all__ = ["PATTERNS", "SKINS", "Finger", "make_finger", "orientation_field", "texture_finger"]
 
 #: Pattern classes :func:`make_finger` can draw.
 PATTERNS = ("arch", "tented_arch", "left_loop", "right_loop", "whorl", "twin_loop")
@@ -62,7 +65,7 @@ class Finger:
     Attributes
     ----------
     pattern : str
-        Pattern class, one of :data:`PATTERNS`.
+        Pattern class, one of :data:`PATTERNS`, or ``"texture"`` (:func:`texture_finger`).
     spacing_um : float
         Grid spacing of every map, micrometres.
     ridge : (H, W) ndarray of float64
@@ -436,6 +439,49 @@ def _monogenic(field):
 
 
 # ---------------------------------------------------------------------------------------------
+# pad footprint and pressed air gap (shared by make_finger and texture_finger)
+
+
+def _pad(h, w, spacing, pressure):
+    """(contact, lift) of the elliptical contact pad centred on an (h, w) grid of ``spacing`` um.
+
+    contact is 1 on the pad, 0 off it, a smoothstep across a 0.4 mm edge; lift (um) is the
+    skin curving away from the sensor past the start of the edge, s^2 / (2 R), R = 8 mm.
+    """
+    length_um, width_um = h * spacing, w * spacing
+    fa = (np.arange(h) * spacing)[:, None]
+    fx = (np.arange(w) * spacing)[None, :]
+    half_x = 0.5 * width_um * (0.55 + 0.4 * pressure)
+    half_a = 0.5 * length_um * (0.6 + 0.35 * pressure)
+    ya = fa - 0.5 * (length_um - spacing)
+    yx = fx - 0.5 * (width_um - spacing)
+    u, v = yx / half_x, ya / half_a
+    rho = np.sqrt(u * u + v * v)
+    grad = np.sqrt((u / half_x) ** 2 + (v / half_a) ** 2)
+    # first-order distance to the ellipse, exact on its axes; finite at the centre
+    dist = np.where(rho > 1e-9, (rho - 1.0) * rho / np.maximum(grad, 1e-30),
+                    -min(half_x, half_a))
+    t = np.clip((dist + _PAD_EDGE_UM) / (2 * _PAD_EDGE_UM), 0.0, 1.0)
+    contact = 1.0 - t * t * (3.0 - 2.0 * t)                        # smoothstep
+    lift = np.maximum(dist + _PAD_EDGE_UM, 0.0) ** 2 / (2 * _FINGER_RADIUS_UM)
+    return contact, lift
+
+
+def _pressed_gap(height, depth, pressure, contact, lift):
+    """Air gap (um) of normal skin pressed on a flat sensor: truncated valleys plus the lift.
+
+    Pressed skin flattens where the undeformed surface would pass through the flat sensor
+    (truncation model of a soft surface on a rigid flat, as in Greenwood & Williamson's
+    treatment of contact; from memory): on the pad the skin is pushed in by an indentation
+    that grows with pressure, so ridge crests become contact plateaus. At pressure 0.5 the
+    plateaus are about 40 % of the ridge period (about 180 um at 460 um), inside the 100 to
+    300 um ridge widths of the Handbook of Fingerprint Recognition (2nd ed., ch. 3).
+    """
+    indent = depth * (_INDENT_MIN + _INDENT_SPAN * pressure) * contact
+    return np.maximum((depth - height) - indent, 0.0) + lift
+
+
+# ---------------------------------------------------------------------------------------------
 # public generator
 
 
@@ -610,29 +656,9 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
     theta = _orientation(pattern, fa, fx, cores, deltas, length_um, width_um)
     height = depth * 0.5 * (1.0 + ridge)
 
-    # contact pad and the skin curving away off the pad
-    half_x = 0.5 * width_um * (0.55 + 0.4 * pressure)
-    half_a = 0.5 * length_um * (0.6 + 0.35 * pressure)
-    ya = fa - 0.5 * (length_um - spacing)
-    yx = fx - 0.5 * (width_um - spacing)
-    u, v = yx / half_x, ya / half_a
-    rho = np.sqrt(u * u + v * v)
-    grad = np.sqrt((u / half_x) ** 2 + (v / half_a) ** 2)
-    # first-order distance to the ellipse, exact on its axes; finite at the centre
-    dist = np.where(rho > 1e-9, (rho - 1.0) * rho / np.maximum(grad, 1e-30),
-                    -min(half_x, half_a))
-    t = np.clip((dist + _PAD_EDGE_UM) / (2 * _PAD_EDGE_UM), 0.0, 1.0)
-    contact = 1.0 - t * t * (3.0 - 2.0 * t)                        # smoothstep
-    lift = np.maximum(dist + _PAD_EDGE_UM, 0.0) ** 2 / (2 * _FINGER_RADIUS_UM)
-
-    # Pressed skin flattens where the undeformed surface would pass through the flat sensor
-    # (truncation model of a soft surface on a rigid flat, as in Greenwood & Williamson's
-    # treatment of contact; from memory): on the pad the skin is pushed in by an indentation
-    # that grows with pressure, so ridge crests become contact plateaus. At pressure 0.5 the
-    # plateaus are about 40 % of the ridge period (about 180 um at 460 um), inside the 100 to
-    # 300 um ridge widths of the Handbook of Fingerprint Recognition (2nd ed., ch. 3).
-    indent = depth * (_INDENT_MIN + _INDENT_SPAN * pressure) * contact
-    air_gap = np.maximum((depth - height) - indent, 0.0) + lift
+    # contact pad, the skin curving away off it, and the crests flattened on it
+    contact, lift = _pad(h, w, spacing, pressure)
+    air_gap = _pressed_gap(height, depth, pressure, contact, lift)
     fluid = np.zeros((h, w))
     if skin == "dry":
         # patches about a ridge width across (150 um correlation length, assumed), drawn on
@@ -654,6 +680,203 @@ def make_finger(pattern="right_loop", *, size_mm=(20.0, 14.0), spacing_um=12.7,
                          contact=contact, air_gap_um=np.maximum(air_gap, 0.0), fluid_um=fluid,
                          orientation_rad=theta, period_um=period, cores_um=cores,
                          deltas_um=deltas, valley_depth_um=depth, pressure=pressure, skin=skin)
+
+
+# ---------------------------------------------------------------------------------------------
+# fingers from a given texture
+
+
+_MAD_TO_STD = 1.4826          # MAD of a normal distribution x 1.4826 = its std (1 / Phi^-1(3/4))
+_MAX_PIXEL_UM = 200.0         # coarsest accepted texture pixel (4 sensor pitches of 50.8 um)
+_MIN_IMAGE_PX = 16            # smallest accepted image side
+_SPECTRUM_CROP_PX = 1024      # the period is estimated on a central crop at most this big
+
+
+def texture_finger(image, *, pixel_um=25.4, valley_depth_um=50.0, pressure=0.5, highpass_px=16.0):
+    """Build a fingertip surface whose ridge map is a given grey-level image.
+
+    The image (e.g. a photographic texture such as ``skimage.data.gravel()``) replaces the
+    grown ridge pattern of :func:`make_finger`; the pad footprint, the skin lifting off the pad,
+    the indentation and the air gap are those of :func:`make_finger`, for normal skin.
+
+    Parameters
+    ----------
+    image : (H, W) array_like of real numbers
+        Grey levels, bright = ridge crest; rows (axis 0) run along the finger, i.e. along the
+        swipe, row 0 at the fingertip. Any real dtype (uint, int, float), finite, at least
+        16 x 16, at most 4e7 pixels.
+    pixel_um : float, optional
+        Size of one image pixel on the finger, um, in (0, 200]; it is the grid spacing of the
+        result (one pixel = one grid cell). Default is 25.4 (half the 50.8 um, 500 ppi pitch,
+        so single-pixel detail is finer than the sensor pitch).
+    valley_depth_um : float, optional
+        Height from the darkest valley floor to the brightest crest, um. Default is 50.0.
+    pressure : float, optional
+        Pressure in [0, 1]; the contact pad grows with it. Default is 0.5.
+    highpass_px : float or None, optional
+        Std of the Gaussian blur, in pixels, subtracted to remove slow illumination changes
+        (structure coarser than about 2 pi ``highpass_px`` pixels is suppressed). None or 0
+        keeps the image as it is (only its median is removed). Default is 16.0.
+
+    Returns
+    -------
+    Finger
+        ``pattern="texture"``, ``skin="normal"``, ``spacing_um=pixel_um``, ``fluid_um`` all
+        zero, no cores or deltas; ``orientation_rad`` and ``period_um`` estimated from the
+        image (see Notes).
+
+    Raises
+    ------
+    ValueError
+        For an image of the wrong shape, too small or too big, with NaN or inf or without
+        contrast, or a number out of range (the message names the argument).
+    TypeError
+        For a non-numeric image or an argument of the wrong kind.
+
+    Notes
+    -----
+    *Ridge map*: the image minus its Gaussian blur of std ``highpass_px`` (reflected borders),
+    minus the median, divided by the robust spread 1.4826 x MAD (median absolute deviation,
+    the consistent estimate of a normal std [2]_; the plain std if the MAD is 0), squashed
+    smoothly into [-1, 1] by tanh: one robust std maps to tanh(1) = 0.76. Half of the pixels
+    lie on each side of 0, so ridges and valleys cover about equal areas as on a finger.
+    The height is ``valley_depth_um (1 + ridge) / 2``, the convention of :func:`make_finger`.
+    *Surface*: the elliptical pad centred on the grid, its soft edge, the lift of the skin off
+    it and the flattening of the crests by the pressure-dependent indentation are exactly
+    those of :func:`make_finger` (shared code); skin condition normal only.
+    *Orientation*: the gradient structure tensor [1]_ of the high-passed image (Gaussian
+    derivatives of std 1 pixel, tensor averaged with a Gaussian of std one dominant period,
+    bounded to 2..32 pixels), in the convention of :class:`Finger` (ridge tangent from axis 1
+    towards axis 0, in [-pi/2, pi/2)). On an isotropic texture the orientation is defined
+    but carries little meaning; where the image is flat it is arbitrary (-pi/2).
+    *Period*: one dominant period filled everywhere: the peak of the radially averaged power
+    spectrum of the Hann-windowed, high-passed image (central crop of at most 1024 x 1024
+    pixels; the two lowest frequency rings are skipped), refined by the power-weighted mean
+    radial frequency within two rings of the peak; accurate to about 1 % on a sinusoid.
+
+    Such a finger is a test object for the stitcher on real, irregular texture, including
+    detail finer than the sensor pitch; like every synthetic print of this module it is for
+    testing only.
+
+    References
+    ----------
+    .. [1] J. Bigun and G. H. Granlund, "Optimal orientation detection of linear symmetry",
+       Proc. 1st International Conference on Computer Vision (ICCV), London, 1987,
+       pp. 433-438 (details from memory).
+    .. [2] F. R. Hampel, "The influence curve and its role in robust estimation", Journal of
+       the American Statistical Association 69(346):383-393, 1974 (details from memory).
+
+    Examples
+    --------
+    A sinusoid of period 16 pixels whose ridges run at 30 degrees from axis 1 towards axis 0:
+
+    >>> import numpy as np
+    >>> a, x = np.mgrid[0:64, 0:64]
+    >>> th = np.radians(30.0)
+    >>> f = texture_finger(np.cos(2 * np.pi * (a * np.cos(th) - x * np.sin(th)) / 16.0))
+    >>> f.shape, f.pattern, f.spacing_um
+    ((64, 64), 'texture', 25.4)
+    >>> round(float(f.period_um[0, 0] / f.spacing_um)), round(float(np.degrees(
+    ...     np.median(f.orientation_rad[16:48, 16:48]))))      # period (pixels), angle (deg)
+    (16, 30)
+
+    A photographic texture bundled with scikit-image:
+
+    >>> from skimage import data
+    >>> g = texture_finger(data.gravel()[:128, :128], pixel_um=25.4)
+    >>> g.size_mm, bool(g.air_gap_um.min() >= 0.0 and g.fluid_um.max() == 0.0)
+    ((3.2512, 3.2512), True)
+    """
+    img = _texture_image(image)
+    spacing = check_positive(pixel_um, name="pixel_um")
+    if spacing > _MAX_PIXEL_UM:
+        raise ValueError(f"pixel_um must be in (0, {_MAX_PIXEL_UM:g}] um; got {pixel_um!r}")
+    depth = check_positive(valley_depth_um, name="valley_depth_um")
+    pressure = check_in_range(pressure, 0.0, 1.0, name="pressure")
+    sigma = check_positive(highpass_px, name="highpass_px", allow_zero=True, allow_none=True)
+    h, w = img.shape
+
+    # remove the slow illumination (reflected borders: no dark frame around the image)
+    if sigma:
+        img = img - ndimage.gaussian_filter(img, sigma, mode="reflect")
+    z = img - np.median(img)
+    spread = _MAD_TO_STD * float(np.median(np.abs(z)))
+    if not spread > 0.0:
+        spread = float(z.std())     # e.g. a two-level image with one level in the majority
+    if not spread > 0.0:
+        raise ValueError("image must have some contrast (after the high-pass of highpass_px="
+                         f"{highpass_px!r}); got a flat {h} x {w} image")
+    z /= spread
+    ridge = np.tanh(z)              # smooth and bounded: heights stay in [0, depth]
+    height = depth * 0.5 * (1.0 + ridge)
+
+    contact, lift = _pad(h, w, spacing, pressure)
+    air_gap = _pressed_gap(height, depth, pressure, contact, lift)
+
+    period_px = _dominant_period_px(z)
+    theta = _structure_orientation(z, min(max(period_px, 2.0), 32.0))
+    return Finger._adopt(pattern="texture", spacing_um=spacing, ridge=ridge, height_um=height,
+                         contact=contact, air_gap_um=air_gap, fluid_um=np.zeros((h, w)),
+                         orientation_rad=theta, period_um=np.full((h, w), period_px * spacing),
+                         cores_um=np.zeros((0, 2)), deltas_um=np.zeros((0, 2)),
+                         valley_depth_um=depth, pressure=pressure, skin="normal")
+
+
+def _texture_image(image):
+    """The image as a float64 (H, W) array, after checking kind, shape, size and finiteness."""
+    arr = np.asarray(image)
+    if arr.dtype.kind not in "uif":
+        raise TypeError(f"image must be a real numeric array (uint, int or float); got dtype "
+                        f"{arr.dtype} ({type(image).__name__})")
+    if arr.ndim != 2:
+        raise ValueError(f"image must be a 2-D (H, W) grey-level array with rows along the "
+                         f"finger; got {arr.ndim} dimension(s), shape {arr.shape}")
+    if min(arr.shape) < _MIN_IMAGE_PX:
+        raise ValueError(f"image must be at least {_MIN_IMAGE_PX} x {_MIN_IMAGE_PX} pixels; "
+                         f"got shape {arr.shape}")
+    if arr.size > 40_000_000:
+        raise ValueError(f"image must have at most 4e7 pixels; got shape {arr.shape}")
+    arr = arr.astype(np.float64)     # own copy, also for float64 input
+    if not np.isfinite(arr).all():
+        n_bad = int(arr.size - np.count_nonzero(np.isfinite(arr)))
+        raise ValueError(f"image must be finite; got {n_bad} NaN or inf value(s)")
+    return arr
+
+
+def _dominant_period_px(field):
+    """Dominant period (pixels): peak of the radially averaged power spectrum of ``field``."""
+    h, w = field.shape
+    ch, cw = min(h, _SPECTRUM_CROP_PX), min(w, _SPECTRUM_CROP_PX)
+    a = field[(h - ch) // 2:(h - ch) // 2 + ch, (w - cw) // 2:(w - cw) // 2 + cw]
+    # Hann window against leakage from the borders; remove the windowed mean so DC is 0
+    win = np.outer(np.hanning(ch), np.hanning(cw))
+    a = (a - (a * win).sum() / win.sum()) * win
+    power = (np.abs(sp_fft.rfft2(a)) ** 2).ravel()
+    r = np.hypot(sp_fft.fftfreq(ch)[:, None], sp_fft.rfftfreq(cw)[None, :]).ravel()
+    dr = 1.0 / min(ch, cw)                       # ring width: the coarser frequency step
+    ring = np.rint(r / dr).astype(np.intp)
+    n_ring = int(0.5 / dr) + 1                   # up to Nyquist along the shorter side
+    keep = ring < n_ring
+    profile = (np.bincount(ring[keep], power[keep], n_ring)
+               / np.maximum(np.bincount(ring[keep], minlength=n_ring), 1))
+    # rings 0 and 1 hold the DC and the Hann main lobe around it
+    k = 2 + int(np.argmax(profile[2:]))
+    near = keep & (np.abs(r / dr - k) <= 2.0)
+    f = float((r[near] * power[near]).sum() / max(float(power[near].sum()), 1e-300))
+    return 1.0 / f if f > 0.0 else 1.0 / (k * dr)
+
+
+def _structure_orientation(field, sigma_px):
+    """Ridge orientation (Finger convention) from the gradient structure tensor of ``field``."""
+    g_a = ndimage.gaussian_filter(field, 1.0, order=(1, 0), mode="reflect")
+    g_x = ndimage.gaussian_filter(field, 1.0, order=(0, 1), mode="reflect")
+    j_xx = ndimage.gaussian_filter(g_x * g_x, sigma_px, mode="reflect")
+    j_aa = ndimage.gaussian_filter(g_a * g_a, sigma_px, mode="reflect")
+    j_ax = ndimage.gaussian_filter(g_a * g_x, sigma_px, mode="reflect")
+    # doubled angle of the dominant gradient (from axis 1 towards axis 0): averaging the
+    # tensor, not the gradients, keeps opposite gradients across a ridge from cancelling
+    phi = 0.5 * np.arctan2(2.0 * j_ax, j_xx - j_aa)
+    return _wrap_half_pi(phi + 0.5 * np.pi)     # ridges run perpendicular to the gradient
 
 
 def _orientation(pattern, along, across, cores, deltas, length_um, width_um):
