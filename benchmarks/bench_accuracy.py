@@ -56,6 +56,20 @@ SUITE = {
                            speed_mm_s=100.0, snr_db=30.0, drop_frames=tuple(range(150, 156))),
     "slanted_human_twin": dict(pattern="twin_loop", profile="human", n_rows=8, n_cols=160,
                                frame_rate_hz=3000.0, speed_mm_s=120.0, snr_db=20.0, skew_deg=10.0),
+    # the low end of the 12-40 dB range, on both target geometries
+    "snr12_8x192_4k": dict(pattern="whorl", n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                           speed_mm_s=100.0, snr_db=12.0),
+    "snr12_human_16x128_2k": dict(pattern="left_loop", profile="human", n_rows=16, n_cols=128,
+                                  frame_rate_hz=2000.0, speed_mm_s=120.0, snr_db=12.0),
+    # real photographic textures (bundled with scikit-image) as the finger surface, at 25.4 um
+    # per image pixel: detail finer than the plates (simulate.texture_finger)
+    "photo_gravel_8x192": dict(texture="gravel", n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                               speed_mm_s=100.0, snr_db=25.0),
+    "photo_grass_human_16x128": dict(texture="grass", profile="human", n_rows=16, n_cols=128,
+                                     frame_rate_hz=2000.0, speed_mm_s=100.0, snr_db=20.0,
+                                     skew_deg=4.0),
+    "photo_brick_8x192_snr12": dict(texture="brick", n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                                    speed_mm_s=80.0, snr_db=12.0),
 }
 QUICK = ("steady_8x192_4k", "steady_16x128_2k", "human_stall_backtrack", "too_fast_16x128_2k")
 FINGER_MM = (12.0, 10.0)
@@ -66,8 +80,16 @@ def _finger(pattern, seed):
     return simulate.make_finger(pattern, size_mm=FINGER_MM, rng=seed)
 
 
+@functools.lru_cache(maxsize=None)
+def _texture_finger(texture):
+    import skimage.data
+    return simulate.texture_finger(getattr(skimage.data, texture)(), pixel_um=25.4)
+
+
 def make_capture(name, seed=0):
     p = dict(SUITE[name])
+    if "texture" in p:
+        return simulate.swipe(finger=_texture_finger(p.pop("texture")), rng=seed, **p)
     pattern = p.pop("pattern")
     return simulate.swipe(pattern, finger=_finger(pattern, 1000 + list(SUITE).index(name)),
                           rng=seed, **p)

@@ -220,8 +220,10 @@ def test_fast_mode_uses_the_tracker_and_hands_short_strips_over():
     assert res.options["placement"] == "key-frame tracker"
     est = res.positions - res.positions[0]
     assert np.abs(est - pos).max() < 0.1
-    # Three rows: too few for the tracker's two key frames; the pairwise path takes over.
-    pos3 = np.stack([0.3 * np.arange(150), np.zeros(150)], 1)
-    res3 = stitch(_frames(pos3, shape=(3, 96)) * 20 + 100, mode="fast")
-    assert res3.options["placement"] == "multi-baseline pairs"
-    assert np.abs((res3.positions - res3.positions[0]) - pos3).max() < 0.5
+    # Three and six rows: too little overlap per key frame for the tracker (fewer than 8
+    # rows); the pairwise path takes over.
+    for r_n in (3, 6):
+        pos3 = np.stack([0.3 * np.arange(150), np.zeros(150)], 1)
+        res3 = stitch(_frames(pos3, shape=(r_n, 96)) * 20 + 100, mode="fast")
+        assert res3.options["placement"] == "multi-baseline pairs"
+        assert np.abs((res3.positions - res3.positions[0]) - pos3).max() < 0.5
