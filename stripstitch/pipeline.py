@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import numba
 import numpy as np
-from scipy import ndimage
 from scipy.special import erf
 
 from . import mosaic as _mosaic
@@ -625,28 +624,16 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     mos = _mosaic.fuse(values, positions, angles_deg, weights=w)
     del values, w
     img = np.nan_to_num(mos.image, nan=level)
-    seen = np.isfinite(mos.image).astype(float)
+    seen = np.isfinite(mos.image).astype(np.float64)
     t_n, r_n, c_n = x.shape
-    # Per-plate sums for the line fit reading = g * ref + o, accumulated over chunks of
-    # frames so memory does not grow with the swipe.
-    n = np.zeros((r_n, c_n))
-    sr = np.zeros((r_n, c_n))
-    sx = np.zeros((r_n, c_n))
-    srr = np.zeros((r_n, c_n))
-    srx = np.zeros((r_n, c_n))
-    step = max(1, 200_000 // (r_n * c_n))
-    for s0 in range(0, t_n, step):
-        sl = slice(s0, min(t_n, s0 + step))
-        q = _mosaic.frame_coordinates(x[sl].shape, positions[sl], angles_deg[sl]) + mos.origin_px
-        ref = ndimage.map_coordinates(img, [q[..., 0], q[..., 1]], order=1, mode="nearest")
-        cov = ndimage.map_coordinates(seen, [q[..., 0], q[..., 1]], order=1, mode="constant") > 0.99
-        m = (cov & prep.contact[sl, None, None]).astype(np.float64)
-        xs = x[sl]
-        n += m.sum(0)
-        sr += (ref * m).sum(0)
-        sx += (xs * m).sum(0)
-        srr += (ref * ref * m).sum(0)
-        srx += (ref * xs * m).sum(0)
+    # Per-plate sums for the line fit reading = g * ref + o over the contact frames, the fused
+    # image sampled bilinearly where each plate looked (one compiled pass, nothing per frame
+    # kept).
+    n, sr, sx, srr, srx = (np.zeros((r_n, c_n)) for _ in range(5))
+    th = np.deg2rad(np.asarray(angles_deg, dtype=np.float64))
+    _plate_line_sums(x, prep.contact, np.asarray(positions, dtype=np.float64), np.cos(th),
+                     np.sin(th), np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0]),
+                     np.asarray(mos.origin_px, dtype=np.float64), img, seen, n, sr, sx, srr, srx)
     if (n[prep.plate_ok] < 8).any():
         return None
     nn = np.maximum(n, 1.0)
@@ -658,9 +645,65 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     gain = np.where(prep.plate_ok, np.clip(gain, 0.5, 2.0), 1.0)
     offset = xx - gain * rx
     z = np.empty(x.shape, dtype=np.float32)
+    step = max(1, 200_000 // (r_n * c_n))
     for s0 in range(0, t_n, step):                       # chunks: no frame-sized doubles
         sl = slice(s0, min(t_n, s0 + step))
         z[sl] = ((x[sl] - offset) / gain - level) / scale
     z[:, ~prep.plate_ok] = 0.0
     return _reg.Prepared(z=z, plate_ok=prep.plate_ok, offset=offset, gain=gain * scale,
                          contact=prep.contact, texture=prep.texture, noise_sigma=prep.noise_sigma)
+
+
+@numba.njit(**JIT)
+def _plate_line_sums(x, contact, pos, cos_t, sin_t, cf, origin, img, seen, n, sr, sx, srr, srx):
+    """For every plate, sums over the contact frames of 1, ref, reading, ref^2, ref * reading,
+    with ref the image sampled bilinearly where the plate looked (indices clamped at the
+    border, as scipy.ndimage.map_coordinates order 1 mode "nearest"), wherever the bilinear
+    sample of ``seen`` (zero outside, mode "constant") exceeds 0.99 (in place)."""
+    t_n, r_n, c_n = x.shape
+    hh, ww = img.shape
+    for t in range(t_n):
+        if not contact[t]:
+            continue
+        ct = cos_t[t]
+        st = sin_t[t]
+        for r in range(r_n):
+            u0 = r - cf[0]
+            for c in range(c_n):
+                q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
+                                             c - cf[1])
+                q0 += origin[0]
+                q1 += origin[1]
+                i0 = int(np.floor(q0))
+                i1 = int(np.floor(q1))
+                a0 = q0 - i0
+                a1 = q1 - i1
+                cov = 0.0
+                for di in range(2):
+                    k0 = i0 + di
+                    if k0 < 0 or k0 >= hh:
+                        continue
+                    wa = a0 if di == 1 else 1.0 - a0
+                    for dj in range(2):
+                        k1 = i1 + dj
+                        if k1 < 0 or k1 >= ww:
+                            continue
+                        cov += wa * (a1 if dj == 1 else 1.0 - a1) * seen[k0, k1]
+                if cov <= 0.99:
+                    continue
+                c0 = min(max(q0, 0.0), hh - 1.0)
+                c1 = min(max(q1, 0.0), ww - 1.0)
+                j0 = int(np.floor(c0))
+                j1 = int(np.floor(c1))
+                b0 = c0 - j0
+                b1 = c1 - j1
+                jp0 = min(j0 + 1, hh - 1)
+                jp1 = min(j1 + 1, ww - 1)
+                ref = ((1.0 - b0) * ((1.0 - b1) * img[j0, j1] + b1 * img[j0, jp1])
+                       + b0 * ((1.0 - b1) * img[jp0, j1] + b1 * img[jp0, jp1]))
+                v = float(x[t, r, c])
+                n[r, c] += 1.0
+                sr[r, c] += ref
+                sx[r, c] += v
+                srr[r, c] += ref * ref
+                srx[r, c] += ref * v
