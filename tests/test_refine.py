@@ -238,6 +238,11 @@ def test_compiled_moment_splat_matches_the_formula(turned):
                                    wk * v, wk * dy * v, wk * dx * v)):
                 np.add.at(ref[k], (i0 + di, i1 + dj), m)
     np.testing.assert_allclose(np.moveaxis(acc, -1, 0), ref, rtol=1e-9, atol=1e-12)
+    # the single-precision accumulator the refinement uses: the same sums to float32 rounding
+    acc32 = np.zeros(shape + (9,), np.float32)
+    _splat_moments(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang),
+                   np.array([(r_n - 1) / 2, (c_n - 1) / 2]), lo, h, acc32)
+    np.testing.assert_allclose(np.moveaxis(acc32, -1, 0), ref, rtol=1e-5, atol=1e-6)
 
 
 @pytest.mark.parametrize("r_n, c_n", [(5, 11), (4, 131)])
