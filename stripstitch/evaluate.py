@@ -352,6 +352,10 @@ def capture_noise_sigma(capture):
     Uses the simulator's SNR definition, 20 log10(std of the ideal signal over in-contact
     plates / noise rms): sigma = std(ideal frames with contact >= 0.5) / 10^(snr_db / 20).
     """
+    if getattr(capture, "ideal_frames", None) is None:
+        raise ValueError("capture.ideal_frames must be the noise-free frames; got None (a capture "
+                         "saved without them, e.g. to_npz(ideal_frames=False), has no noise "
+                         "reference)")
     ideal = np.asarray(capture.ideal_frames, dtype=np.float64)
     contact = np.asarray(getattr(capture, "contact", np.ones(ideal.shape[0])), dtype=np.float64)
     sel = ideal[contact >= 0.5] if np.any(contact >= 0.5) else ideal
@@ -1128,7 +1132,9 @@ def evaluate(result, capture, *, crb=True, image=True, distortion=True, block_px
     angles = getattr(result, "angles", None)
     traj = trajectory_errors(pos, angles, tpos, getattr(capture, "angles", None),
                              frames=scored, reference_frame=ref)
-    bounds = pair_crb(capture) if crb else None
+    # The bound needs the noise-free frames; a capture saved without them is scored without it.
+    bounds = pair_crb(capture) if crb and getattr(capture, "ideal_frames", None) is not None \
+        else None
     pitch = float(getattr(capture, "pitch_um", 50.8))
     sim = dist = pt = pe = None
     ratio = np.full(2, np.nan)

@@ -848,10 +848,11 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         Remove the smoothed stretch, shear (and twist) from the trajectory. Default True.
     rotation : bool
         Read the twist and correct the angles with it. Default True.
-    min_turn_deg : float
+    min_turn_deg : float or None
         The angles are corrected only if the first pass's twist turns the frames with finger
         by at least this much over the swipe, and by ten times its white-noise standard
-        error (else the given angles stand). Default 1.0.
+        error (else the given angles stand). None: always corrected (a turn established
+        earlier). Default 1.0.
     tile_px : float
         Length along the swipe of the tiles the model is built in (memory follows the tile,
         not the swipe; smaller tiles also stay in cache). Default 256.
@@ -948,8 +949,9 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             dk = np.abs(np.concatenate([d[:, 0], [0.0]]))
             raw = float(np.sum(np.where(ok_t, tw * dk, 0.0)))
             se = float(np.sqrt(np.sum(np.where(ok_t, tw_var, 0.0) * dk ** 2)))
-            use_twist = (bool(active.any()) and np.degrees(np.ptp(probe[active])) >= float(min_turn_deg)
-                         and abs(raw) >= 10.0 * se)
+            use_twist = bool(active.any()) and (
+                min_turn_deg is None
+                or (np.degrees(np.ptp(probe[active])) >= float(min_turn_deg) and abs(raw) >= 10.0 * se))
         if not use_twist:
             turn[:] = 0.0
         if not correct_stretch:

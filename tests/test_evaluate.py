@@ -338,6 +338,18 @@ def test_evaluate_perfect_stand_in_scores_perfectly():
     json.dumps(d)                                         # JSON-ready
 
 
+def test_evaluate_capture_without_ideal_frames_skips_the_bound():
+    # A capture saved without its noise-free frames (demo data are) is still scored; the
+    # Cramer-Rao bound needs them and is left out, and asking for it names the missing field.
+    cap = _fake_capture(n_frames=40, step=2, seed=11)
+    bare = SimpleNamespace(**{**vars(cap), "ideal_frames": None})
+    d = ev.evaluate(_perfect_result(cap), bare).to_dict()
+    assert d["along_rms_px"] == 0 and d["span_error_pct"] == 0
+    assert d["crb_rms_along_px"] is None or not np.isfinite(d["crb_rms_along_px"])
+    with pytest.raises(ValueError, match="ideal_frames"):
+        ev.pair_crb(bare)
+
+
 def test_evaluate_stretched_stand_in_reports_factor():
     # A reconstruction stretched by k along the swipe (positions k * truth, image stretched
     # by k about frame 0) reports span error 100 (k - 1) % and an along period ratio ~ k.
