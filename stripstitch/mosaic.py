@@ -133,6 +133,14 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
             raise ValueError(f"weights must have shape {(r_n, c_n)} or {x.shape}; got {w.shape}")
         if not np.isfinite(w).all() or (w < 0).any():
             raise ValueError("weights must be finite and non-negative")
+    return _fuse(x, pos, ang, w, np.ones((r_n, c_n)), pitch, min_weight)
+
+
+def _fuse(x, pos, ang, w, plate_w, pitch, min_weight):
+    """:func:`fuse` after validation: observation weight ``w[t, r, c] * plate_w[r, c]`` (``w``
+    may be a broadcast view, e.g. one weight per frame, so no frame-sized weight array is
+    built)."""
+    t_n, r_n, c_n = x.shape
     # Grid bounds from the frames' corners (a rotated rectangle's extremes are its corners),
     # then frames are splatted in chunks so memory stays proportional to the image.
     k0, k1 = plate_coordinates((t_n, r_n, c_n), pos, np.deg2rad(ang), rows=[0, r_n - 1],
@@ -149,17 +157,14 @@ def fuse(frames, positions, angles=None, *, weights=None, output_pitch_px=(1.0, 
     th = np.deg2rad(ang)
     # One compiled pass over the observations (no per-observation temporaries).
     step = max(1, 1_000_000 // max(r_n * c_n, 1))
-    any_kept = False
+    pw = np.ascontiguousarray(plate_w, dtype=np.float64)
+    kept = 0
     for s0 in range(0, t_n, step):
         sl = slice(s0, min(t_n, s0 + step))
-        ww = w[sl]
-        if not (ww > 0).any():
-            continue
-        any_kept = True
         # Native dtypes go straight in (the kernel reads them as double).
-        _splat(x[sl], ww, pos[sl], np.cos(th[sl]), np.sin(th[sl]), cf, pitch, lo0, lo1,
-               acc, wacc)
-    if not any_kept:
+        kept += _splat(x[sl], w[sl], pw, pos[sl], np.cos(th[sl]), np.sin(th[sl]), cf, pitch,
+                       lo0, lo1, acc, wacc)
+    if kept == 0:
         raise ValueError("weights exclude every observation: nothing to fuse")
     # Trim empty border rows/columns left by the +2 allocation.
     rows = np.flatnonzero(wacc.max(axis=1) >= min_weight)
@@ -183,9 +188,11 @@ def plate_point(p0, p1, ct, st, cf0, cf1, u0, u1):
 
 
 @numba.njit(**JIT)
-def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
-    """Bilinear splat of every observation with weight > 0 into (acc, wacc), in place."""
+def _splat(vals, w, pw, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
+    """Bilinear splat of every observation with weight ``w[t, r, c] * pw[r, c]`` > 0 into
+    (acc, wacc), in place; returns how many were splatted."""
     t_n, r_n, c_n = vals.shape
+    kept = 0
     for t in range(t_n):
         ct = cos_t[t]
         st = sin_t[t]
@@ -203,9 +210,10 @@ def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
                 b10 = a0 * (1.0 - a1)
                 b11 = a0 * a1
                 for c in range(c_n):
-                    wv = float(w[t, r, c])
+                    wv = float(w[t, r, c]) * pw[r, c]
                     if wv <= 0.0:
                         continue
+                    kept += 1
                     v = float(vals[t, r, c])
                     k = i1 + c
                     acc[i0, k] += b00 * wv * v
@@ -220,9 +228,10 @@ def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
         for r in range(r_n):
             u0 = r - cf[0]
             for c in range(c_n):
-                wv = float(w[t, r, c])
+                wv = float(w[t, r, c]) * pw[r, c]
                 if wv <= 0.0:
                     continue
+                kept += 1
                 q0, q1 = plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0, c - cf[1])
                 f0 = q0 / pitch[0] - lo0
                 f1 = q1 / pitch[1] - lo1
@@ -243,3 +252,4 @@ def _splat(vals, w, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
                 wacc[i0 + 1, i1] += w10
                 acc[i0 + 1, i1 + 1] += w11 * v
                 wacc[i0 + 1, i1 + 1] += w11
+    return kept

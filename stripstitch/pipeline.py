@@ -580,14 +580,17 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
     scale = float(np.median(prep_used.gain))
     level = float(np.mean(prep_used.offset))
     fw = (prep.contact & (confidence > 0.05)).astype(np.float32)
-    weights = fw[:, None, None] * prep.plate_ok[None].astype(np.float32)
-    if not (weights > 0).any():
-        weights = prep.contact.astype(np.float32)[:, None, None] * prep.plate_ok[None].astype(np.float32)
+    if not (fw > 0).any() or not prep.plate_ok.any():
+        fw = prep.contact.astype(np.float32)
     pitch_px = out_pitch_um / pitch_um
     # The fusion is a weighted mean, so the prepared values are fused and the image mapped
-    # back to input units afterwards (no frame-sized copy).
-    mos = _mosaic.fuse(prep_used.z, positions, angles_deg, weights=weights,
-                       output_pitch_px=pitch_px)
+    # back to input units afterwards (no frame-sized copy); weight = frame weight x plate
+    # usable, without a frame-sized weight array.
+    mos = _mosaic._fuse(prep_used.z, np.asarray(positions, dtype=np.float64),
+                        np.asarray(angles_deg, dtype=np.float64),
+                        np.broadcast_to(fw[:, None, None], prep_used.z.shape),
+                        prep.plate_ok.astype(np.float64), np.asarray(pitch_px, dtype=np.float64),
+                        0.05)
     mos = _mosaic.Mosaic(image=mos.image * scale + level, weight=mos.weight,
                          origin_px=mos.origin_px, pitch_px=mos.pitch_px)
 

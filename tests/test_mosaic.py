@@ -95,3 +95,23 @@ def test_compiled_splat_matches_the_formula(rotated, pitch):
     seen = wacc[r0:r0 + h, c0:c0 + wd] >= 1e-9
     np.testing.assert_allclose(m.image[seen], (acc / np.where(wacc > 0, wacc, 1))[r0:r0 + h, c0:c0 + wd][seen],
                                rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("rotated", [False, True])
+def test_separable_weights_match_the_full_weight_array(rotated):
+    # The pipeline's fusion passes one weight per frame (a broadcast view) and one per plate;
+    # the result must equal fuse() with their product written out as a full weight array.
+    rng = np.random.default_rng(9)
+    t_n, r_n, c_n = 25, 5, 16
+    frames = rng.standard_normal((t_n, r_n, c_n)).astype(np.float32)
+    pos = np.cumsum(rng.uniform(0.1, 1.2, size=(t_n, 2)), axis=0) * [1.0, 0.1]
+    ang = rng.uniform(-2, 2, t_n) if rotated else np.zeros(t_n)
+    fw = (rng.uniform(size=t_n) > 0.3).astype(np.float32)
+    pw = (rng.uniform(size=(r_n, c_n)) > 0.2).astype(np.float64)
+    full = mosaic.fuse(frames, pos, ang, weights=fw[:, None, None] * pw[None])
+    sep = mosaic._fuse(frames, pos, ang, np.broadcast_to(fw[:, None, None], frames.shape), pw,
+                       np.array([1.0, 1.0]), 0.05)
+    np.testing.assert_array_equal(sep.weight, full.weight)
+    np.testing.assert_array_equal(np.isnan(sep.image), np.isnan(full.image))
+    np.testing.assert_allclose(sep.image[~np.isnan(sep.image)], full.image[~np.isnan(full.image)])
+    np.testing.assert_array_equal(sep.origin_px, full.origin_px)
