@@ -246,22 +246,9 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
                     r0i += g0[r, c] * iv
                     r1i += g1[r, c] * iv
                 # template sums over the row minus the columns outside the overlap (few)
-                e0 = e1 = e2 = e3 = e4 = e5 = e6 = e7 = e8 = 0.0
                 width = c_hi + 1 - c_lo
-                for k in range(c_n - width):
-                    c = k if k < c_lo else k + width
-                    x0 = float(g0[r, c])
-                    x1 = float(g1[r, c])
-                    tv = float(b[r, c])
-                    e0 += x0
-                    e1 += x1
-                    e2 += x0 * x0
-                    e3 += x0 * x1
-                    e4 += x1 * x1
-                    e5 += tv
-                    e6 += tv * tv
-                    e7 += x0 * tv
-                    e8 += x1 * tv
+                e0, e1, e2, e3, e4, e5, e6, e7, e8 = _template_row(b, g0, g1, r, c_n - width,
+                                                                   c_lo, width)
                 sw += c_hi + 1 - c_lo
                 sg0 += pre[0, r] - e0
                 sg1 += pre[1, r] - e1
@@ -378,35 +365,37 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
     res[8] = ok
 
 
+@numba.njit(cache=True, inline="always")
+def _template_row(b, g0, g1, r, n, c_skip, width):
+    """Sums of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b over n columns of row r: column
+    k for k < c_skip, column k + width after (a run of ``width`` columns skipped)."""
+    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = s8 = 0.0
+    for k in range(n):
+        c = k if k < c_skip else k + width
+        a0 = float(g0[r, c])
+        a1 = float(g1[r, c])
+        t = float(b[r, c])
+        s0 += a0
+        s1 += a1
+        s2 += a0 * a0
+        s3 += a0 * a1
+        s4 += a1 * a1
+        s5 += t
+        s6 += t * t
+        s7 += a0 * t
+        s8 += a1 * t
+    return s0, s1, s2, s3, s4, s5, s6, s7, s8
+
+
 @numba.njit(**JIT)
 def _template_sums(b, g0, g1, pre):
     """Per-row sums over all columns of g0, g1, g0^2, g0 g1, g1^2, b, b^2, g0 b, g1 b
     (``pre``, (9, R)); a registration subtracts the few columns outside its overlap."""
     r_n, c_n = b.shape
     for r in range(r_n):
-        s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = s8 = 0.0
-        for c in range(c_n):
-            a0 = float(g0[r, c])
-            a1 = float(g1[r, c])
-            t = float(b[r, c])
-            s0 += a0
-            s1 += a1
-            s2 += a0 * a0
-            s3 += a0 * a1
-            s4 += a1 * a1
-            s5 += t
-            s6 += t * t
-            s7 += a0 * t
-            s8 += a1 * t
-        pre[0, r] = s0
-        pre[1, r] = s1
-        pre[2, r] = s2
-        pre[3, r] = s3
-        pre[4, r] = s4
-        pre[5, r] = s5
-        pre[6, r] = s6
-        pre[7, r] = s7
-        pre[8, r] = s8
+        sums = _template_row(b, g0, g1, r, c_n, c_n, 0)
+        for k in range(9):
+            pre[k, r] = sums[k]
 
 
 @numba.njit(**JIT)
