@@ -45,7 +45,7 @@ import numpy as np
 from ._jit import JIT
 from ._validate import check_array, check_frames, check_int, check_positive
 
-__all__ = ["TrackResult", "track"]
+__all__ = ["TrackResult", "track", "FrameTracker"]
 
 
 
@@ -567,11 +567,18 @@ def _with_model_error(j00, j01, j11, s2m):
 
 @numba.njit(**JIT)
 def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, iters, lam,
-           min_ncc, q_acc, model_px, use_old, pos, info, ref, ncc, sig, link_ok, pvar):
+           min_ncc, q_acc, model_px, use_old, up_key, up_old, st_f, st_i, ref_base, pos, info,
+           ref, ncc, sig, link_ok, pvar):
+    """Place chain[1:] (chain[0] is placed: at ``pos[0]``). The filter lives in ``st_f``
+    (running NCC, state, covariance) and ``st_i`` (started, have_v, have_old, key relative to
+    chain[0], keys so far) and the key frames in ``up_key``/``up_old``, so a swipe can be fed
+    in pieces, each starting with the last frame of the one before. ``ref`` gets each
+    frame's key as ``ref_base`` + chain index (-1: no overlap). Returns the keys so far."""
     n_ch = chain.shape[0]
     r_n, c_n = z.shape[1], z.shape[2]
-    up_key = np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32)
-    up_old = np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32)
+    key_caller = up_key
+    old_caller = up_old
+    swaps = 0
     up_prev = np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32)
     g0 = np.empty((r_n, c_n), dtype=np.float32)
     g1 = np.empty((r_n, c_n), dtype=np.float32)
@@ -588,14 +595,23 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
                 full = False
     ks = np.zeros((_NS, _NS + 4))                # Kalman work array
     cres = np.zeros(3)
-    x = np.zeros(_NS)
-    P = np.zeros((_NS, _NS))
-    have_v = False
-    have_old = False
-    ncc_run = 0.0
-    key = 0
-    _upsample_extend(z[chain[0]], lor, wr, loc, wc, up_key)
-    n_keys = 1
+    x = st_f[1:1 + _NS].copy()
+    P = st_f[1 + _NS:1 + _NS + _NS * _NS].copy().reshape((_NS, _NS))
+    if st_i[0] == 0:
+        x[:] = 0.0
+        P[:, :] = 0.0
+        have_v = False
+        have_old = False
+        ncc_run = 0.0
+        key = 0
+        _upsample_extend(z[chain[0]], lor, wr, loc, wc, up_key)
+        n_keys = 1
+    else:
+        have_v = st_i[1] != 0
+        have_old = st_i[2] != 0
+        key = st_i[3]
+        n_keys = st_i[4]
+        ncc_run = st_f[0]
     ref[0] = -1
     s2m = model_px * model_px
     # The older key is used while at least two rows still overlap it.
@@ -681,7 +697,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             info[j, 0, 1] = e01
             info[j, 1, 0] = e01
             info[j, 1, 1] = e11
-            ref[j] = key
+            ref[j] = key + ref_base
             ncc[j] = res[5]
             sig[j] = res[6]
             link_ok[j - 1] = True
@@ -729,6 +745,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             tmp = up_old
             up_old = up_key
             up_key = tmp
+            swaps += 1
             _upsample_extend(b, lor, wr, loc, wc, up_key)
             _kalman_copy(x, P, 4, 6)
             _kalman_copy(x, P, 0, 4)
@@ -736,7 +753,28 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             n_keys += 1
         pvar[j, 0] = P[0, 0]
         pvar[j, 1] = P[1, 1]
+    if swaps % 2 == 1:
+        # the caller's arrays hold each other's frame: swap their contents back
+        tmpc = key_caller.copy()
+        key_caller[:, :] = old_caller
+        old_caller[:, :] = tmpc
+    st_f[0] = ncc_run
+    st_f[1:1 + _NS] = x
+    st_f[1 + _NS:1 + _NS + _NS * _NS] = P.reshape(_NS * _NS)
+    st_i[0] = 1
+    st_i[1] = 1 if have_v else 0
+    st_i[2] = 1 if have_old else 0
+    st_i[3] = key - (n_ch - 1)
+    st_i[4] = n_keys
     return n_keys
+
+
+def _fresh_state(shape):
+    """Key frames and filter state of :func:`_track` before its first frame."""
+    r_n, c_n = shape
+    return (np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
+            np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
+            np.zeros(1 + _NS + _NS * _NS), np.zeros(5, dtype=np.int64))
 
 
 @functools.lru_cache(maxsize=64)
@@ -757,6 +795,48 @@ def _lagrange_taps(n):
     lo.flags.writeable = False          # cached and shared
     w.flags.writeable = False
     return lo, w
+
+
+def _settings(shape, plate_mask, max_along_px, max_across_px, reach_px, iterations, prior_px,
+              min_ncc, sigma_acc_px, model_px, second_key):
+    """Checked options of :func:`track` as the arguments of :func:`_track` that follow the
+    chain's times; the plate mask as float, and the band of rows and columns that holds
+    usable plates (None: all of them)."""
+    r_n, c_n = shape
+    m = np.asarray(plate_mask)
+    if m.shape != (r_n, c_n) or m.dtype.kind not in "biuf":
+        raise ValueError(f"plate_mask must be a boolean array of shape {(r_n, c_n)}; got "
+                         f"dtype {m.dtype}, shape {m.shape}")
+    m = np.ascontiguousarray(m != 0, dtype=np.float32)
+    # Only the band of rows and columns that holds usable plates is registered (a finger
+    # narrower than the strip leaves whole columns unused): less work, and the key frame's
+    # boundary extension then starts at the band's edge instead of interpolating across
+    # unused plates. Shifts do not depend on the crop.
+    rows_ok = np.flatnonzero(m.any(axis=1))
+    cols_ok = np.flatnonzero(m.any(axis=0))
+    band = None
+    b_r, b_c = r_n, c_n
+    if rows_ok.size >= 2 and cols_ok.size >= 8 and (rows_ok.size < r_n or cols_ok.size < c_n):
+        band = (slice(rows_ok[0], rows_ok[-1] + 1), slice(cols_ok[0], cols_ok[-1] + 1))
+        b_r, b_c = rows_ok[-1] + 1 - rows_ok[0], cols_ok[-1] + 1 - cols_ok[0]
+    max_along = r_n - 1 if max_along_px is None else check_int(max_along_px, name="max_along_px",
+                                                             lo=0, hi=r_n - 1)
+    max_across = int(np.clip(c_n // 8, 3, 12)) if max_across_px is None else \
+        check_int(max_across_px, name="max_across_px", lo=0, hi=c_n - 4)
+    if reach_px is None:
+        reach_px = float(max(1, min(r_n - 2, int(np.floor(0.75 * (r_n - 1))))))
+    reach_px = check_positive(reach_px, name="reach_px")
+    iterations = check_int(iterations, name="iterations", lo=1, hi=50)
+    prior_px = check_positive(prior_px, name="prior_px")
+    sigma_acc_px = check_positive(sigma_acc_px, name="sigma_acc_px")
+    model_px = check_positive(model_px, name="model_px")
+    # The prior's weight in units of the residual variance: lam * sigma^2 = sigma^2 / prior^2.
+    lam = 1.0 / prior_px ** 2
+    lor, wr = _lagrange_taps(int(b_r))
+    loc, wc = _lagrange_taps(int(b_c))
+    return m, band, (lor, wr, loc, wc, int(min(max_along, b_r - 1)), int(min(max_across, b_c - 4)),
+                     float(reach_px), int(iterations), lam, float(min_ncc), float(sigma_acc_px),
+                     float(model_px), bool(second_key))
 
 
 def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_across_px=None,
@@ -821,19 +901,9 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     z = check_frames(z, min_frames=2, min_rows=2, min_cols=8)
     t_n, r_n, c_n = z.shape
     z = np.ascontiguousarray(z, dtype=np.float32)
-    m = np.asarray(plate_mask)
-    if m.shape != (r_n, c_n) or m.dtype.kind not in "biuf":
-        raise ValueError(f"plate_mask must be a boolean array of shape {(r_n, c_n)}; got "
-                         f"dtype {m.dtype}, shape {m.shape}")
-    m = np.ascontiguousarray(m != 0, dtype=np.float32)
-    # Only the band of rows and columns that holds usable plates is registered (a finger
-    # narrower than the strip leaves whole columns unused): less work, and the key frame's
-    # boundary extension then starts at the band's edge instead of interpolating across
-    # unused plates. Shifts do not depend on the crop.
-    rows_ok = np.flatnonzero(m.any(axis=1))
-    cols_ok = np.flatnonzero(m.any(axis=0))
-    if rows_ok.size >= 2 and cols_ok.size >= 8 and (rows_ok.size < r_n or cols_ok.size < c_n):
-        band = (slice(rows_ok[0], rows_ok[-1] + 1), slice(cols_ok[0], cols_ok[-1] + 1))
+    m, band, kw = _settings((r_n, c_n), plate_mask, max_along_px, max_across_px, reach_px,
+                            iterations, prior_px, min_ncc, sigma_acc_px, model_px, second_key)
+    if band is not None:
         z_run = np.ascontiguousarray(z[:, band[0], band[1]])
         m_run = np.ascontiguousarray(m[band])
     else:
@@ -851,24 +921,7 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     chain = chain.astype(np.int64)
     tt = np.arange(t_n, dtype=np.float64) if times is None else \
         check_array(times, name="times", shape=(t_n,))
-    max_along = r_n - 1 if max_along_px is None else check_int(max_along_px, name="max_along_px",
-                                                             lo=0, hi=r_n - 1)
-    max_across = int(np.clip(c_n // 8, 3, 12)) if max_across_px is None else \
-        check_int(max_across_px, name="max_across_px", lo=0, hi=c_n - 4)
-    if reach_px is None:
-        reach_px = float(max(1, min(r_n - 2, int(np.floor(0.75 * (r_n - 1))))))
-    reach_px = check_positive(reach_px, name="reach_px")
-    iterations = check_int(iterations, name="iterations", lo=1, hi=50)
-    prior_px = check_positive(prior_px, name="prior_px")
-    sigma_acc_px = check_positive(sigma_acc_px, name="sigma_acc_px")
-    model_px = check_positive(model_px, name="model_px")
     n_ch = chain.size
-    # The prior's weight in units of the residual variance: lam * sigma^2 = sigma^2 / prior^2.
-    lam = 1.0 / prior_px ** 2
-    lor, wr = _lagrange_taps(z_run.shape[1])
-    loc, wc = _lagrange_taps(z_run.shape[2])
-    max_along = min(max_along, z_run.shape[1] - 1)
-    max_across = min(max_across, z_run.shape[2] - 4)
     if start is None:
         # Start where the finger is best seen: the frame of strongest texture in the middle
         # third of the chain. The ends (the fingertip arriving, the finger leaving) show
@@ -901,10 +954,8 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         s_ = np.zeros(k)
         l_ = np.zeros(k - 1, dtype=np.bool_)
         v_ = np.zeros((k, 2))
-        n_keys += _track(z_run, m_run, chain[sub], np.ascontiguousarray(times_sub), lor, wr, loc, wc,
-                         int(max_along), int(max_across), reach_px, int(iterations), lam,
-                         float(min_ncc), sigma_acc_px, model_px, bool(second_key), p_, i_, r_,
-                         n_, s_, l_, v_)
+        n_keys += _track(z_run, m_run, chain[sub], np.ascontiguousarray(times_sub), *kw,
+                         *_fresh_state(z_run.shape[1:]), 0, p_, i_, r_, n_, s_, l_, v_)
         pvar[sub[1:]] = v_[1:]
         pos[sub[1:]] = p_[1:]
         info[sub[1:]] = i_[1:]
@@ -917,3 +968,120 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     pos -= pos[0]
     return TrackResult(positions=pos, info=info, reference=ref, ncc=ncc, sigma=sig,
                        link_ok=link_ok, n_keys=int(n_keys), variance=pvar, start=int(start))
+
+
+class FrameTracker:
+    """The key-frame tracker fed as frames arrive: the forward half of :func:`track`, from the
+    first frame pushed, with the filter and the key frames carried between pushes (memory
+    does not grow with the swipe).
+
+    Parameters
+    ----------
+    plate_mask : (R, C) array_like of bool
+        Plates to use (fixed for the swipe).
+    max_along_px, max_across_px, reach_px, iterations, prior_px, min_ncc, sigma_acc_px, \
+model_px, second_key
+        As :func:`track`.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy import ndimage
+    >>> tex = ndimage.gaussian_filter(np.random.default_rng(0).standard_normal((400, 64)), 2.0)
+    >>> z = np.stack([tex[2 * t: 2 * t + 8] for t in range(60)]).astype(np.float32)
+    >>> ft = FrameTracker(np.ones((8, 64), bool))
+    >>> steps = [ft.push(z[k:k + 10]) for k in range(0, 60, 10)]
+    >>> pos = np.concatenate([s["positions"] for s in steps])
+    >>> bool(np.allclose(np.diff(pos[:, 0]), 2.0, atol=0.02))
+    True
+    """
+
+    def __init__(self, plate_mask, *, max_along_px=None, max_across_px=None, reach_px=None,
+                 iterations=3, prior_px=0.5, min_ncc=0.5, sigma_acc_px=0.05, model_px=0.02,
+                 second_key=True):
+        shape = np.shape(plate_mask)
+        if len(shape) != 2 or shape[0] < 2 or shape[1] < 8:
+            raise ValueError(f"plate_mask must have shape (R, C) with R >= 2 and C >= 8; got "
+                             f"shape {shape}")
+        self.shape = (int(shape[0]), int(shape[1]))
+        m, self._band, self._kw = _settings(self.shape, plate_mask, max_along_px, max_across_px,
+                                            reach_px, iterations, prior_px, min_ncc,
+                                            sigma_acc_px, model_px, second_key)
+        self._m = np.ascontiguousarray(m[self._band]) if self._band is not None else m
+        self._state = _fresh_state(self._m.shape)
+        self._n = 0                       # frames pushed
+        self._last = None                 # last frame (band), its position and time
+        self._last_pos = np.zeros(2)
+        self._last_t = 0.0
+
+    @property
+    def n_frames(self):
+        """Frames pushed so far."""
+        return self._n
+
+    def push(self, frames, times=None):
+        """Place the next frames.
+
+        Parameters
+        ----------
+        frames : (K, R, C) array_like
+            Prepared frames (fixed pattern removed), in order.
+        times : (K,) array_like, optional
+            Their times in frame periods (increasing, after the previous push's). Default:
+            one frame period apart, continuing the count.
+
+        Returns
+        -------
+        dict of arrays, one row per frame pushed
+            ``positions`` (K, 2) relative to the first frame ever pushed; ``info`` (K, 2, 2);
+            ``reference`` (K,) absolute index of the key frame each was registered against
+            (-1: none); ``ncc`` (K,); ``sigma`` (K,); ``link_ok`` (K,) whether the link from
+            the previous frame held (False for the very first frame).
+        """
+        z = check_frames(frames, name="frames", min_frames=1, min_rows=2, min_cols=8)
+        if z.shape[1:] != self.shape:
+            raise ValueError(f"frames must have shape (K, {self.shape[0]}, {self.shape[1]}) like "
+                             f"the plate mask; got {z.shape}")
+        k = z.shape[0]
+        tt = (self._n + np.arange(k, dtype=np.float64)) if times is None else \
+            check_array(times, name="times", shape=(k,))
+        zb = z[:, self._band[0], self._band[1]] if self._band is not None else z
+        zb = np.ascontiguousarray(zb, dtype=np.float32)
+        first = self._last is None
+        out = {"positions": np.zeros((k, 2)), "info": np.zeros((k, 2, 2)),
+               "reference": np.full(k, -1, dtype=np.int64), "ncc": np.zeros(k),
+               "sigma": np.zeros(k), "link_ok": np.zeros(k, dtype=bool)}
+        if first:
+            run_z, run_t, skip = zb, tt, 1
+        else:
+            if not tt[0] > self._last_t:
+                raise ValueError(f"times must continue after the previous push's last time "
+                                 f"{self._last_t}; got {tt[0]}")
+            run_z = np.concatenate([self._last[None], zb])
+            run_t = np.concatenate([[self._last_t], tt])
+            skip = 0
+        n = run_z.shape[0]
+        if n >= 2:
+            pos = np.zeros((n, 2))
+            pos[0] = self._last_pos
+            info = np.zeros((n, 2, 2))
+            ref = np.full(n, -1, dtype=np.int64)
+            ncc = np.zeros(n)
+            sig = np.zeros(n)
+            link = np.zeros(n - 1, dtype=np.bool_)
+            var = np.zeros((n, 2))
+            base = 0 if first else self._n - 1
+            _track(run_z, self._m, np.arange(n, dtype=np.int64), run_t, *self._kw, *self._state,
+                   base, pos, info, ref, ncc, sig, link, var)
+            sl = slice(skip, None)          # this push's frames placed here (not the first ever)
+            out["positions"][sl] = pos[1:]
+            out["info"][sl] = info[1:]
+            out["reference"][sl] = ref[1:]
+            out["ncc"][sl] = ncc[1:]
+            out["sigma"][sl] = sig[1:]
+            out["link_ok"][sl] = link
+        self._last = zb[-1].copy()
+        self._last_pos = out["positions"][-1].copy()
+        self._last_t = float(tt[-1])
+        self._n += k
+        return out
