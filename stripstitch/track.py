@@ -1013,6 +1013,7 @@ model_px, second_key
         self._last = None                 # last frame (band), its position and time
         self._last_pos = np.zeros(2)
         self._last_t = 0.0
+        self._key_pos = {}                # position of the current key frame (by index)
 
     @property
     def n_frames(self):
@@ -1035,8 +1036,9 @@ model_px, second_key
         dict of arrays, one row per frame pushed
             ``positions`` (K, 2) relative to the first frame ever pushed; ``info`` (K, 2, 2);
             ``reference`` (K,) absolute index of the key frame each was registered against
-            (-1: none); ``ncc`` (K,); ``sigma`` (K,); ``link_ok`` (K,) whether the link from
-            the previous frame held (False for the very first frame).
+            (-1: none); ``displacement`` (K, 2) from that key frame (0 where none); ``ncc``
+            (K,); ``sigma`` (K,); ``link_ok`` (K,) whether the link from the previous frame
+            held (False for the very first frame).
         """
         z = check_frames(frames, name="frames", min_frames=1, min_rows=2, min_cols=8)
         if z.shape[1:] != self.shape:
@@ -1049,8 +1051,8 @@ model_px, second_key
         zb = np.ascontiguousarray(zb, dtype=np.float32)
         first = self._last is None
         out = {"positions": np.zeros((k, 2)), "info": np.zeros((k, 2, 2)),
-               "reference": np.full(k, -1, dtype=np.int64), "ncc": np.zeros(k),
-               "sigma": np.zeros(k), "link_ok": np.zeros(k, dtype=bool)}
+               "reference": np.full(k, -1, dtype=np.int64), "displacement": np.zeros((k, 2)),
+               "ncc": np.zeros(k), "sigma": np.zeros(k), "link_ok": np.zeros(k, dtype=bool)}
         if first:
             run_z, run_t, skip = zb, tt, 1
         else:
@@ -1080,6 +1082,16 @@ model_px, second_key
             out["ncc"][sl] = ncc[1:]
             out["sigma"][sl] = sig[1:]
             out["link_ok"][sl] = link
+            # displacement from each frame's key: the key is a frame of this run or the key
+            # carried over from the previous push
+            known = dict(self._key_pos)
+            known.update({base + j: pos[j] for j in range(n)})
+            disp = np.zeros((n, 2))
+            for j in np.flatnonzero(ref >= 0):
+                disp[j] = pos[j] - known[int(ref[j])]
+            out["displacement"][sl] = disp[1:]
+            key_abs = base + n - 1 + int(self._state[3][3])
+            self._key_pos = {key_abs: known[key_abs]} if key_abs in known else {}
         self._last = zb[-1].copy()
         self._last_pos = out["positions"][-1].copy()
         self._last_t = float(tt[-1])
