@@ -452,6 +452,7 @@ class StreamingStitcher:
                    "motion_prior_px": self.motion_prior_px, "max_across_px": self.max_across_px,
                    "timestamps": self._uses_times, "calibration": self.calibration is not None,
                    "streaming": True, "window_frames": self.window,
+                   "placement": "key-frame tracker" if self._use_tracker else "pairwise window",
                    "batch_frames": self.batch, "hold_rows": self.hold_rows,
                    "drift_cols": self.drift_cols, "dropped_samples": int(self._dropped)}
         return Reconstruction(image=image, positions=pos, angles=angles, confidence=conf,
