@@ -290,7 +290,8 @@ def test_window_solve_equals_the_trajectory_stage():
 def test_stream_on_a_simulated_capture_with_blank_frames_and_noise():
     # A simulated swipe (the simulator's truth as the reference) that starts and ends with
     # the finger absent, at 12 dB: the tracker starts at the finger's arrival, the noisy
-    # blank frames make no gap, and the placement stays within 1 % of the true span.
+    # blank frames make no gap, and the placement stays within 1 % of the true span
+    # (measured: -0.38 %, 0.38 px along RMS).
     from stripstitch import evaluate, simulate
     finger = simulate.make_finger("whorl", size_mm=(6.0, 5.0), rng=3)
     cap = simulate.swipe(finger=finger, rng=2, n_rows=8, n_cols=96, frame_rate_hz=4000.0,
