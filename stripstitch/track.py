@@ -769,6 +769,13 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     return n_keys
 
 
+def _outputs(n):
+    """Output arrays of :func:`_track` for n chain frames: positions, information,
+    references, NCC, residual sigma, links, variances."""
+    return (np.zeros((n, 2)), np.zeros((n, 2, 2)), np.full(n, -1, dtype=np.int64), np.zeros(n),
+            np.zeros(n), np.zeros(max(n - 1, 0), dtype=np.bool_), np.zeros((n, 2)))
+
+
 def _fresh_state(shape):
     """Key frames and filter state of :func:`_track` before its first frame."""
     r_n, c_n = shape
@@ -931,13 +938,7 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         tex = np.sqrt(np.mean(np.square(z[mid], dtype=np.float32) * m, axis=(1, 2)))
         start = n_ch // 3 + int(np.argmax(tex))
     start = check_int(start, name="start", lo=0, hi=n_ch - 1)
-    pos = np.zeros((n_ch, 2))
-    info = np.zeros((n_ch, 2, 2))
-    ref = np.full(n_ch, -1, dtype=np.int64)
-    ncc = np.zeros(n_ch)
-    sig = np.zeros(n_ch)
-    link_ok = np.zeros(n_ch - 1, dtype=np.bool_)
-    pvar = np.zeros((n_ch, 2))
+    pos, info, ref, ncc, sig, link_ok, pvar = _outputs(n_ch)
     n_keys = 0
     tch = tt[chain]
     # Forward from the start, then backward from it (time reversed: the same constant-velocity
@@ -947,13 +948,7 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         if sub.size < 2:
             continue
         k = sub.size
-        p_ = np.zeros((k, 2))
-        i_ = np.zeros((k, 2, 2))
-        r_ = np.full(k, -1, dtype=np.int64)
-        n_ = np.zeros(k)
-        s_ = np.zeros(k)
-        l_ = np.zeros(k - 1, dtype=np.bool_)
-        v_ = np.zeros((k, 2))
+        p_, i_, r_, n_, s_, l_, v_ = _outputs(k)
         n_keys += _track(z_run, m_run, chain[sub], np.ascontiguousarray(times_sub), *kw,
                          *_fresh_state(z_run.shape[1:]), 0, p_, i_, r_, n_, s_, l_, v_)
         pvar[sub[1:]] = v_[1:]
@@ -986,11 +981,11 @@ model_px, second_key
     Examples
     --------
     >>> import numpy as np
-    >>> from scipy import ndimage
-    >>> tex = ndimage.gaussian_filter(np.random.default_rng(0).standard_normal((400, 64)), 2.0)
-    >>> z = np.stack([tex[2 * t: 2 * t + 8] for t in range(60)]).astype(np.float32)
-    >>> ft = FrameTracker(np.ones((8, 64), bool))
-    >>> steps = [ft.push(z[k:k + 10]) for k in range(0, 60, 10)]
+    >>> rr, cc = np.mgrid[0:200, 0:48].astype(float)
+    >>> tex = np.sin(0.7 * rr + 0.3 * cc) + np.cos(0.45 * rr - 0.5 * cc)
+    >>> frames = np.stack([tex[2 * t: 2 * t + 8] for t in range(60)])
+    >>> ft = FrameTracker(np.ones((8, 48), bool))
+    >>> steps = [ft.push(frames[k:k + 10]) for k in range(0, 60, 10)]
     >>> pos = np.concatenate([s["positions"] for s in steps])
     >>> bool(np.allclose(np.diff(pos[:, 0]), 2.0, atol=0.02))
     True
@@ -1064,14 +1059,8 @@ model_px, second_key
             skip = 0
         n = run_z.shape[0]
         if n >= 2:
-            pos = np.zeros((n, 2))
+            pos, info, ref, ncc, sig, link, var = _outputs(n)
             pos[0] = self._last_pos
-            info = np.zeros((n, 2, 2))
-            ref = np.full(n, -1, dtype=np.int64)
-            ncc = np.zeros(n)
-            sig = np.zeros(n)
-            link = np.zeros(n - 1, dtype=np.bool_)
-            var = np.zeros((n, 2))
             base = 0 if first else self._n - 1
             _track(run_z, self._m, np.arange(n, dtype=np.int64), run_t, *self._kw, *self._state,
                    base, pos, info, ref, ncc, sig, link, var)
