@@ -2,7 +2,8 @@
 
 Run from a clean checkout:  python benchmarks/bench_accuracy.py  [--quick]
 
-Methods, side by side in one run: stripstitch ``stitch`` (mode "default" and "fast"), and
+Methods, side by side in one run: stripstitch ``stitch`` (mode "default" and "fast"), the
+streaming stitcher (``StreamingStitcher``, frames pushed one by one), and
 chains of skimage.registration.phase_cross_correlation (upsample_factor 20) and
 cv2.phaseCorrelate between successive frames (positions = cumulative sums, image through
 stripstitch.mosaic.fuse). Also the per-pair error of default mode against the Cramer-Rao bound
@@ -25,7 +26,7 @@ from stripstitch import evaluate as ev
 from stripstitch import simulate, stitch
 from stripstitch.sweep import reconstruct
 
-METHODS = ("default", "fast", "skimage_chain", "opencv_chain")
+METHODS = ("default", "fast", "stream", "skimage_chain", "opencv_chain")
 
 #: name -> swipe parameters (simulate.swipe keywords plus finger pattern/seed).
 SUITE = {

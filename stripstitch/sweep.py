@@ -47,9 +47,10 @@ __all__ = [
     "no_gap_frame_rate_hz",
 ]
 
-#: Reconstruction methods a case may name: stripstitch's two modes and pairwise chains of
-#: scikit-image / OpenCV phase correlation (positions = cumulative sums of pairwise shifts).
-METHODS = ("default", "fast", "skimage_chain", "opencv_chain", "truth")
+#: Reconstruction methods a case may name: stripstitch's two modes, its streaming stitcher
+#: (frames pushed one by one, default mode) and pairwise chains of scikit-image / OpenCV
+#: phase correlation (positions = cumulative sums of pairwise shifts).
+METHODS = ("default", "fast", "stream", "skimage_chain", "opencv_chain", "truth")
 
 #: Parameters of one case and their defaults (small, cheap swipes). Speeds are an unsourced
 #: modelling assumption (REFERENCE-VALUES.md section 7: 20-300 mm/s, nominal 100 mm/s).
@@ -245,6 +246,14 @@ def reconstruct(capture, method="default"):
         return stitch(capture.frames, pitch_um=float(capture.pitch_um),
                       frame_rate_hz=float(capture.frame_rate_hz),
                       timestamps_s=np.asarray(capture.times_s, dtype=np.float64), mode=method)
+    if method == "stream":
+        from .stream import StreamingStitcher
+
+        st = StreamingStitcher(pitch_um=float(capture.pitch_um),
+                               frame_rate_hz=float(capture.frame_rate_hz))
+        for frame, t in zip(capture.frames, np.asarray(capture.times_s, dtype=np.float64)):
+            st.push(frame, timestamp_s=float(t))
+        return st.finish()
     if method == "truth":
         p = float(capture.pitch_um)
         return ChainResult(capture.positions, capture.angles, np.diff(capture.positions, axis=0),
