@@ -264,6 +264,9 @@ class StreamingStitcher:
         self._offset = None
         self._scale = None
         self._plate_ok = np.ones((r_n, c_n), bool)
+        self._sp_sum = np.zeros((r_n, c_n))       # first contact frames: per-plate sums
+        self._sp_sq = np.zeros((r_n, c_n))
+        self._sp_n = 0
         self._tex_hi = 0.0
         self._noise_sigma = 0.0
         # Key-frame tracker (strips of 8 rows or more, as the batch path): made at the first
@@ -545,10 +548,19 @@ class StreamingStitcher:
             self._offset = off
         xc = x - self._offset
         if self._scale is None and contact.any():
-            spread = np.sqrt(np.mean((xc[contact] - xc[contact].mean(0)) ** 2, axis=0))
-            med = float(np.median(spread))
-            self._scale = max(med, 1e-12)
-            self._plate_ok = spread > 0.25 * med
+            # Per-plate spread over the first contact frames (raw readings: the offset is a
+            # constant per plate), decided once at least 16 have been seen: from one or two
+            # frames (small batches) every spread is ~0 and every plate would look dead.
+            xcon = x[contact]
+            self._sp_sum += xcon.sum(0)
+            self._sp_sq += (xcon * xcon).sum(0)
+            self._sp_n += len(xcon)
+            if self._sp_n >= min(16, self.window // 2):
+                mean = self._sp_sum / self._sp_n
+                spread = np.sqrt(np.maximum(self._sp_sq / self._sp_n - mean * mean, 0.0))
+                med = float(np.median(spread))
+                self._scale = max(med, 1e-12)
+                self._plate_ok = spread > 0.25 * med
         scale = self._scale if self._scale is not None else max(float(xc.std()), 1e-12)
         z = (xc / scale).astype(np.float32)
         z[:, ~self._plate_ok] = 0.0
@@ -668,6 +680,8 @@ class StreamingStitcher:
         self._n_est = self._n
         a, b = self._tr_next, self._n
         sl = self._slots(a, b)
+        if self._scale is None and not final:
+            return                  # the usable plates are not decided yet: wait (in the ring)
         # Tracking starts when the finger has arrived. The relative contact test cannot tell
         # blank frames (fixed pattern and noise only) from a finger before it has seen one, so
         # the first frames wait until their texture separates into two classes as in the
@@ -716,13 +730,22 @@ class StreamingStitcher:
         if idx.size:
             tt = self._time[sl][idx]
             if self._uses_times:
+                if self._tr_fr is None and self.frame_rate_hz:
+                    self._tr_fr = self.frame_rate_hz
                 if self._tr_fr is None:
-                    d = np.diff(self._time[sl])
-                    self._tr_fr = self.frame_rate_hz or (float(1.0 / np.median(d)) if d.size
-                                                         else 1.0)
-                tt = tt * self._tr_fr
+                    # from the frames still in the ring (a batch may hold a single frame)
+                    d = np.diff(self._time[self._slots(max(0, b - self.window), b)])
+                    d = d[d > 0]
+                    if d.size:
+                        self._tr_fr = float(1.0 / np.median(d))
+                tt = tt * (self._tr_fr if self._tr_fr else 1.0)
             first = self._tracker.n_frames == 0
-            out = self._tracker.push(self._z[sl][idx], times=tt)
+            # The frames as prepared now: those that waited for the plate and finger decisions
+            # were prepared with a provisional level and scale.
+            scale = self._scale if self._scale is not None else 1.0
+            zt = ((self._raw[sl][idx] - self._offset) / scale).astype(np.float32)
+            zt[:, ~self._plate_ok] = 0.0
+            out = self._tracker.push(zt, times=tt)
             p = out["positions"]
             ok = out["link_ok"].copy()
             if first:
