@@ -305,16 +305,22 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             if rotation:
                 angles_deg = np.degrees(ref.angles_rad)
             # A finger that turns (by a degree or more: the refinement kept its turn) leaves
-            # shear, stretch and turn that take longer to converge: two more passes, the turn
-            # established, so the angles keep being corrected (min_turn_deg None: the
+            # shear, stretch and turn that take longer to converge: three more passes, the
+            # turn established, so the angles keep being corrected (min_turn_deg None: the
             # significance test of a first reading would stop them once the remaining turn is
-            # small). Measured, tracker + 2 + 2 passes, against the same with the test kept:
-            # the suite's 4-degree turn 0.30 -> 0.16 deg RMS (across 0.07 -> 0.15 px); the
-            # demo's turning slanted swipe 0.25 -> 0.16 deg, 0.22 -> 0.17 px across, 0.086 ->
-            # 0.076 px along. Swipes that do not turn are not touched.
+            # small). Their model is smoothed wider across (0.8 px): a turned frame's plates
+            # fall between the columns the others sampled, and the sharp model's linear
+            # interpolation there reads the twist short (at the true placement of the suite's
+            # 4-degree turn it read 7 % of the turn rate back; noise-free 3.6 %, 1.2 % at
+            # 0.5 px across); where the along phases are concentrated the twist comes from a
+            # model smoothed 0.8 px along too (see refine_positions). Measured on eight
+            # turning swipes of other fingers and geometries (8x192, 12x160, 16x128, turns
+            # of -4 to 6 degrees), against the earlier 2 passes of the sharp model: median
+            # 0.44 -> 0.08 deg RMS, worst 1.68 -> 0.24; the suite's turn 0.16 -> 0.08.
+            # Swipes that do not turn are not touched.
             if (model_passes is None and placed is not None and rotation
                     and np.ptp(angles_deg[prep.contact]) >= 1.0):
-                ref = refine(2, min_turn_deg=None)
+                ref = refine(3, min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8))
                 positions = ref.positions.copy()
                 angles_deg = np.degrees(ref.angles_rad)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,

@@ -189,6 +189,27 @@ def test_turn_read_from_the_twist():
     assert np.all(out0.angles_rad == 0.0)
 
 
+def test_turn_read_when_the_strip_moves_by_whole_pixels():
+    # A 16-row strip moving 0.98 px per frame samples nearly one along phase (the model
+    # between is interpolated), yet the turn is read: first the two ordinary passes, then
+    # the turn passes as the pipeline runs them (wider across, twist from a model smoothed
+    # 0.8 px along where the phases are concentrated). Frames from scipy's cubic spline
+    # (outside reference). Measured 0.019 degrees RMS; before the twist was read at
+    # concentrated phases the first passes kept no turn at all (1.7 degrees RMS).
+    tex = band_texture((512, 256), period_px=9.0, seed=4)
+    t_n = 170
+    pos = np.stack([0.98 * np.arange(t_n), np.zeros(t_n)], 1)
+    ang = np.radians(np.linspace(0.0, 3.0, t_n))
+    frames = _turning_frames(tex, pos, ang, r_n=16, c_n=128)
+    assert np.median(rf._phase_concentration(pos[:, 0], np.ones(t_n, bool), 16)) > 0.5
+    w = np.ones(frames.shape)
+    first = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=2)
+    assert np.degrees(np.ptp(first.angles_rad)) > 1.0
+    out = rf.refine_positions(frames, w, first.positions, first.angles_rad, iterations=3,
+                              min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8))
+    assert np.degrees(np.sqrt(np.mean((out.angles_rad - ang) ** 2))) < 0.1
+
+
 @pytest.mark.parametrize("kw, exc, match", [
     ({"positions": np.zeros((9, 2))}, ValueError, r"positions must have shape \(10, 2\)"),
     ({"angles_rad": np.zeros(3)}, ValueError, r"angles_rad must have shape \(10\); got \(3,\)"),
