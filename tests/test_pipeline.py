@@ -219,6 +219,24 @@ def test_simulated_too_fast_stretch_reported_as_gap():
     assert res.report.verdict == "unusable"
 
 
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_long_stall_at_low_snr_reports_no_gap(seed):
+    # A 14 dB swipe that stalls for over a third of its frames, with blank frames where the
+    # finger arrives and leaves (simulator truth: a stall, no gap). Measured: before the
+    # texture test took its static level over the finger's length rather than its duration,
+    # 3 of these 3 swipes reported false gaps at the fingertip (up to 9).
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("right_loop", size_mm=(12.0, 10.0), rng=40 + seed)
+    cap = simulate.swipe("right_loop", finger=finger, rng=seed, n_rows=8, n_cols=192,
+                         frame_rate_hz=4000.0, speed_mm_s=150.0, snr_db=14.0,
+                         stalls=((3.4, 0.045),))
+    assert not cap.events_of("gap") and cap.events_of("stall")
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    assert not res.events_of("gap")
+    assert res.events_of("stall")
+
+
 def test_compiled_plate_line_sums_match_scipy_map_coordinates():
     # Outside reference: scipy.ndimage.map_coordinates (order 1; mode "nearest" for the image,
     # "constant" for the coverage mask) at the plates' frame-0 coordinates, summed in numpy;
