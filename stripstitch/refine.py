@@ -933,11 +933,19 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         # do not bias it).
         sh_var = np.where(ok & (conc < 0.5), sh_var, np.inf)
         # The twist (angle error growing with the travel) is read on every frame the model
-        # places: it is an along shift that changes across the strip, which a model
-        # interpolated between concentrated along phases still shows, only weaker (a 16-row
-        # strip at 0.98 px per frame read 65 % of a 3-degree turn; held back as the stretch
-        # is, such a swipe kept no turn at all, 1.7 deg RMS). twist_smooth_px reads it better.
-        tw_var = np.where(ok, tw_var, np.inf) if rotation else np.full(t_n, np.inf)
+        # places that travels: it is an along shift that changes across the strip, which a
+        # model interpolated between concentrated along phases still shows, only weaker (a
+        # 16-row strip at 0.98 px per frame read 65 % of a 3-degree turn; held back as the
+        # stretch is, such a swipe kept no turn at all, 1.7 deg RMS). twist_smooth_px reads
+        # it better. Only where the moving frames themselves sample few phases, though: a
+        # stall (frames that do not move, concentrated at one phase) and the frames around
+        # it, whose model the stall's hundreds of repeats make, are left out as before (read
+        # there, they turned an unturned swipe by 2 degrees).
+        travel = np.abs(np.gradient(ndimage.uniform_filter1d(pos[:, 0], 5, mode="nearest")))
+        moving = active & (travel >= 0.2)
+        whole_px = moving & (_phase_concentration(pos[:, 0], moving, r_n) >= 0.5)
+        tw_var = np.where(ok & ((conc < 0.5) | whole_px), tw_var, np.inf) if rotation \
+            else np.full(t_n, np.inf)
         st_s = _smooth_weighted(st, st_var, sigma_frames)
         sh_s = _smooth_weighted(sh, sh_var, sigma_frames)
         tw_s = _smooth_weighted(tw, tw_var, sigma_frames)

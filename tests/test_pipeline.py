@@ -237,6 +237,22 @@ def test_long_stall_at_low_snr_reports_no_gap(seed):
     assert res.events_of("stall")
 
 
+def test_long_stall_does_not_turn_an_unturned_swipe():
+    # Simulator truth: no rotation; the swipe stalls for 38 % of its frames and backs up.
+    # Measured: when the twist was read on the frames around the stall (concentrated
+    # phases, their model made of the stall's repeats) the swipe came out turned by 2.2
+    # degrees; now not at all.
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("left_loop", size_mm=(12.0, 10.0), rng=7602)
+    cap = simulate.swipe("left_loop", finger=finger, rng=8002, n_rows=8, n_cols=192,
+                         frame_rate_hz=4000.0, speed_mm_s=96.5, snr_db=18.4,
+                         stalls=((3.77, 0.0698),), backtracks=((5.16, 0.216),))
+    assert np.ptp(cap.angles) == 0.0
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    assert np.ptp(res.angles) < 0.5
+
+
 def test_compiled_plate_line_sums_match_scipy_map_coordinates():
     # Outside reference: scipy.ndimage.map_coordinates (order 1; mode "nearest" for the image,
     # "constant" for the coverage mask) at the plates' frame-0 coordinates, summed in numpy;
