@@ -26,8 +26,9 @@ at once (the filter is causal), so the frames are fused right away. The first fr
 (at most half a window) until their texture shows whether a finger is there yet. Unlike the
 batch path it tracks from the fingertip forwards (the batch path starts in the middle of the
 swipe) and it does not push frames out across a gap. ``python benchmarks/bench_stream.py``:
-5 300 frames/s in default mode and 7 400 in fast mode on one core (1.3 and 1.9 times real time
-at 4 kHz; the pairwise window path before it ran at 0.36); on its simulated 8 x 192 swipe span
+5 300 frames/s in default mode and 7 400 in fast mode on one core of an earlier machine (1.3
+and 1.9 times real time at 4 kHz; the pairwise window path before it ran at 0.36; 2 000 and
+2 200 on a 2.0 GHz Xeon); on its simulated 8 x 192 swipe span
 error +0.16 % (batch -0.04 %), image correlation with the batch image 0.95.
 On shorter strips: coarse NCC search and Gauss-Newton refinement of the successive pairs and
 of whole-pixel partners looking back within the window (the registration stage of the batch
