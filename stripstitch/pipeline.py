@@ -360,12 +360,27 @@ def _strong_frames(prep, chain, noise, along):
     return sig2 >= 0.25 * float(np.median(sig2))
 
 
-def _textured_link(strong):
-    """Links with clear texture on both sides: the two frames and the next frame outward on
-    each side (a finger arriving or leaving fades over several frames; a too-fast swipe has
-    full texture on both sides of the jump)."""
-    s = np.concatenate([[False], np.asarray(strong, dtype=bool), [False]])
-    return s[:-3] & s[1:-2] & s[2:-1] & s[3:]
+def _gap_links(link_ok, strong):
+    """Failed links that are gaps: each run of successive failed links whose outer frames,
+    and the next frame outward on each side, show clear texture (a finger arriving or leaving
+    fades over several frames; a too-fast swipe has full texture on both sides of the jump,
+    while the frames within it may be blurred by the motion)."""
+    link_ok = np.asarray(link_ok, dtype=bool)
+    s = np.concatenate([[False], np.asarray(strong, dtype=bool), [False]])   # s[k + 1] = strong[k]
+    out = np.zeros(link_ok.shape, dtype=bool)
+    k, n = 0, link_ok.size
+    while k < n:
+        if link_ok[k]:
+            k += 1
+            continue
+        e = k
+        while e + 1 < n and not link_ok[e + 1]:
+            e += 1
+        # links k..e join frames k..e+1: outer frames k and e+1, outward k-1 and e+2
+        if s[k] and s[k + 1] and s[e + 2] and (e + 3 < s.size and s[e + 3]):
+            out[k:e + 1] = True
+        k = e + 1
+    return out
 
 
 @numba.njit(**JIT)
@@ -438,7 +453,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     else:
         noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
         strong = _strong_frames(prep, chain, noise, tr.positions[:, 0])
-        link_gap = ~link_ok & _textured_link(strong)
+        link_gap = _gap_links(link_ok, strong)
     # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
     positions = spread(tr)
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
@@ -512,7 +527,7 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     noise = float(np.median(est_c.sigma[link_ok])) if link_ok.any() else prep.noise_sigma
     along = np.concatenate([[0.0], np.cumsum(np.where(link_ok, est_c.shift[:, 0], 0.0))])
     strong = _strong_frames(prep, chain, noise, along)
-    link_gap = ~link_ok & _textured_link(strong)
+    link_gap = _gap_links(link_ok, strong)
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
     # Coarse chain positions (failed links bridged by the neighbours' median step).
     fill = np.nanmedian(chain_steps, axis=0) if np.isfinite(chain_steps).any() else np.zeros(2)

@@ -237,6 +237,24 @@ def test_long_stall_at_low_snr_reports_no_gap(seed):
     assert res.events_of("stall")
 
 
+def test_gap_found_when_the_jump_blurs_its_frames():
+    # Simulator truth: a jump of 17.3 rows on a 16-row strip (a gap of 1.3 rows); the frame
+    # taken during the jump is blurred by the motion and shows faint texture. The frames on
+    # both sides of the run of failed links decide, not the blurred one (measured: with the
+    # rule per link the gap was missed).
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("tented_arch", size_mm=(12.0, 10.0), rng=9957)
+    cap = simulate.swipe("tented_arch", finger=finger, rng=9977, n_rows=16, n_cols=128,
+                         frame_rate_hz=2000.0, profile="human", speed_mm_s=148.5,
+                         snr_db=39.2, too_fast=((5.163, 1.404),), stalls=((7.73, 0.0412),))
+    truth = cap.events_of("gap")
+    assert len(truth) == 1 and truth[0].details["missing_rows"] > 0
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    found = res.events_of("gap")
+    assert len(found) == 1 and abs(found[0].first_frame - truth[0].first_frame) <= 2
+
+
 def test_long_stall_does_not_turn_an_unturned_swipe():
     # Simulator truth: no rotation; the swipe stalls for 38 % of its frames and backs up.
     # Measured: when the twist was read on the frames around the stall (concentrated
