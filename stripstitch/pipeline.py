@@ -377,7 +377,7 @@ def _gap_links(link_ok, strong):
         while e + 1 < n and not link_ok[e + 1]:
             e += 1
         # links k..e join frames k..e+1: outer frames k and e+1, outward k-1 and e+2
-        if s[k] and s[k + 1] and s[e + 2] and (e + 3 < s.size and s[e + 3]):
+        if s[k] and s[k + 1] and s[e + 2] and s[e + 3]:
             out[k:e + 1] = True
         k = e + 1
     return out

@@ -255,6 +255,26 @@ def test_gap_found_when_the_jump_blurs_its_frames():
     assert len(found) == 1 and abs(found[0].first_frame - truth[0].first_frame) <= 2
 
 
+def test_gap_links_judge_each_run_of_failed_links_by_its_sides():
+    from stripstitch.pipeline import _gap_links
+
+    strong = np.array([0, 1, 1, 1, 0, 1, 1, 1, 1, 1, 1], bool)   # frame 4 blurred by a jump
+    ok = np.ones(10, bool)
+    ok[3:5] = False                  # links 3-4 and 4-5 fail: the run's sides 2, 3 | 5, 6
+    np.testing.assert_array_equal(np.flatnonzero(_gap_links(ok, strong)), [3, 4])
+    ok = np.ones(10, bool)
+    ok[0] = False                    # at the first frame: no frame outward, not a gap
+    assert not _gap_links(ok, strong).any()
+    ok = np.ones(10, bool)
+    ok[1] = False                    # side 0, 1: frame 0 is faint (the fingertip)
+    assert not _gap_links(ok, strong).any()
+    ok = np.ones(10, bool)
+    ok[8] = False                    # 7, 8 | 9, 10: all clear
+    np.testing.assert_array_equal(np.flatnonzero(_gap_links(ok, strong)), [8])
+    ok[9] = False                    # the run 8-9 now ends at the last frame: no frame outward
+    assert not _gap_links(ok, strong).any()
+
+
 def test_long_stall_does_not_turn_or_slide_a_swipe():
     # Simulator truth: no rotation; the swipe stalls for 38 % of its frames and backs up.
     # Measured: when the twist was read on the frames around the stall (concentrated
