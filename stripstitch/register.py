@@ -62,6 +62,21 @@ def _robust_sigma(x, axis=None):
     return 1.4826 * np.median(np.abs(x - med), axis=axis)
 
 
+def _blank_finger_split(log_texture):
+    """Otsu's threshold (Otsu 1979, via scikit-image) between frames without and with a
+    finger on their log texture, or None when the two classes do not really separate
+    (means less than 3x apart) or there are fewer than 4 frames."""
+    from skimage.filters import threshold_otsu
+    lt = np.asarray(log_texture, dtype=np.float64)
+    if lt.size < 4 or not np.ptp(lt) > 0:
+        return None
+    th = float(threshold_otsu(lt))
+    lo_c, hi_c = lt[lt <= th], lt[lt > th]
+    if lo_c.size and hi_c.size and hi_c.mean() - lo_c.mean() > np.log(3.0):
+        return th
+    return None
+
+
 def prepare(frames, *, frame_weights=None):
     """Remove the fixed pattern and find bad plates and frames in contact.
 
@@ -102,20 +117,17 @@ def prepare(frames, *, frame_weights=None):
     # Two classes (no finger / finger) by Otsu's threshold on log texture (Otsu 1979, via
     # scikit-image), used only when the classes really separate (means more than 3x apart);
     # otherwise every frame with any texture counts as contact.
-    from skimage.filters import threshold_otsu
     floor = 1e-9 * (max(abs(float(x.max())), abs(float(x.min()))) + 1.0)
     lt = np.log(texture0 + floor)
     thresh = floor
-    if t_n >= 4 and np.ptp(lt) > 0:
-        th = threshold_otsu(lt)
-        lo_c, hi_c = lt[lt <= th], lt[lt > th]
-        if lo_c.size and hi_c.size and hi_c.mean() - lo_c.mean() > np.log(3.0):
-            # Partial contact counts: texture power grows with the fraction of plates
-            # touched, so a frame is in contact above a small share of the full-contact excess power
-            # over the blank level (5 %: fainter frames at the soft pad edge gave worse placements).
-            l0 = float(np.exp(np.median(lo_c)))
-            l1 = float(np.percentile(texture0, 90))
-            thresh = float(np.sqrt(l0 ** 2 + 0.05 * max(l1 ** 2 - l0 ** 2, 0.0)))
+    th = _blank_finger_split(lt)
+    if th is not None:
+        # Partial contact counts: texture power grows with the fraction of plates
+        # touched, so a frame is in contact above a small share of the full-contact excess power
+        # over the blank level (5 %: fainter frames at the soft pad edge gave worse placements).
+        l0 = float(np.exp(np.median(lt[lt <= th])))
+        l1 = float(np.percentile(texture0, 90))
+        thresh = float(np.sqrt(l0 ** 2 + 0.05 * max(l1 ** 2 - l0 ** 2, 0.0)))
     contact = texture0 > thresh
     w = contact.astype(np.float64)
     if frame_weights is None and t_n > 2:

@@ -276,7 +276,6 @@ class StreamingStitcher:
         self._tracker = None
         self._tr_pos = np.zeros(2)        # position of the last placed frame
         self._tr_fr = None                # frame rate used for the tracker's times
-        self._tr_last_t = 0.0
         self._tr_prev_contact = False
         self._tr_prev_strong = False
         self._tr_armed = False
@@ -437,8 +436,7 @@ class StreamingStitcher:
             # Judged live against the texture seen so far; with the whole swipe seen, a gap
             # needs clear texture on both sides by the final statistics (frames before the
             # finger arrived looked like texture then).
-            floor2 = self._tr_tex_min ** 2
-            strong = tex ** 2 - floor2 >= 0.25 * max(self._tex_hi ** 2 - floor2, 0.0)
+            strong = self._clear_texture(tex)
             link_failed &= strong[1:] & strong[:-1]
         r_n = self._shape[0]
         image, weight, origin = self._assemble()
@@ -695,15 +693,9 @@ class StreamingStitcher:
         start = 0
         if not self._tr_armed:
             lt = np.log(np.maximum(tex, 1e-12))
-            split = None
-            if len(lt) >= 4 and np.ptp(lt) > np.log(3.0):
-                from skimage.filters import threshold_otsu
-                th = threshold_otsu(lt)
-                lo_c, hi_c = lt[lt <= th], lt[lt > th]
-                if lo_c.size and hi_c.size and hi_c.mean() - lo_c.mean() > np.log(3.0):
-                    split = int(np.argmax(lt > th))
-            if split is not None:
-                start = split
+            th = _reg._blank_finger_split(lt)
+            if th is not None:
+                start = int(np.argmax(lt > th))
             elif not (final or b - a >= self.window // 2):
                 return                                  # wait
             self._tr_armed = True
@@ -715,6 +707,13 @@ class StreamingStitcher:
         self._tr_next = b
         self._freeze(b, events, rows)
         self._emit(rows, everything=final)
+
+    def _clear_texture(self, tex):
+        """Frames of clear texture: signal power above the quietest frame's (noise and fixed
+        pattern) at least a quarter of the typical frame's (the batch path's rule, with the
+        quietest frame so far for the noise)."""
+        floor2 = self._tr_tex_min ** 2
+        return tex ** 2 - floor2 >= 0.25 * max(self._tex_hi ** 2 - floor2, 0.0)
 
     def _place_tracked(self, a, b, contact):
         """Positions, links and confidence inputs of frames a..b-1 (their ring slots)."""
@@ -756,12 +755,7 @@ class StreamingStitcher:
             # The motion carries the frames across it; unlike the batch path, nothing is pushed
             # out by the strip's height: without the frames after it, a failed link at the
             # finger's exit cannot be told from a too-fast swipe.
-            # Clear texture: signal power above the quietest frame's (noise and fixed pattern)
-            # at least a quarter of the typical frame's (the batch path's rule, with the
-            # quietest frame so far for the noise).
-            tx = self._tex[sl][idx]
-            floor2 = self._tr_tex_min ** 2
-            strong = tx ** 2 - floor2 >= 0.25 * max(self._tex_hi ** 2 - floor2, 0.0)
+            strong = self._clear_texture(self._tex[sl][idx])
             prev_strong = np.concatenate([[self._tr_prev_strong], strong[:-1]])
             ok |= ~(strong & prev_strong)
             # The previous frame out of contact: no link to judge.
@@ -778,7 +772,6 @@ class StreamingStitcher:
                     j += 1
                 pos[k] = last
             self._tr_pos = last.copy()
-            self._tr_last_t = float(tt[-1])
             self._tr_prev_strong = bool(strong[-1])
         if b > a:
             self._tr_prev_contact = bool(contact[-1])
