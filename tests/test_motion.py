@@ -274,3 +274,12 @@ def test_velocity_matches_numerical_derivative():
     const = make_motion(speed_mm_s=80.0, length_mm=2.0, skew_deg=30.0)
     np.testing.assert_allclose(const.velocity_um_s([0.001, 0.02]),
                                [[80e3 * math.cos(math.radians(30)), 80e3 * math.sin(math.radians(30))]] * 2)
+
+
+def test_events_at_the_very_end_of_the_length_are_accepted():
+    # Found by hypothesis: the length, turned into micrometres and back, rounded just below a
+    # stall placed exactly at its end (4.350068137093426 mm) and the valid input was refused.
+    length = 4.350068137093426
+    m = make_motion("constant", length_mm=length, stalls=[(length, 0.01)],
+                    backtracks=[(length, 0.2)], rng=1)
+    assert m.n_frames >= 2

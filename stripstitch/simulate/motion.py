@@ -430,7 +430,10 @@ def make_motion(profile="constant", *, frame_rate_hz=4000.0, speed_mm_s=100.0, l
     profile = check_choice(profile, PROFILES, name="profile")
     fr = check_positive(frame_rate_hz, name="frame_rate_hz")
     speed = check_positive(speed_mm_s, name="speed_mm_s")
-    length_um = check_positive(length_mm, name="length_mm") * 1e3
+    # Positions along the swipe are checked against the length as given (mm): converted to
+    # um and back it can round below a position placed exactly at its end.
+    length_mm_f = check_positive(length_mm, name="length_mm")
+    length_um = length_mm_f * 1e3
     start = np.asarray(start_um, dtype=np.float64) if not isinstance(start_um, str) else None
     if start is None or start.shape != (2,) or not np.isfinite(start).all():
         raise ValueError(f"start_um must be a finite (along, across) pair in micrometres; got {start_um!r}")
@@ -448,7 +451,6 @@ def make_motion(profile="constant", *, frame_rate_hz=4000.0, speed_mm_s=100.0, l
     if exposure > 1.0 / fr * (1 + 1e-12):
         raise ValueError(f"exposure_s must be at most one frame period (1/frame_rate_hz = {1.0 / fr!r} s); "
                          f"got {exposure_s!r}")
-    length_mm_f = length_um / 1e3
     stall_list = _check_tuples(stalls, name="stalls", sizes=(2,), what="(position_mm, duration_s)")
     for i, (pos, dur) in enumerate(stall_list):
         if not (0.0 <= pos <= length_mm_f) or dur <= 0:
