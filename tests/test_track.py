@@ -152,8 +152,10 @@ def test_random_constant_velocity_recovered(v0, v1, seed):
     res = _run(pos, seed=seed)
     assert res.link_ok.all()
     # Up to 40 key hops of at most about 0.004 px each (measured: 0.134 px after 39 hops at
-    # 3.375 px/frame, a hop every frame at a 0.375 px fraction).
-    assert (_err(res, pos) < 0.16).all()
+    # 3.375 px/frame, a hop every frame at a 0.375 px fraction; at 3.5 px/frame, the half-pixel
+    # fraction, 0.106 px median over 144 noise seeds and at most 0.172: hypothesis drew seed
+    # 124, 0.164, against the earlier 0.16).
+    assert (_err(res, pos) < 0.18).all()
 
 
 def test_gain_and_offset_do_not_matter():
