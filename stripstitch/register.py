@@ -19,7 +19,7 @@ from scipy import ndimage
 
 from ._jit import JIT
 
-__all__ = ["Prepared", "PairEstimates", "prepare", "coarse_shifts", "refine_shifts"]
+__all__ = ["Prepared", "PairEstimates", "prepare", "coarse_shifts", "refine_shifts", "frame_turn"]
 
 
 # --------------------------------------------------------------------------------------
@@ -795,6 +795,89 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
     # Noise sits in both frames; the residual variance is about twice one frame's.
     return PairEstimates(pairs=pairs, shift=sh, angle_rad=th, info=info, angle_info=ainfo,
                          sigma=np.sqrt(var / 2.0), n_valid=nv.astype(np.int64), ncc=ncc, ok=okp)
+
+
+def frame_turn(frame_a, frame_b, plate_ok, shift_px, *, max_deg=6.0, step_deg=0.1):
+    """In-plane turn of one frame against another over the same patch of finger.
+
+    Finds the rotation d (degrees, about the frame centre) and shift s (px) with
+    ``frame_b(u) ~ g frame_a(R(d) u + s) + o`` (u: plate offsets from the centre; gain g and
+    offset o free): a grid search over d with s fixed at ``shift_px``, then a joint
+    least-squares fit of (s, d, g, o) on frame_a's cubic spline.
+
+    Parameters
+    ----------
+    frame_a, frame_b : (R, C) ndarray
+        Prepared frames (fixed pattern removed), e.g. the first and last frames of a stall.
+    plate_ok : (R, C) bool ndarray
+        Plates to use.
+    shift_px : (2,) array_like
+        Starting shift (along, across), px.
+    max_deg, step_deg : float
+        Range and step of the grid search. Defaults 6 and 0.1.
+
+    Returns
+    -------
+    turn_deg : float
+    shift_px : (2,) ndarray
+    cost_gain : float
+        Residual sum of squares with the turn held at 0 (shift, gain and offset refitted)
+        over the one with it free, minus 1: how much the turn explains.
+
+    References
+    ----------
+    .. [1] M. Unser, "Splines: a perfect fit for signal and image processing", IEEE Signal
+           Processing Magazine 16(6), 22-38 (1999) (cubic spline interpolation).
+    """
+    from scipy import optimize
+
+    za = np.asarray(frame_a, dtype=np.float64)
+    zb = np.asarray(frame_b, dtype=np.float64)
+    ok = np.asarray(plate_ok, dtype=bool)
+    r_n, c_n = za.shape
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    u0, u1 = np.meshgrid(np.arange(r_n) - cf[0], np.arange(c_n) - cf[1], indexing="ij")
+    spl = ndimage.spline_filter(np.where(ok, za, 0.0), order=3)
+
+    def sample(p0, p1, deg):
+        t = np.radians(deg)
+        c, s = np.cos(t), np.sin(t)
+        q0 = cf[0] + p0 + c * u0 - s * u1
+        q1 = cf[1] + p1 + s * u0 + c * u1
+        inside = (q0 >= 1) & (q0 <= r_n - 2) & (q1 >= 1) & (q1 <= c_n - 2) & ok
+        return ndimage.map_coordinates(spl, [q0, q1], order=3, prefilter=False, mode="nearest"), inside
+
+    def ncc(deg):
+        a, w = sample(shift_px[0], shift_px[1], deg)
+        if w.sum() < 0.1 * w.size:
+            return -1.0
+        a = a[w] - a[w].mean()
+        b = zb[w] - zb[w].mean()
+        den = np.sqrt((a * a).sum() * (b * b).sum())
+        return float((a * b).sum() / den) if den > 0 else -1.0
+
+    shift_px = np.asarray(shift_px, dtype=np.float64)
+    grid = np.arange(-max_deg, max_deg + 1e-9, step_deg)
+    start = float(grid[int(np.argmax([ncc(d) for d in grid]))])
+
+    # The plates compared stay fixed during the fit (a mask that followed the parameters
+    # would make the residual jump as plates cross the border): those inside with half a
+    # pixel to spare at the starting turn and shift.
+    t0 = np.radians(start)
+    q0 = cf[0] + shift_px[0] + np.cos(t0) * u0 - np.sin(t0) * u1
+    q1 = cf[1] + shift_px[1] + np.sin(t0) * u0 + np.cos(t0) * u1
+    keep = (q0 >= 1.5) & (q0 <= r_n - 2.5) & (q1 >= 1.5) & (q1 <= c_n - 2.5) & ok
+
+    def resid(p, turn):
+        a, _ = sample(p[0], p[1], p[2] if turn is None else turn)
+        return np.where(keep, p[-2] * a + p[-1] - zb, 0.0).ravel()
+
+    free = optimize.least_squares(lambda p: resid(p, None), [shift_px[0], shift_px[1], start, 1.0, 0.0],
+                                  x_scale=[0.1, 0.1, 0.1, 0.01, 0.01])
+    held = optimize.least_squares(lambda p: resid(np.r_[p[:2], 0.0, p[2:]], 0.0),
+                                  [shift_px[0], shift_px[1], 1.0, 0.0], x_scale=[0.1, 0.1, 0.01, 0.01])
+    gain = float(np.sum(held.fun ** 2) / max(np.sum(free.fun ** 2), 1e-300) - 1.0)
+    return float(free.x[2]), free.x[:2].copy(), gain
 
 
 def coarse_chain(zn, pairs, *, max_along, max_across, pool=8, penalty=0.005):
