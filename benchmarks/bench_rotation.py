@@ -124,8 +124,9 @@ def main(argv=None):
           f"{fmt(summary['random_worst_rotation_rms_deg'])} deg, "
           f"{summary['random_within_0_1_deg']} of {summary['random_swipes']} within 0.1 deg. "
           "The turn is read from the twist (an along shift growing across the strip and with the "
-          "travel), so a finger that turns while it stalls, and some textures and speeds, keep "
-          "part of their turn.\n\n" + table(rand, cols, heads) + "\n")
+          "travel) and, where the finger stalls, between the stall's first and last frames; some "
+          "textures and speeds still keep part of their turn or gain some.\n\n"
+          + table(rand, cols, heads) + "\n")
     print()
     print(md)
     paths = write("rotation_quick" if args.quick else "rotation",
