@@ -112,8 +112,15 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     # Backtrack: along-swipe motion against the swipe's overall direction.
     direction = np.sign(positions[last, 0] - positions[first, 0]) or 1.0
     back = (direction * v_along < -v_stall) & in_c
+    # ... also frame by frame: a quick jerk back (a few frames at the full speed of the
+    # swipe) vanishes in the smoothed velocity (measured: 0.4 mm back in 2 ms at 2 kHz, three
+    # of 20 such backtracks in 64 random simulated swipes went unreported).
+    step = np.zeros(t_n)
+    step[1:] = direction * np.diff(positions[:, 0])
+    back |= (step < -v_stall) & in_c
     for a, b in _runs(back):
-        dist = float(direction * (positions[a, 0] - positions[min(b + 1, t_n - 1), 0]))
+        seg = direction * positions[max(a - 1, 0):min(b + 2, t_n), 0]
+        dist = float(seg[0] - seg.min())
         if dist >= min_backtrack_px:
             events.append(Event("backtrack", a, b, {
                 "distance_px": round(dist, 2), "distance_mm": round(dist * pitch_um / 1000, 3),

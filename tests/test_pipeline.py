@@ -362,3 +362,28 @@ def test_compiled_plate_line_sums_match_scipy_map_coordinates():
     assert expect[0].sum() > 100                      # the check is not vacuous
     for g, e in zip(got, expect):
         np.testing.assert_allclose(g, e, rtol=1e-9, atol=1e-9)
+
+
+def test_quick_jerk_back_is_reported_and_noise_is_not():
+    # A trajectory known by construction: 4 px per frame at 2 kHz, then 4 frames at 2 px per
+    # frame backwards (0.4 mm in 2 ms, a jerk the smoothed velocity averages away), then on;
+    # a second one that stalls 200 frames with 0.02 px of white jitter (common practice: a
+    # placement's noise is no motion).
+    from stripstitch import report
+
+    def events(along):
+        t_n = along.size
+        pos = np.stack([along, np.zeros(t_n)], 1)
+        return report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
+                                  contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
+                                  link_dt_frames=np.ones(t_n - 1), times_s=np.arange(t_n) / 2000.0,
+                                  frame_rate_hz=2000.0, n_rows=16, pitch_um=50.8)
+
+    steps = np.r_[np.full(60, 4.0), np.full(4, -2.0), np.full(60, 4.0)]
+    jerk = [e for e in events(np.r_[0.0, np.cumsum(steps)]) if e.kind == "backtrack"]
+    assert len(jerk) == 1 and 59 <= jerk[0].first_frame <= 62
+    assert jerk[0].details["distance_px"] == pytest.approx(8.0, abs=0.5)
+    rng = np.random.default_rng(2)
+    stall = np.r_[np.arange(60) * 4.0, np.full(200, 240.0), 240.0 + np.arange(1, 61) * 4.0]
+    kinds = [e.kind for e in events(stall + 0.02 * rng.standard_normal(stall.size))]
+    assert "backtrack" not in kinds and kinds.count("stall") == 1
