@@ -18,6 +18,7 @@ import numpy as np
 from scipy import ndimage
 
 from ._jit import JIT
+from ._validate import check_array
 
 __all__ = ["Prepared", "PairEstimates", "prepare", "coarse_shifts", "refine_shifts", "frame_turn"]
 
@@ -832,10 +833,15 @@ def frame_turn(frame_a, frame_b, plate_ok, shift_px, *, max_deg=6.0, step_deg=0.
     """
     from scipy import optimize
 
-    za = np.asarray(frame_a, dtype=np.float64)
-    zb = np.asarray(frame_b, dtype=np.float64)
+    za = check_array(frame_a, name="frame_a", shape=(None, None))
+    zb = check_array(frame_b, name="frame_b", shape=za.shape)
+    if np.shape(plate_ok) != za.shape:
+        raise ValueError(f"plate_ok must have the frames' shape {za.shape}; got {np.shape(plate_ok)}")
     ok = np.asarray(plate_ok, dtype=bool)
+    shift_px = check_array(shift_px, name="shift_px", shape=(2,))
     r_n, c_n = za.shape
+    if r_n < 4 or c_n < 8:
+        raise ValueError(f"frame_a must have at least 4 rows and 8 columns; got {za.shape}")
     cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
     u0, u1 = np.meshgrid(np.arange(r_n) - cf[0], np.arange(c_n) - cf[1], indexing="ij")
     spl = ndimage.spline_filter(np.where(ok, za, 0.0), order=3)
@@ -857,7 +863,6 @@ def frame_turn(frame_a, frame_b, plate_ok, shift_px, *, max_deg=6.0, step_deg=0.
         den = np.sqrt((a * a).sum() * (b * b).sum())
         return float((a * b).sum() / den) if den > 0 else -1.0
 
-    shift_px = np.asarray(shift_px, dtype=np.float64)
     grid = np.arange(-max_deg, max_deg + 1e-9, step_deg)
     start = float(grid[int(np.argmax([ncc(d) for d in grid]))])
 

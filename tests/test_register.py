@@ -206,3 +206,21 @@ def test_frame_turn_recovers_a_known_rotation(turn_deg, shift):
     np.testing.assert_allclose(s, shift, atol=0.05)
     # The turn explains the residual only where there is one.
     assert (gain > 1.0) if abs(turn_deg) >= 0.5 else (gain < 0.01)
+    # Antisymmetric: b against a is the inverse transform, R(-d) and -R(-d) s.
+    d2, s2, _ = register.frame_turn(fb, fa, np.ones((r_n, c_n), bool), (0.0, 0.0))
+    assert d2 == pytest.approx(-turn_deg, abs=0.03)
+    back = -np.array([[np.cos(t), np.sin(t)], [-np.sin(t), np.cos(t)]]) @ np.asarray(shift)
+    np.testing.assert_allclose(s2, back, atol=0.05)
+
+
+def test_frame_turn_rejects_bad_input():
+    a = np.zeros((8, 32))
+    ok = np.ones((8, 32), bool)
+    with pytest.raises(ValueError, match="frame_b"):
+        register.frame_turn(a, np.zeros((8, 31)), ok, (0, 0))
+    with pytest.raises(ValueError, match="plate_ok"):
+        register.frame_turn(a, a, ok[:4], (0, 0))
+    with pytest.raises(ValueError, match="shift_px"):
+        register.frame_turn(a, a, ok, (0, 0, 0))
+    with pytest.raises(ValueError, match="at least 4 rows"):
+        register.frame_turn(np.zeros((2, 32)), np.zeros((2, 32)), np.ones((2, 32), bool), (0, 0))
