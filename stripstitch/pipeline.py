@@ -141,8 +141,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         Both place the frames with the key-frame tracker (:mod:`stripstitch.track`, one
         compiled pass); ``"default"`` then refines every frame against a model of the finger
         (stretch, shear, turn, pixel locking), ``"fast"`` stops there (no rotation), for
-        drivers. Strips of fewer than 8 rows (too little overlap per key frame for the
-        tracker) take the multi-baseline pairs in both modes, several times slower
+        drivers. Strips of fewer than 8 rows or 24 columns (too little overlap or texture per
+        key frame for the tracker) take the multi-baseline pairs in both modes, several times slower
         (``result.options["placement"]`` says which). Default is "default".
     output_pitch_um : float or (2,) float, optional
         Resample the image to this pitch (e.g. 50.8 for exactly 500 ppi). Default is None
@@ -177,7 +177,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
        the key frames' positions are part of the filter's state (stochastic cloning [5]_),
        so their errors are corrected rather than inherited, and tracking runs outwards from
        the best-seen frame in the middle of the swipe.
-    3. Strips of fewer than 8 rows: successive frames are matched by
+    3. Strips of fewer than 8 rows or 24 columns: successive frames are matched by
        normalised cross-correlation over every integer shift (FFT) and refined by
        Gauss-Newton with a 2x2 information matrix per pair (cluster-robust over blocks of
        columns); frames are also paired at longer baselines at nearly whole-pixel
@@ -480,13 +480,19 @@ def _texture_about(z, frames, static, ok):
 # 0.63 px; span +0.15 % vs -0.77 %). The filter's own drift estimate did not separate these
 # (it passed R = 4 at 30 dB and failed R = 8 at 12 dB), so the row count decides.
 _TRACK_MIN_ROWS = 8
+# ... and a strip of fewer than 24 columns shows the tracker too little texture per key: 16
+# simulated swipes of 16 columns (8 to 32 rows, four finger classes, 25 dB) placed by the
+# tracker erred by 0.16-172 px RMS along (median 3.9; ridge-period jumps, two false gaps), by
+# the pairs 0.06-11.7 (median 2.5; 12 of the 16 better along and across together). At 24 columns neither path was better
+# (2 of 4 each), so the switch stops there.
+_TRACK_MIN_COLS = 24
 
 
 def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px, *, refit):
     """The key-frame tracker's placement (:mod:`stripstitch.track`); None for strips of
-    fewer than ``_TRACK_MIN_ROWS`` rows."""
+    fewer than ``_TRACK_MIN_ROWS`` rows or ``_TRACK_MIN_COLS`` columns."""
     t_n, r_n, c_n = prep.z.shape
-    if r_n < _TRACK_MIN_ROWS:
+    if r_n < _TRACK_MIN_ROWS or c_n < _TRACK_MIN_COLS:
         return None
     times = np.concatenate([[0.0], np.cumsum(dt_frames)])
 
