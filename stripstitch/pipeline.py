@@ -364,11 +364,9 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
     1.02, where the angles held none; four stalls that did not turn read 0.001-0.003 degrees.
     """
     t_n = len(angles_deg)
-    fr = frame_rate_hz if frame_rate_hz else 1.0
-    v_stall = 2.0 * 1e3 / pitch_um / fr if frame_rate_hz else 0.01
-    min_len = max(16, int(round(0.01 * fr))) if frame_rate_hz else 40
-    tfr = np.asarray(times, dtype=np.float64) * fr if frame_rate_hz else np.arange(t_n, dtype=float)
-    vel = _report._smoothed_velocity(positions, tfr, max(2, int(round(0.002 * fr))) if frame_rate_hz else 8)
+    # The report's stall rule (at least 16 frames: the ends are means of four).
+    vel, v_stall, min_len = _report._stall_rule(positions, times, frame_rate_hz, pitch_um)
+    min_len = max(16, min_len)
     # Along the swipe only: a turn on the spot reads as a drift across (the placement has no
     # turn in it), at 0.04 px per frame for a 2-degree turn over 160 frames at 4 kHz, which
     # the report's speed rule would count as motion.

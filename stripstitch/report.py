@@ -36,6 +36,20 @@ def _smoothed_velocity(pos, times, half):
     return np.nan_to_num(v)
 
 
+def _stall_rule(positions, times_s, frame_rate_hz, pitch_um, *, stall_speed_mm_s=2.0,
+               min_stall_s=0.01):
+    """Velocity over a short window (px per frame period; +-2 ms, or +-8 frames without a
+    frame rate) and the stall rule in those units: (velocity (T, 2), speed limit, fewest
+    frames). Without a frame rate: 0.01 px per frame for 40 frames."""
+    fr = frame_rate_hz if frame_rate_hz else 1.0
+    half = max(2, int(round(0.002 * fr))) if frame_rate_hz else 8
+    vel = _smoothed_velocity(positions, np.asarray(times_s, dtype=np.float64) * fr, half)
+    if frame_rate_hz:
+        return (vel, stall_speed_mm_s * 1e3 / pitch_um / frame_rate_hz,
+                max(8, int(round(min_stall_s * frame_rate_hz))))
+    return vel, 0.01, 40
+
+
 def find_events(*, positions, angles_deg, confidence, contact, link_failed, link_dt_frames,
                 times_s, frame_rate_hz, n_rows, pitch_um, stall_speed_mm_s=2.0,
                 min_stall_s=0.01, min_backtrack_px=1.0, skew_limit_deg=3.0,
@@ -87,19 +101,10 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
         events.append(Event("gap", a, b + 1, {
             "reason": "dropped_frames", "missing_rows": 0.0, "dropped_frames": int(round(dropped)),
             "bridged": True}))
-    # Velocity over a short window, in px per frame period.
-    fr = frame_rate_hz if frame_rate_hz else 1.0
-    tfr = times_s * fr
-    half = max(2, int(round(0.002 * fr))) if frame_rate_hz else 8
-    vel = _smoothed_velocity(positions, tfr, half)
+    vel, v_stall, min_len = _stall_rule(positions, times_s, frame_rate_hz, pitch_um,
+                                       stall_speed_mm_s=stall_speed_mm_s, min_stall_s=min_stall_s)
     v_along = vel[:, 0]
     # Stall: speed below stall_speed_mm_s for at least min_stall_s.
-    if frame_rate_hz:
-        v_stall = stall_speed_mm_s * 1e3 / pitch_um / frame_rate_hz
-        min_len = max(8, int(round(min_stall_s * frame_rate_hz)))
-    else:
-        v_stall = 0.01
-        min_len = 40
     speed = np.hypot(vel[:, 0], vel[:, 1])
     in_c = np.zeros(t_n, dtype=bool)
     in_c[first:last + 1] = True
