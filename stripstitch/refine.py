@@ -492,11 +492,12 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc):
 
 
 @numba.njit(**JIT)
-def _gradient_stack(model, h0, h1, stack):
+def _gradient_stack(model, h0, h1, stack, curv_weight=1.0):
     """``stack[..., 0]`` = model, ``[..., 1:3]`` = its gradient along and across, as
     numpy.gradient (central differences inside, one-sided at the edges); ``[..., 3:5]`` (if
     the stack has them) = its second differences along and across, node units (0 at the
-    edges), for the curvature term of the interpolation in :func:`_frame_normals`."""
+    edges) times ``curv_weight``, for the curvature term of the interpolation in
+    :func:`_frame_normals`."""
     hh, ww = model.shape
     curv = stack.shape[2] >= 5
     for i in range(hh):
@@ -510,9 +511,9 @@ def _gradient_stack(model, h0, h1, stack):
             stack[i, c, 1] = (model[ip, c] - model[im, c]) / dy if dy > 0 else 0.0
             stack[i, c, 2] = (model[i, cp] - model[i, cm]) / ((cp - cm) * h1) if cp > cm else 0.0
             if curv:
-                stack[i, c, 3] = (model[ip, c] - 2.0 * model[i, c] + model[im, c]
+                stack[i, c, 3] = (curv_weight * (model[ip, c] - 2.0 * model[i, c] + model[im, c])
                                   if ip - im == 2 else 0.0)
-                stack[i, c, 4] = (model[i, cp] - 2.0 * model[i, c] + model[i, cm]
+                stack[i, c, 4] = (curv_weight * (model[i, cp] - 2.0 * model[i, c] + model[i, cm])
                                   if cp - cm == 2 else 0.0)
 
 
@@ -848,9 +849,7 @@ def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, ma
         model, _ = _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work,
                                  sharp=sharp)
         stack = work.get("stack", shape + (5 if sharp > 0 else 3,))
-        _gradient_stack(model, float(h[0]), float(h[1]), stack)
-        if 0 < sharp < 1:
-            stack[..., 3:] *= sharp
+        _gradient_stack(model, float(h[0]), float(h[1]), stack, float(sharp))
         _frame_normals(z, w, fit.astype(np.int64), positions, ct, st, cf, stack, lo, h, hess,
                        grad, rss, nobs, ncc)
     delta, info, st_, sh_, tw_ = _solve_frames(hess, grad, rss, nobs)
