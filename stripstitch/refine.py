@@ -168,11 +168,6 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     # the node it is splatted to. Single precision: a node sums a few dozen observations
     # (relative error ~1e-7, far below the noise), and the array is the largest of the
     # refinement (halved: less to clear and to stream through).
-    acc = work.get("acc", tuple(shape) + (9,), np.float32)
-    acc[...] = 0.0
-    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
-                   np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc)
     sig = np.asarray(smooth_px, dtype=np.float64) / h
 
     def kernels(sigma, spacing):
@@ -182,6 +177,15 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
 
     gy0, gy1, gy2 = kernels(sig[0], h[0])
     gx0, gx1, gx2 = kernels(sig[1], h[1])
+    # Plane-major (H, 9, W) with the across kernel's radius of zero columns on either side:
+    # both compiled passes then run over contiguous rows of one moment at a time, which the
+    # compiler vectorises (the node-major layout it replaced took twice as long).
+    pad = gx0.size // 2
+    acc = work.get("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
+    acc[...] = 0.0
+    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+    _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
+                   np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc, pad)
     # Moments about each output node: the offset from splat node to output node is added in,
     # (dy + oy)^a (dx + ox)^b expanded; one compiled pass across, one along, and the local
     # linear fit where the samples around a node determine both slopes, local mean elsewhere
@@ -189,7 +193,9 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     model = work.get("model", shape)
     s00 = work.get("s00", shape)
     var0 = work.get("var0", shape) if sharp > 0 else np.empty((0, 0))
-    _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, np.empty((9, 0, 0)))
+    _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0,
+                    np.empty((9, 0, 0)), work.get("ring", (gy0.size, 9, shape[1])),
+                    work.get("ring_out", (9, shape[1])))
     # "Enough weight": 5 % of the 90th percentile of the positive weights, the percentile
     # taken on an even subsample of at most ~10^5 nodes (a statistic of the whole window).
     k = max(1, int(np.sqrt(s00.size / 1e5)))
@@ -202,8 +208,8 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     import cv2
     wide = 2.0 * sig + 0.5
     ky, kx = (_gauss_kernel(s_, int(3.0 * s_ + 0.5)).astype(np.float32) for s_ in wide)
-    s3, w3 = (cv2.sepFilter2D(np.ascontiguousarray(acc[..., m]), cv2.CV_32F, kx, ky,
-                              borderType=cv2.BORDER_CONSTANT) for m in (6, 0))
+    s3, w3 = (cv2.sepFilter2D(np.ascontiguousarray(acc[:, m, pad:pad + shape[1]]), cv2.CV_32F,
+                              kx, ky, borderType=cv2.BORDER_CONSTANT) for m in (6, 0))
     _fill_holes(model, s00, s3, w3, thr)
     if sharp > 0:
         _deblur_along(model, s00, var0, thr, sharp * 0.5 / (h[0] * h[0]),
@@ -279,91 +285,85 @@ def _plane_value(s00, s10, s01, s20, s02, s11, t0, t1y, t1x):
 
 
 @numba.njit(**JIT)
-def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, out):
+def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, out, p, buf):
     """Separable Gaussian moments of the splatted sums (zero outside the grid) and the local
     plane fit they define, row by row.
 
-    ``acc`` (H, W, 9) holds the per-node sums (w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z,
-    w z dy, w z dx); ``g*0, g*1, g*2`` are a Gaussian and its first and second offset moments across
-    (x) and along (y). The moments about each output node (s00, s10, s01, s20, s02, s11, t0,
-    t1y, t1x) are the same sums as scipy.ndimage.correlate1d with mode "constant", grouped
-    so that every input is read once per pass. Writes the plane fit's value to ``model`` and
-    s00 to ``s00`` (H, W), s20 / s00 - 2 (s10 / s00)^2 to ``var0`` if it is (H, W) (for
+    ``acc`` (H, 9, W + 2 pad) holds the per-node sums (w, w dy, w dx, w dy^2, w dx^2,
+    w dy dx, w z, w z dy, w z dx) between ``pad`` zero columns on either side (``pad`` at
+    least the across kernel's radius); ``g*0, g*1, g*2`` are a Gaussian and its first and
+    second offset moments across (x) and along (y). The moments about each output node (s00,
+    s10, s01, s20, s02, s11, t0, t1y, t1x) are the same sums as scipy.ndimage.correlate1d
+    with mode "constant". Writes the plane fit's value to ``model`` and s00 to ``s00``
+    (H, W), s20 / s00 - 2 (s10 / s00)^2 to ``var0`` if it is (H, W) (for
     :func:`_deblur_along`); the nine moments to ``out`` (9, H, W) only if it has that shape
     (tests), since they are never needed whole: the across pass is kept for the last
-    ``2 ry + 1`` rows only (a ring that stays in cache, no swipe-sized temporary).
+    ``2 ry + 1`` rows only (a ring that stays in cache, no swipe-sized temporary). Every
+    inner loop runs over the columns of one moment (contiguous, vectorised). ``p`` (the ring,
+    (2 ry + 1, 9, W)) and ``buf`` (9, W) are scratch (passed in: measured faster than
+    allocating them here).
     """
-    hh, ww, _ = acc.shape
+    hh = acc.shape[0]
+    ww = acc.shape[2] - 2 * pad
     rx = gx0.shape[0] // 2
     ry = gy0.shape[0] // 2
+    off = pad - rx            # padded column of the first tap of output column 0
+    if off < 0:               # (also tells the compiler that c + off + j is never negative)
+        raise ValueError("pad must be at least the across kernel's radius")
     keep = out.shape[1] == hh and out.shape[2] == ww
     n_ring = 2 * ry + 1
-    p = np.empty((n_ring, 9, ww))
-    buf = np.empty((9, ww))
+    if p.shape[0] < n_ring or p.shape[1] != 9 or p.shape[2] != ww or buf.shape != (9, ww):
+        raise ValueError("ring must be (>= 2 ry + 1, 9, W) and buf (9, W)")
     for i in range(hh + ry):
         if i < hh:
-            # across pass of row i into its ring slot: the nine inputs of the along pass
-            q = p[i % n_ring]
-            for c in range(ww):
-                v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
-                x1a00 = x1a01 = x1a10 = x1b0 = x2a00 = 0.0
-                for j in range(max(-rx, -c), min(rx, ww - 1 - c) + 1):
-                    cc = c + j
-                    k0 = gx0[j + rx]
-                    k1 = gx1[j + rx]
-                    k2 = gx2[j + rx]
-                    a00 = acc[i, cc, 0]
-                    a01 = acc[i, cc, 2]
-                    a10 = acc[i, cc, 1]
-                    b0 = acc[i, cc, 6]
-                    v0 += k0 * a00
-                    v1 += k0 * a10
-                    v2 += k0 * a01
-                    v3 += k0 * acc[i, cc, 3]
-                    v4 += k0 * acc[i, cc, 4]
-                    v5 += k0 * acc[i, cc, 5]
-                    v6 += k0 * b0
-                    v7 += k0 * acc[i, cc, 7]
-                    v8 += k0 * acc[i, cc, 8]
-                    x1a00 += k1 * a00
-                    x1a01 += k1 * a01
-                    x1a10 += k1 * a10
-                    x1b0 += k1 * b0
-                    x2a00 += k2 * a00
-                q[0, c] = v0                          # xa00
-                q[1, c] = v1                          # xa10
-                q[2, c] = v2 + x1a00                  # xa01 + x1_a00
-                q[3, c] = v3                          # xa20
-                q[4, c] = v4 + 2.0 * x1a01 + x2a00    # xa02 + 2 x1_a01 + x2_a00
-                q[5, c] = v5 + x1a10                  # xa11 + x1_a10
-                q[6, c] = v6                          # xb0
-                q[7, c] = v7                          # xb1y
-                q[8, c] = v8 + x1b0                   # xb1x + x1_b0
+            # across pass of row i into its ring slot: the nine inputs of the along pass,
+            # xa.. = g0 * a.., plus the first and second offset moments the offsets add
+            s = i % n_ring
+            for k in range(9):
+                for c in range(ww):
+                    p[s, k, c] = 0.0
+            for j in range(2 * rx + 1):
+                k0 = gx0[j]
+                k1 = gx1[j]
+                k2 = gx2[j]
+                o2 = off + j
+                for k in range(9):
+                    for c in range(ww):
+                        p[s, k, c] += k0 * acc[i, k, c + o2]
+                for c in range(ww):       # xa01 + x1_a00
+                    p[s, 2, c] += k1 * acc[i, 0, c + o2]
+                for c in range(ww):       # xa02 + 2 x1_a01 + x2_a00
+                    p[s, 4, c] += 2.0 * k1 * acc[i, 2, c + o2] + k2 * acc[i, 0, c + o2]
+                for c in range(ww):       # xa11 + x1_a10
+                    p[s, 5, c] += k1 * acc[i, 1, c + o2]
+                for c in range(ww):       # xb1x + x1_b0
+                    p[s, 8, c] += k1 * acc[i, 6, c + o2]
         o = i - ry
         if o < 0:
             continue
-        # along pass of output row o (rows o - ry .. o + ry are in the ring; the inner loop
-        # runs over columns, contiguous)
-        buf[:, :] = 0.0
+        # along pass of output row o (rows o - ry .. o + ry are in the ring)
+        for k in range(9):
+            for c in range(ww):
+                buf[k, c] = 0.0
         for j in range(max(-ry, -o), min(ry, hh - 1 - o) + 1):
-            q = p[(o + j) % n_ring]
+            s = (o + j) % n_ring
             k0 = gy0[j + ry]
             k1 = gy1[j + ry]
             k2 = gy2[j + ry]
             for c in range(ww):
-                q0 = q[0, c]
-                q1 = q[1, c]
-                q2 = q[2, c]
-                q6 = q[6, c]
-                buf[0, c] += k0 * q0                              # s00
-                buf[1, c] += k0 * q1 + k1 * q0                    # s10
-                buf[2, c] += k0 * q2                              # s01
-                buf[3, c] += k0 * q[3, c] + 2.0 * k1 * q1 + k2 * q0   # s20
-                buf[4, c] += k0 * q[4, c]                         # s02
-                buf[5, c] += k0 * q[5, c] + k1 * q2               # s11
-                buf[6, c] += k0 * q6                              # t0
-                buf[7, c] += k0 * q[7, c] + k1 * q6               # t1y
-                buf[8, c] += k0 * q[8, c]                         # t1x
+                q0 = p[s, 0, c]
+                q1 = p[s, 1, c]
+                q2 = p[s, 2, c]
+                q6 = p[s, 6, c]
+                buf[0, c] += k0 * q0                                  # s00
+                buf[1, c] += k0 * q1 + k1 * q0                        # s10
+                buf[2, c] += k0 * q2                                  # s01
+                buf[3, c] += k0 * p[s, 3, c] + 2.0 * k1 * q1 + k2 * q0   # s20
+                buf[4, c] += k0 * p[s, 4, c]                          # s02
+                buf[5, c] += k0 * p[s, 5, c] + k1 * q2                # s11
+                buf[6, c] += k0 * q6                                  # t0
+                buf[7, c] += k0 * p[s, 7, c] + k1 * q6                # t1y
+                buf[8, c] += k0 * p[s, 8, c]                          # t1x
         if var0.shape[0] == hh:
             for c in range(ww):
                 b0 = buf[0, c]
@@ -381,72 +381,100 @@ def _smooth_moments(acc, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, out):
 
 
 @numba.njit(**JIT)
-def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc):
+def _axpy(dst, k, a):
+    """dst += k a (one contiguous moment row)."""
+    for n in range(dst.shape[0]):
+        dst[n] += k * a[n]
+
+
+@numba.njit(**JIT)
+def _axpy_dx(dst, k, a, dx, power):
+    """dst += k a dx^power, power 1 or 2."""
+    if power == 1:
+        for n in range(dst.shape[0]):
+            dst[n] += k * a[n] * dx[n]
+    else:
+        for n in range(dst.shape[0]):
+            dst[n] += k * a[n] * dx[n] * dx[n]
+
+
+@numba.njit(**JIT)
+def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
     """Per node the moments of a local linear fit, from every observation of the frames
     ``src`` splatted onto its four nearest nodes with bilinear weights (in place into acc,
-    shape (H, W, 9)): sums of w, w dy, w dx, w dy^2, w dx^2, w dy dx, w z, w z dy, w z dx,
-    with (dy, dx) the offset (px) of the observation from the node. Nodes off the grid are
-    skipped (a grid may be a window of the swipe)."""
+    shape (H, 9, W + 2 pad), the node grid in columns pad .. pad + W - 1): sums of w, w dy,
+    w dx, w dy^2, w dx^2, w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset (px) of the
+    observation from the node. Nodes off the grid are skipped (a grid may be a window of
+    the swipe)."""
     _, r_n, c_n = z.shape
-    hh, ww, _ = acc.shape
+    hh = acc.shape[0]
+    ww = acc.shape[2] - 2 * pad
     # Across steps per plate when that is a whole number of nodes (0.5 px grid: 2)
     m_across = 1.0 / h[1]
     step1 = int(round(m_across)) if abs(m_across - round(m_across)) < 1e-9 else 0
-    cw = np.empty((2, 2, 9))
+    n2 = max(step1, 1) * c_n
+    wn = np.zeros(n2)
+    zn = np.zeros(n2)
+    dxn = np.zeros(n2)
     for t in src:
         ct = cos_t[t]
         st = sin_t[t]
-        if st == 0.0 and ct == 1.0 and step1 > 0:
-            # Unturned frame: every plate of a row has the same bilinear weights and offsets
-            # (plates one pixel apart land a whole number of nodes apart), so the nine
-            # moment coefficients of the four corners are set once per row.
+        if st == 0.0 and ct == 1.0 and step1 >= 2:
+            # Unturned frame: plate c of every row lands on nodes j1 + step1 c (+ 1) with the
+            # same across weights and offsets, so a frame row is one contiguous run of nodes
+            # (weights interleaved per plate, zero between) added moment by moment to the
+            # two node rows it falls between.
             b1 = (pos[t, 1] - lo[1]) / h[1]
             j1 = int(np.floor(b1))
             a1 = b1 - j1
+            n_lo = max(0, -j1)                # run entries n with node j1 + n on the grid
+            n_hi = min(n2, ww - j1)
+            if n_hi <= n_lo:
+                continue
+            wn[:] = 0.0
+            zn[:] = 0.0
+            dxn[:] = 0.0
+            for c in range(c_n):
+                dxn[step1 * c] = a1 * h[1]
+                dxn[step1 * c + 1] = (a1 - 1.0) * h[1]
+            dx_run = dxn[n_lo:n_hi]
             for r in range(r_n):
                 f0 = (cf[0] + pos[t, 0] + (r - cf[0]) - lo[0]) / h[0]
                 i0 = int(np.floor(f0))
                 if i0 < -1 or i0 >= hh:
                     continue
                 a0 = f0 - i0
-                for di in range(2):
-                    wa = a0 if di == 1 else 1.0 - a0
-                    dy = (a0 - di) * h[0]
-                    for dj in range(2):
-                        wb = a1 if dj == 1 else 1.0 - a1
-                        dx = (a1 - dj) * h[1]
-                        wk = wa * wb
-                        cw[di, dj, 0] = wk
-                        cw[di, dj, 1] = wk * dy
-                        cw[di, dj, 2] = wk * dx
-                        cw[di, dj, 3] = wk * dy * dy
-                        cw[di, dj, 4] = wk * dx * dx
-                        cw[di, dj, 5] = wk * dy * dx
                 for c in range(c_n):
                     wv = float(w[t, r, c])
-                    if wv <= 0.0:
+                    if wv > 0.0:
+                        zv = wv * float(z[t, r, c])
+                    else:             # excluded: adds nothing (its value may be anything)
+                        wv = 0.0
+                        zv = 0.0
+                    wn[step1 * c] = wv * (1.0 - a1)
+                    wn[step1 * c + 1] = wv * a1
+                    zn[step1 * c] = zv * (1.0 - a1)
+                    zn[step1 * c + 1] = zv * a1
+                w_run = wn[n_lo:n_hi]
+                z_run = zn[n_lo:n_hi]
+                for di in range(2):
+                    n0 = i0 + di
+                    if n0 < 0 or n0 >= hh:
                         continue
-                    wz = wv * float(z[t, r, c])
-                    n1b = j1 + step1 * c
-                    for di in range(2):
-                        n0 = i0 + di
-                        if n0 < 0 or n0 >= hh:
-                            continue
-                        for dj in range(2):
-                            n1 = n1b + dj
-                            if n1 < 0 or n1 >= ww:
-                                continue
-                            k = cw[di, dj]
-                            a = acc[n0, n1]
-                            a[0] += wv * k[0]
-                            a[1] += wv * k[1]
-                            a[2] += wv * k[2]
-                            a[3] += wv * k[3]
-                            a[4] += wv * k[4]
-                            a[5] += wv * k[5]
-                            a[6] += wz * k[0]
-                            a[7] += wz * k[1]
-                            a[8] += wz * k[2]
+                    wa = a0 if di == 1 else 1.0 - a0
+                    dy = (a0 - di) * h[0]
+                    s0 = pad + j1 + n_lo
+                    s1 = pad + j1 + n_hi
+                    a = acc[n0]
+                    _axpy(a[0, s0:s1], wa, w_run)
+                    _axpy(a[1, s0:s1], wa * dy, w_run)
+                    _axpy_dx(a[2, s0:s1], wa, w_run, dx_run, 1)
+                    _axpy(a[3, s0:s1], wa * dy * dy, w_run)
+                    _axpy_dx(a[4, s0:s1], wa, w_run, dx_run, 2)
+                    _axpy_dx(a[5, s0:s1], wa * dy, w_run, dx_run, 1)
+                    _axpy(a[6, s0:s1], wa, z_run)
+                    _axpy(a[7, s0:s1], wa * dy, z_run)
+                    _axpy_dx(a[8, s0:s1], wa, z_run, dx_run, 1)
             continue
         for r in range(r_n):
             u0 = r - cf[0]
@@ -475,20 +503,21 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc):
                         n1 = i1 + dj
                         if n1 < 0 or n1 >= ww:
                             continue
+                        n1 += pad
                         wb = a1 if dj == 1 else 1.0 - a1
                         dx = (a1 - dj) * h[1]
                         wk = wv * wa * wb
                         wy = wk * dy
                         wx = wk * dx
-                        acc[n0, n1, 0] += wk
-                        acc[n0, n1, 1] += wy
-                        acc[n0, n1, 2] += wx
-                        acc[n0, n1, 3] += wy * dy
-                        acc[n0, n1, 4] += wx * dx
-                        acc[n0, n1, 5] += wy * dx
-                        acc[n0, n1, 6] += wk * v
-                        acc[n0, n1, 7] += wy * v
-                        acc[n0, n1, 8] += wx * v
+                        acc[n0, 0, n1] += wk
+                        acc[n0, 1, n1] += wy
+                        acc[n0, 2, n1] += wx
+                        acc[n0, 3, n1] += wy * dy
+                        acc[n0, 4, n1] += wx * dx
+                        acc[n0, 5, n1] += wy * dx
+                        acc[n0, 6, n1] += wk * v
+                        acc[n0, 7, n1] += wy * v
+                        acc[n0, 8, n1] += wx * v
 
 
 @numba.njit(**JIT)

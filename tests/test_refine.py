@@ -228,11 +228,13 @@ def test_refine_bad_input(kw, exc, match):
                             iterations=kw.get("iterations", 2))
 
 
-@pytest.mark.parametrize("turned", [True, False])
-def test_compiled_moment_splat_matches_the_formula(turned):
+@pytest.mark.parametrize("turned, window", [(True, False), (False, False), (True, True),
+                                            (False, True)])
+def test_compiled_moment_splat_matches_the_formula(turned, window):
     # The compiled splat of build_model against the same nine moments written out in numpy
     # (np.add.at over the four bilinear corners); unturned frames take the kernel's per-row
-    # path, turned ones the per-plate path.
+    # path, turned ones the per-plate path. window: the grid is a window that cuts frames on
+    # every side (as the refinement's tiles do), and observations off it are dropped.
     from stripstitch import mosaic
     from stripstitch.refine import _splat_moments
     rng = np.random.default_rng(5)
@@ -240,33 +242,40 @@ def test_compiled_moment_splat_matches_the_formula(turned):
     z = rng.standard_normal((t_n, r_n, c_n)).astype(np.float32)
     w = rng.uniform(0, 1, (t_n, r_n, c_n))
     w[w < 0.2] = 0
+    z[w == 0] = np.nan                       # an excluded plate's value never enters
     pos = np.cumsum(rng.uniform(0.1, 1.2, (t_n, 2)), axis=0)
     ang = rng.uniform(-0.05, 0.05, t_n) if turned else np.zeros(t_n)
     h = np.array([0.25, 0.5])
     q0, q1 = mosaic.plate_coordinates(z.shape, pos, ang)
     lo = np.array([q0.min(), q1.min()]) - 1.0
     shape = (int(np.ceil((q0.max() - lo[0]) / h[0])) + 3, int(np.ceil((q1.max() - lo[1]) / h[1])) + 3)
-    acc = np.zeros(shape + (9,))
-    _splat_moments(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang),
-                   np.array([(r_n - 1) / 2, (c_n - 1) / 2]), lo, h, acc)
-    ref = np.zeros((9,) + shape)
+    if window:
+        lo = lo + np.array([3.1, 2.3])
+        shape = (shape[0] - 20, shape[1] - 15)
+    pad = 3
     f0, f1 = ((q0 - lo[0]) / h[0]).ravel(), ((q1 - lo[1]) / h[1]).ravel()
     i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
     a0, a1 = f0 - i0, f1 - i1
     v, ww = z.astype(float).ravel(), w.ravel()
+    sel = ww > 0
+    ref = np.zeros((9,) + shape)
     for di in (0, 1):
         for dj in (0, 1):
             wk = ww * (a0 if di else 1 - a0) * (a1 if dj else 1 - a1)
             dy, dx = (a0 - di) * h[0], (a1 - dj) * h[1]
+            n0, n1 = i0 + di, i1 + dj
+            on = sel & (n0 >= 0) & (n0 < shape[0]) & (n1 >= 0) & (n1 < shape[1])
             for k, m in enumerate((wk, wk * dy, wk * dx, wk * dy * dy, wk * dx * dx, wk * dy * dx,
                                    wk * v, wk * dy * v, wk * dx * v)):
-                np.add.at(ref[k], (i0 + di, i1 + dj), m)
-    np.testing.assert_allclose(np.moveaxis(acc, -1, 0), ref, rtol=1e-9, atol=1e-12)
-    # the single-precision accumulator the refinement uses: the same sums to float32 rounding
-    acc32 = np.zeros(shape + (9,), np.float32)
-    _splat_moments(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang),
-                   np.array([(r_n - 1) / 2, (c_n - 1) / 2]), lo, h, acc32)
-    np.testing.assert_allclose(np.moveaxis(acc32, -1, 0), ref, rtol=1e-5, atol=1e-6)
+                np.add.at(ref[k], (n0[on], n1[on]), m[on])
+    for dtype, rtol, atol in ((np.float64, 1e-9, 1e-12), (np.float32, 1e-5, 1e-6)):
+        # double, and the single-precision accumulator the refinement uses (the same sums to
+        # float32 rounding); the grid sits between pad zero columns on either side
+        acc = np.zeros((shape[0], 9, shape[1] + 2 * pad), dtype)
+        _splat_moments(z, w, np.arange(t_n), pos, np.cos(ang), np.sin(ang),
+                       np.array([(r_n - 1) / 2, (c_n - 1) / 2]), lo, h, acc, pad)
+        np.testing.assert_allclose(np.moveaxis(acc[:, :, pad:-pad], 1, 0), ref, rtol=rtol, atol=atol)
+        assert not acc[:, :, :pad].any() and not acc[:, :, -pad:].any()
 
 
 @pytest.mark.parametrize("r_n, c_n", [(5, 11), (4, 131)])
@@ -333,8 +342,11 @@ def test_compiled_smoothing_matches_scipy_correlate1d():
     gx0, gx1, gx2 = kern(2, 0.5)
     out = np.empty_like(acc)
     model, s00 = np.empty(acc.shape[1:]), np.empty(acc.shape[1:])
-    _smooth_moments(np.moveaxis(acc, 0, -1).copy(), gx0, gx1, gx2, gy0, gy1, gy2, model, s00,
-                    np.empty((0, 0)), out)
+    pad = 4                                   # zero columns either side, >= the radius 2
+    padded = np.zeros((acc.shape[1], 9, acc.shape[2] + 2 * pad))
+    padded[:, :, pad:-pad] = np.moveaxis(acc, 0, 1)
+    _smooth_moments(padded, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00,
+                    np.empty((0, 0)), out, np.empty((gy0.size, 9, 23)), np.empty((9, 23)))
     def across(x, k):
         return ndimage.correlate1d(x, k, axis=1, mode="constant")
     def along(x, k):
@@ -364,6 +376,10 @@ def test_compiled_smoothing_matches_scipy_correlate1d():
     well = det > 1e-3 * s00_ * s20 * s02
     assert well.mean() > 0.5
     np.testing.assert_allclose(model[well], plane[well], rtol=1e-7, atol=1e-9)
+    # fewer zero columns than the across radius would read outside the array: refused
+    with pytest.raises(ValueError, match="pad"):
+        _smooth_moments(padded, 1, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, np.empty((0, 0)),
+                        out, np.empty((gy0.size, 9, 23)), np.empty((9, 23)))
 
 
 def test_sharpened_model_removes_the_smoothing_bias():
