@@ -381,6 +381,13 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
 
 
 @numba.njit(**JIT)
+def _nodes_per_plate(h1):
+    """Nodes per plate across when that is a whole number (0.5 px grid: 2), else 0."""
+    m = 1.0 / h1
+    return int(round(m)) if abs(m - round(m)) < 1e-9 else 0
+
+
+@numba.njit(**JIT)
 def _axpy(dst, k, a):
     """dst += k a (one contiguous moment row)."""
     for n in range(dst.shape[0]):
@@ -409,9 +416,7 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
     _, r_n, c_n = z.shape
     hh = acc.shape[0]
     ww = acc.shape[2] - 2 * pad
-    # Across steps per plate when that is a whole number of nodes (0.5 px grid: 2)
-    m_across = 1.0 / h[1]
-    step1 = int(round(m_across)) if abs(m_across - round(m_across)) < 1e-9 else 0
+    step1 = _nodes_per_plate(h[1])
     n2 = max(step1, 1) * c_n
     wn = np.zeros(n2)
     zn = np.zeros(n2)
@@ -621,6 +626,32 @@ def _median_inplace(a, n_all, n):
 
 
 @numba.njit(**JIT)
+def _sample_stack(stack, i0, i1, a0, a1, curv):
+    """Model value and gradients (along, across) interpolated bilinearly at the fraction
+    (a0, a1) past node (i0, i1) of the stack of :func:`_gradient_stack`; with ``curv`` the
+    value gets the curvature term of the linear interpolation back."""
+    w00 = (1.0 - a0) * (1.0 - a1)
+    w01 = (1.0 - a0) * a1
+    w10 = a0 * (1.0 - a1)
+    w11 = a0 * a1
+    m = (stack[i0, i1, 0] * w00 + stack[i0, i1 + 1, 0] * w01
+         + stack[i0 + 1, i1, 0] * w10 + stack[i0 + 1, i1 + 1, 0] * w11)
+    if curv:
+        # Linear interpolation reads f - a (1 - a) h^2 f'' / 2 between nodes: add the
+        # curvature term back (interpolated second differences).
+        d2y = (stack[i0, i1, 3] * w00 + stack[i0, i1 + 1, 3] * w01
+               + stack[i0 + 1, i1, 3] * w10 + stack[i0 + 1, i1 + 1, 3] * w11)
+        d2x = (stack[i0, i1, 4] * w00 + stack[i0, i1 + 1, 4] * w01
+               + stack[i0 + 1, i1, 4] * w10 + stack[i0 + 1, i1 + 1, 4] * w11)
+        m -= 0.5 * (a0 * (1.0 - a0) * d2y + a1 * (1.0 - a1) * d2x)
+    gy = (stack[i0, i1, 1] * w00 + stack[i0, i1 + 1, 1] * w01
+          + stack[i0 + 1, i1, 1] * w10 + stack[i0 + 1, i1 + 1, 1] * w11)
+    gx = (stack[i0, i1, 2] * w00 + stack[i0, i1 + 1, 2] * w01
+          + stack[i0 + 1, i1, 2] * w10 + stack[i0 + 1, i1 + 1, 2] * w11)
+    return m, gy, gx
+
+
+@numba.njit(**JIT)
 def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, rss, nobs, ncc):
     """Per frame of ``idx``: the model (and its gradients) sampled bilinearly where each plate looked,
     Huber weights (k = 2 robust sigmas of the frame's residuals), and the weighted normal
@@ -631,6 +662,7 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
     curv = n_ch >= 5
     n_px = r_n * c_n
     stride = max(1, n_px // 256)
+    step1 = _nodes_per_plate(h[1])
     res = np.empty(n_px)
     absr = np.empty(n_px)
     wts = np.empty(n_px)
@@ -642,8 +674,21 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
         ct = cos_t[t]
         st = sin_t[t]
         cnt = 0
+        # Unturned frame on a grid with a whole number of nodes per plate across: every plate
+        # of a row falls between the same two node rows with the same weights (taken once per
+        # row, no per-plate floor), when the frame lies inside the grid across.
+        fast = False
+        if st == 0.0 and ct == 1.0 and step1 > 0:
+            b1 = (pos[t, 1] - lo[1]) / h[1]
+            j1 = int(np.floor(b1))
+            a1 = b1 - j1
+            fast = j1 >= 0 and j1 + step1 * (c_n - 1) <= ww_ - 2
         for r in range(r_n):
             u0 = r - cf[0]
+            if fast:
+                f0 = (pos[t, 0] + r - lo[0]) / h[0]
+                i0 = min(max(int(np.floor(f0)), 0), hh - 2)
+                a0 = min(max(f0 - i0, 0.0), 1.0)
             for c in range(c_n):
                 k = r * c_n + c
                 wts[k] = float(w[t, r, c])
@@ -651,32 +696,18 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
                     # excluded (every later sum skips it): not sampled
                     res[k] = mv[k] = gyv[k] = gxv[k] = zv[k] = 0.0
                     continue
-                q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
-                                             c - cf[1])
-                f0 = (q0 - lo[0]) / h[0]
-                f1 = (q1 - lo[1]) / h[1]
-                i0 = min(max(int(np.floor(f0)), 0), hh - 2)
-                i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
-                a0 = min(max(f0 - i0, 0.0), 1.0)
-                a1 = min(max(f1 - i1, 0.0), 1.0)
-                w00 = (1.0 - a0) * (1.0 - a1)
-                w01 = (1.0 - a0) * a1
-                w10 = a0 * (1.0 - a1)
-                w11 = a0 * a1
-                mv[k] = (stack[i0, i1, 0] * w00 + stack[i0, i1 + 1, 0] * w01
-                         + stack[i0 + 1, i1, 0] * w10 + stack[i0 + 1, i1 + 1, 0] * w11)
-                if curv:
-                    # Linear interpolation reads f - a (1 - a) h^2 f'' / 2 between nodes: add
-                    # the curvature term back (interpolated second differences).
-                    d2y = (stack[i0, i1, 3] * w00 + stack[i0, i1 + 1, 3] * w01
-                           + stack[i0 + 1, i1, 3] * w10 + stack[i0 + 1, i1 + 1, 3] * w11)
-                    d2x = (stack[i0, i1, 4] * w00 + stack[i0, i1 + 1, 4] * w01
-                           + stack[i0 + 1, i1, 4] * w10 + stack[i0 + 1, i1 + 1, 4] * w11)
-                    mv[k] -= 0.5 * (a0 * (1.0 - a0) * d2y + a1 * (1.0 - a1) * d2x)
-                gyv[k] = (stack[i0, i1, 1] * w00 + stack[i0, i1 + 1, 1] * w01
-                          + stack[i0 + 1, i1, 1] * w10 + stack[i0 + 1, i1 + 1, 1] * w11)
-                gxv[k] = (stack[i0, i1, 2] * w00 + stack[i0, i1 + 1, 2] * w01
-                          + stack[i0 + 1, i1, 2] * w10 + stack[i0 + 1, i1 + 1, 2] * w11)
+                if fast:
+                    i1 = j1 + step1 * c
+                else:
+                    q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
+                                                 c - cf[1])
+                    f0 = (q0 - lo[0]) / h[0]
+                    f1 = (q1 - lo[1]) / h[1]
+                    i0 = min(max(int(np.floor(f0)), 0), hh - 2)
+                    i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
+                    a0 = min(max(f0 - i0, 0.0), 1.0)
+                    a1 = min(max(f1 - i1, 0.0), 1.0)
+                mv[k], gyv[k], gxv[k] = _sample_stack(stack, i0, i1, a0, a1, curv)
                 zv[k] = float(z[t, r, c])
                 res[k] = zv[k] - mv[k]
                 cnt += 1

@@ -278,8 +278,9 @@ def test_compiled_moment_splat_matches_the_formula(turned, window):
         assert not acc[:, :, :pad].any() and not acc[:, :, -pad:].any()
 
 
-@pytest.mark.parametrize("r_n, c_n", [(5, 11), (4, 131)])
-def test_compiled_normal_equations_match_the_formula(r_n, c_n):
+@pytest.mark.parametrize("r_n, c_n, turned", [(5, 11, True), (4, 131, True), (5, 11, False),
+                                              (4, 131, False)])
+def test_compiled_normal_equations_match_the_formula(r_n, c_n, turned):
     # The compiled per-frame normal equations of the model fit against the same sums in
     # numpy: bilinear samples of the model and its gradients, Huber weights at two robust
     # sigmas (1.4826 MAD, common practice; the MAD of every plate, or of every k-th for
@@ -292,7 +293,8 @@ def test_compiled_normal_equations_match_the_formula(r_n, c_n):
     w = rng.uniform(0, 1, (t_n, r_n, c_n))
     w[w < 0.2] = 0
     pos = np.cumsum(rng.uniform(0.2, 0.8, (t_n, 2)), axis=0)
-    ang = rng.uniform(-0.02, 0.02, t_n)
+    # unturned frames inside the grid take the kernel's per-row path
+    ang = rng.uniform(-0.02, 0.02, t_n) if turned else np.zeros(t_n)
     stack = rng.standard_normal((60, 2 * c_n + 30, 3))
     lo, h = np.array([-3.0, -4.0]), np.array([0.25, 0.5])
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
@@ -406,7 +408,8 @@ def test_sharpened_model_removes_the_smoothing_bias():
         rf.build_model(frames, np.ones(frames.shape), pos, np.zeros(t_n), sharpen=1.5)
 
 
-def test_curvature_term_makes_the_interpolation_exact_for_a_quadratic():
+@pytest.mark.parametrize("turned", [True, False])
+def test_curvature_term_makes_the_interpolation_exact_for_a_quadratic(turned):
     # Linear interpolation between nodes a fraction a apart misses f - a (1 - a) h^2 f'' / 2,
     # exactly for a quadratic (the interpolation remainder f''(xi) (x - x0)(x - x1) / 2;
     # Burden & Faires, "Numerical Analysis", Thm 3.3), and the cross term x y is reproduced
@@ -416,7 +419,7 @@ def test_curvature_term_makes_the_interpolation_exact_for_a_quadratic():
     t_n, r_n, c_n = 4, 8, 24
     rng = np.random.default_rng(3)
     pos = np.stack([10.0 + rng.uniform(0, 3, t_n), 6.0 + rng.uniform(0, 2, t_n)], 1)
-    ang = rng.uniform(-0.03, 0.03, t_n)
+    ang = rng.uniform(-0.03, 0.03, t_n) if turned else np.zeros(t_n)   # unturned: per-row path
     lo, h = np.array([0.0, 0.0]), np.array([0.25, 0.5])
     gy, gx = np.meshgrid(lo[0] + h[0] * np.arange(160), lo[1] + h[1] * np.arange(90),
                          indexing="ij")
