@@ -26,8 +26,7 @@ from dataclasses import dataclass
 
 import numba
 import numpy as np
-from scipy import ndimage, sparse
-from scipy.sparse import linalg as splinalg
+from scipy import linalg, ndimage
 
 from . import mosaic as _mosaic
 from . import trajectory as _traj
@@ -198,7 +197,7 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
                     work.get("ring_out", (9, shape[1])))
     # "Enough weight": 5 % of the 90th percentile of the positive weights, the percentile
     # taken on an even subsample of at most ~10^5 nodes (a statistic of the whole window).
-    k = max(1, int(np.sqrt(s00.size / 1e5)))
+    k = max(1, int(np.ceil(np.sqrt(s00.size / 1e5))))
     sub = s00[::k, ::k]
     pos_w = sub[sub > 0]
     thr = max(0.05 * float(np.percentile(pos_w, 90)), 1e-9) if pos_w.size else 1e-9
@@ -560,10 +559,10 @@ def _solve_frames(hess, grad, rss, nobs):
     n_par = hess.shape[1]
     tr = np.trace(hess, axis1=1, axis2=2)[:, None, None] + 1e-12
     hreg = hess + np.eye(n_par)[None] * 1e-9 * tr
-    full_step = np.linalg.solve(hreg, grad[..., None])[..., 0]
+    hinv = np.linalg.inv(hreg)                # needed whole for the variances: one inverse
+    full_step = np.einsum("tpq,tq->tp", hinv, grad)
     var = np.maximum(rss - np.einsum("tp,tp->t", grad, full_step), 0.0) / np.maximum(nobs - n_par, 1.0)
     inv_var = 1.0 / np.maximum(var, 1e-12)
-    hinv = np.linalg.inv(hreg)
     # Position block: information = inverse of the marginal covariance; its step is the
     # position part of the full solution.
     cov_p = hinv[:, :2, :2] / inv_var[:, None, None]
@@ -928,22 +927,26 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
     """Joint position update: each frame's step with its information and an acceleration
     prior on the update itself (the trajectory it corrects already carries the motion prior),
     none across ``cut`` links (gaps). Frames without information follow their neighbours'
-    correction."""
+    correction.
+
+    The normal matrix, unknowns interleaved (along, across per frame), is banded: the 2 x 2
+    information blocks and the prior's pentadiagonal D^T D on each axis (band 4), so it is
+    solved by banded Cholesky (LAPACK pbsv) in O(T).
+    """
     t_n = len(positions)
     n = 2 * t_n
-    ti = np.arange(t_n)
-    rows = np.concatenate([2 * ti + a for a in (0, 0, 1, 1)])
-    cols = np.concatenate([2 * ti + b for b in (0, 1, 0, 1)])
-    vals = np.concatenate([info[:, 0, 0], info[:, 0, 1], info[:, 1, 0], info[:, 1, 1]])
-    a_mat = sparse.csr_matrix((vals, (rows, cols)), shape=(n, n))
+    ab = np.zeros((5, n))                    # upper banded form: ab[4 - d, j] = A[j - d, j]
+    ab[4, 0::2] = info[:, 0, 0]
+    ab[4, 1::2] = info[:, 1, 1]
+    ab[3, 1::2] = info[:, 0, 1]              # A[2t, 2t + 1]
+    bands = _traj._prior_gram_bands(dt, sigma_acc_px, cut)
+    ab[4] += np.repeat(bands[0], 2)
+    ab[2, 2:] += np.repeat(bands[1, :-1], 2)  # A[2t + a, 2t + 2 + a]
+    ab[0, 4:] += np.repeat(bands[2, :-2], 2)  # A[2t + a, 2t + 4 + a]
+    ab[4] += 1e-6
     rhs = np.einsum("tab,tb->ta", info, delta).reshape(-1)
-    d1 = _traj._prior_rows(dt, sigma_acc_px, cut=cut)
-    if d1.shape[0]:
-        d = sparse.kron(sparse.csr_matrix(d1), sparse.identity(2), format="csr")
-        a_mat = a_mat + (d.T @ d).tocsr()
-    a_mat = a_mat + sparse.identity(n, format="csr") * 1e-6
-    sol = splinalg.spsolve(a_mat.tocsc(), rhs)
-    return np.asarray(sol).reshape(t_n, 2)
+    sol = linalg.solveh_banded(ab, rhs, check_finite=False)
+    return sol.reshape(t_n, 2)
 
 
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,

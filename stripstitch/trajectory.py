@@ -53,6 +53,19 @@ class Trajectory:
     pair_residual: np.ndarray
 
 
+def _prior_coefficients(dt, sigma_acc, cut=None):
+    """The rows of :func:`_prior_rows` as (k, coeffs): row i weighs x[k[i] - 1], x[k[i]],
+    x[k[i] + 1] by coeffs[i]."""
+    t_n = len(dt) + 1
+    k = np.arange(1, max(t_n - 1, 1))
+    if cut is not None and k.size:
+        k = k[~(cut[k - 1] | cut[k])]
+    a = 1.0 / dt[k]
+    b = 1.0 / dt[k - 1]
+    s = sigma_acc * 0.5 * (dt[k] + dt[k - 1])
+    return k, np.stack([b, -(a + b), a], 1) / s[:, None]
+
+
 def _prior_rows(dt, sigma_acc, cut=None):
     """Second-difference (acceleration) prior rows for a 1-D chain with time steps dt.
 
@@ -63,16 +76,26 @@ def _prior_rows(dt, sigma_acc, cut=None):
     t_n = len(dt) + 1
     if t_n < 3:
         return np.zeros((0, t_n))
-    k = np.arange(1, t_n - 1)
-    if cut is not None:
-        k = k[~(cut[k - 1] | cut[k])]
-    a = 1.0 / dt[k]
-    b = 1.0 / dt[k - 1]
-    s = sigma_acc * 0.5 * (dt[k] + dt[k - 1])
+    k, coef = _prior_coefficients(dt, sigma_acc, cut)
     rows = np.repeat(np.arange(len(k)), 3)
     cols = np.stack([k - 1, k, k + 1], 1).ravel()
-    vals = (np.stack([b, -(a + b), a], 1) / s[:, None]).ravel()
-    return sparse.csr_matrix((vals, (rows, cols)), shape=(len(k), t_n))
+    return sparse.csr_matrix((coef.ravel(), (rows, cols)), shape=(len(k), t_n))
+
+
+def _prior_gram_bands(dt, sigma_acc, cut=None):
+    """Diagonals 0, 1 and 2 of D^T D for the rows D of :func:`_prior_rows` (pentadiagonal),
+    without forming D: (3, T), the diagonal d holding D^T D[t, t + d] at index t."""
+    t_n = len(dt) + 1
+    bands = np.zeros((3, t_n))
+    if t_n < 3:
+        return bands
+    k, c = _prior_coefficients(dt, sigma_acc, cut)
+    for i in range(3):
+        np.add.at(bands[0], k - 1 + i, c[:, i] ** 2)
+    np.add.at(bands[1], k - 1, c[:, 0] * c[:, 1])
+    np.add.at(bands[1], k, c[:, 1] * c[:, 2])
+    np.add.at(bands[2], k - 1, c[:, 0] * c[:, 2])
+    return bands
 
 
 def _robust_weights(m, kind):

@@ -470,3 +470,31 @@ def test_refinement_near_the_cramer_rao_bound_on_a_fine_texture():
 
     assert ratio(4.0, 20.0, "auto") < 1.5
     assert ratio(3.0, 40.0, "auto") < 0.9 * ratio(3.0, 40.0, 0.0)
+
+
+@pytest.mark.parametrize("t_n", [2, 3, 60])
+def test_banded_step_solve_matches_a_dense_solve(t_n):
+    # The joint position update is solved by banded Cholesky (scipy.linalg.solveh_banded);
+    # reference: numpy.linalg.solve of the same normal equations written out densely, the
+    # 2 x 2 information blocks plus D^T D of the acceleration prior on each axis (D from
+    # trajectory._prior_rows), with gaps cutting the prior.
+    from stripstitch import trajectory as tj
+    from stripstitch.refine import _solve_steps
+    rng = np.random.default_rng(t_n)
+    dt = rng.uniform(0.5, 2.0, t_n - 1)
+    cut = np.zeros(t_n - 1, bool)
+    cut[t_n // 2 - 1] = t_n > 3
+    a = rng.standard_normal((t_n, 2, 2))
+    info = np.einsum("tab,tcb->tac", a, a)
+    info[0] = 0.0                            # a frame without information
+    delta = rng.standard_normal((t_n, 2))
+    got = _solve_steps(np.zeros((t_n, 2)), delta, info, dt, 0.05, cut)
+    n = 2 * t_n
+    mat = np.zeros((n, n))
+    for t in range(t_n):
+        mat[2 * t:2 * t + 2, 2 * t:2 * t + 2] = info[t]
+    d = tj._prior_rows(dt, 0.05, cut=cut)
+    d = d.toarray() if hasattr(d, "toarray") else np.asarray(d)
+    mat += np.kron(d.T @ d, np.eye(2)) + 1e-6 * np.eye(n)
+    want = np.linalg.solve(mat, np.einsum("tab,tb->ta", info, delta).reshape(-1)).reshape(t_n, 2)
+    np.testing.assert_allclose(got, want, rtol=1e-7, atol=1e-9)
