@@ -432,11 +432,24 @@ def _gap_links(link_ok, strong):
     """Failed links that are gaps: each run of successive failed links whose outer frames,
     and the next frame outward on each side, show clear texture (a finger arriving or leaving
     fades over several frames; a too-fast swipe has full texture on both sides of the jump,
-    while the frames within it may be blurred by the motion)."""
+    while the frames within it may be blurred by the motion). An outer frame blurred by the
+    jump's own motion counts on its side if it still registered with its outward neighbour
+    and the next two frames outward are clear (a fingertip's faint frames have faint
+    neighbours)."""
     link_ok = np.asarray(link_ok, dtype=bool)
-    s = np.concatenate([[False], np.asarray(strong, dtype=bool), [False]])   # s[k + 1] = strong[k]
+    n = link_ok.size
+    s = np.concatenate([[False, False], np.asarray(strong, dtype=bool), [False, False]])   # s[k + 2] = strong[k]
+    ok = np.concatenate([[False], link_ok, [False]])                   # ok[k + 1] = link_ok[k]
     out = np.zeros(link_ok.shape, dtype=bool)
-    k, n = 0, link_ok.size
+
+    def side(f, d):
+        # frame f (outer frame of the run), d = -1 outward to the left, +1 to the right
+        if s[f + 2] and s[f + d + 2]:
+            return True
+        link_out = ok[f + 1] if d > 0 else ok[f]                       # link f..f+d
+        return bool(link_out and s[f + d + 2] and s[f + 2 * d + 2])
+
+    k = 0
     while k < n:
         if link_ok[k]:
             k += 1
@@ -444,8 +457,8 @@ def _gap_links(link_ok, strong):
         e = k
         while e + 1 < n and not link_ok[e + 1]:
             e += 1
-        # links k..e join frames k..e+1: outer frames k and e+1, outward k-1 and e+2
-        if s[k] and s[k + 1] and s[e + 2] and s[e + 3]:
+        # links k..e join frames k..e+1: outer frames k and e+1
+        if side(k, -1) and side(e + 1, +1):
             out[k:e + 1] = True
         k = e + 1
     return out

@@ -273,6 +273,15 @@ def test_gap_links_judge_each_run_of_failed_links_by_its_sides():
     np.testing.assert_array_equal(np.flatnonzero(_gap_links(ok, strong)), [8])
     ok[9] = False                    # the run 8-9 now ends at the last frame: no frame outward
     assert not _gap_links(ok, strong).any()
+    ok = np.ones(10, bool)
+    ok[4] = False                    # 4 | 5, 6: frame 4 blurred by the jump but registered
+    np.testing.assert_array_equal(np.flatnonzero(_gap_links(ok, strong)), [4])   # with 3; 3, 2 clear
+    faint2 = strong.copy()
+    faint2[2] = False                # ... but not if a frame further out is faint too
+    assert not _gap_links(ok, faint2).any()
+    tip = np.array([0, 0, 1, 1, 1, 1], bool)
+    ok = np.array([1, 0, 1, 1, 1], bool)   # 1 | 2, 3: frame 1 faint, its outward neighbour too
+    assert not _gap_links(ok, tip).any()
 
 
 def test_long_stall_does_not_turn_or_slide_a_swipe():
