@@ -225,12 +225,21 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
         kc = int(np.floor(d1 + 0.5))
         x_first = 2 * c_lo + k1 - 1          # first up-grid column a tap touches
         n_x = 2 * (c_hi - c_lo) + 4
+        w0 = wy[0]
+        w1 = wy[1]
+        w2 = wy[2]
+        w3 = wy[3]
+        c0 = x_first + 2                     # extended column of the first tap (>= 0)
         for r in range(r_lo, r_hi + 1):
             ra = 2 * r + k0 + 1              # extended row of tap -1: (2r + k0 - 1) + 2
+            # Contiguous views of the four rows: indexed from 0, the loop below has no
+            # negative-index branch and is vectorised.
+            u0 = up_a[ra, c0:c0 + n_x]
+            u1 = up_a[ra + 1, c0:c0 + n_x]
+            u2 = up_a[ra + 2, c0:c0 + n_x]
+            u3 = up_a[ra + 3, c0:c0 + n_x]
             for q in range(n_x):
-                cc = x_first + q + 2
-                tmp[q] = (wy[0] * up_a[ra, cc] + wy[1] * up_a[ra + 1, cc]
-                          + wy[2] * up_a[ra + 2, cc] + wy[3] * up_a[ra + 3, cc])
+                tmp[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
             if full:
                 # Every plate usable: the template's own sums over the row come from its
                 # row totals; only the sums that involve the interpolated key remain.
