@@ -193,37 +193,41 @@ def _splat(vals, w, pw, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
     (acc, wacc), in place; returns how many were splatted."""
     t_n, r_n, c_n = vals.shape
     kept = 0
+    wp = np.zeros(c_n + 2)     # a frame row's weights and weighted values, zero at both ends
+    vp = np.zeros(c_n + 2)
     for t in range(t_n):
         ct = cos_t[t]
         st = sin_t[t]
         if st == 0.0 and ct == 1.0 and pitch[1] == 1.0:
-            # Unrotated at the sensor pitch across: one set of bilinear weights per row.
+            # Unrotated at the sensor pitch across: one set of bilinear weights per row, and
+            # plate c lands on columns i1 + c and i1 + c + 1, so a frame row adds a two-tap
+            # filter of its weighted values to two image rows (contiguous, vectorised).
+            f1 = pos[t, 1] - lo1
+            i1 = int(np.floor(f1))
+            a1 = f1 - i1
             for r in range(r_n):
                 f0 = (r + pos[t, 0]) / pitch[0] - lo0
-                f1 = pos[t, 1] - lo1
                 i0 = int(np.floor(f0))
-                i1 = int(np.floor(f1))
                 a0 = f0 - i0
-                a1 = f1 - i1
-                b00 = (1.0 - a0) * (1.0 - a1)
-                b01 = (1.0 - a0) * a1
-                b10 = a0 * (1.0 - a1)
-                b11 = a0 * a1
                 for c in range(c_n):
                     wv = float(w[t, r, c]) * pw[r, c]
-                    if wv <= 0.0:
-                        continue
-                    kept += 1
-                    v = float(vals[t, r, c])
-                    k = i1 + c
-                    acc[i0, k] += b00 * wv * v
-                    wacc[i0, k] += b00 * wv
-                    acc[i0, k + 1] += b01 * wv * v
-                    wacc[i0, k + 1] += b01 * wv
-                    acc[i0 + 1, k] += b10 * wv * v
-                    wacc[i0 + 1, k] += b10 * wv
-                    acc[i0 + 1, k + 1] += b11 * wv * v
-                    wacc[i0 + 1, k + 1] += b11 * wv
+                    if wv > 0.0:
+                        kept += 1
+                        wp[c + 1] = wv
+                        vp[c + 1] = wv * float(vals[t, r, c])
+                    else:              # excluded: adds nothing (its value may be anything)
+                        wp[c + 1] = 0.0
+                        vp[c + 1] = 0.0
+                for di in range(2):
+                    fa = a0 if di == 1 else 1.0 - a0
+                    fb0 = fa * (1.0 - a1)
+                    fb1 = fa * a1
+                    ra = acc[i0 + di, i1:i1 + c_n + 1]
+                    rw = wacc[i0 + di, i1:i1 + c_n + 1]
+                    for m in range(c_n + 1):
+                        ra[m] += fb0 * vp[m + 1] + fb1 * vp[m]
+                    for m in range(c_n + 1):
+                        rw[m] += fb0 * wp[m + 1] + fb1 * wp[m]
             continue
         for r in range(r_n):
             u0 = r - cf[0]
