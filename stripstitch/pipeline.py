@@ -291,7 +291,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     # -4.0 %, median -1.5 %, after 12; 3 rows: worst 2.09 -> 1.57 %; 4 rows: no change). On a
     # plane-wave texture (bench_scaling's) at 0.12-0.8 px/frame 6 and 12 passes agree within
     # 0.04 % of span, except at exactly 0.5 px/frame (two sampling phases, where the
-    # refinement's fixed point is biased): 12 read 0.2 % longer.
+    # refinement's fixed point is biased): 12 read 0.2-0.4 % longer.
     if model_passes is not None:
         n_model = int(model_passes)
     elif placed is not None:
