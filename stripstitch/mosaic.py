@@ -198,13 +198,12 @@ def _splat(vals, w, pw, pos, cos_t, sin_t, cf, pitch, lo0, lo1, acc, wacc):
     for t in range(t_n):
         ct = cos_t[t]
         st = sin_t[t]
-        i1 = int(np.floor(pos[t, 1] - lo1))
+        f1 = pos[t, 1] - lo1
+        i1 = int(np.floor(f1))
         if st == 0.0 and ct == 1.0 and pitch[1] == 1.0 and 0 <= i1 and i1 + c_n + 1 <= acc.shape[1]:
             # Unrotated at the sensor pitch across: one set of bilinear weights per row, and
             # plate c lands on columns i1 + c and i1 + c + 1, so a frame row adds a two-tap
             # filter of its weighted values to two image rows (contiguous, vectorised).
-            f1 = pos[t, 1] - lo1
-            i1 = int(np.floor(f1))
             a1 = f1 - i1
             for r in range(r_n):
                 f0 = (r + pos[t, 0]) / pitch[0] - lo0
