@@ -224,3 +224,80 @@ def test_frame_turn_rejects_bad_input():
         register.frame_turn(a, a, ok, (0, 0, 0))
     with pytest.raises(ValueError, match="at least 4 rows"):
         register.frame_turn(np.zeros((2, 32)), np.zeros((2, 32)), np.ones((2, 32), bool), (0, 0))
+
+
+# ---- speed from the delay between neighbouring rows (register.row_delay) ----
+# Reference for all of these: frames cut from a band-limited periodic texture at exact
+# sub-pixel positions (scipy.ndimage.fourier_shift, conftest.cut_frames), so row 0 of frame
+# t + 1/v holds exactly what row 1 of frame t held; the estimator is the cross-correlation
+# time-delay method (Knapp & Carter 1976).
+
+def _rows_moving(along, across, *, n_rows=2, seed=5, noise=0.02):
+    tex = band_texture((256, 96), seed=seed)
+    pos = np.stack([np.asarray(along, float), np.asarray(across, float)], 1)
+    frames = cut_frames(tex, pos, n_rows=n_rows, n_cols=64, origin=(8, 8))
+    frames = frames + noise * np.random.default_rng(seed + 1).standard_normal(frames.shape)
+    return frames.astype(np.float32), np.ones(frames.shape[1:], bool)
+
+
+@pytest.mark.parametrize("v", [0.1, 0.25, 0.5, -0.3])
+def test_row_delay_recovers_constant_speed(v):
+    t = np.arange(400)
+    z, ok = _rows_moving(v * t, 0.0 * t)
+    rd = register.row_delay(z, ok)
+    assert rd.valid.mean() > 0.8
+    # within 0.5 % of the speed the frames were cut at, either direction (backtracking: < 0)
+    assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.005
+    assert np.percentile(np.abs(rd.along_px[rd.valid] / v - 1.0), 90) < 0.02
+    assert abs(np.median(rd.across_px[rd.valid])) < 0.003
+
+
+def test_row_delay_reads_lateral_drift_and_three_rows():
+    t = np.arange(400)
+    z, ok = _rows_moving(0.25 * t, 0.04 * t, n_rows=3)
+    rd = register.row_delay(z, ok)
+    assert rd.valid.mean() > 0.8
+    assert abs(np.median(rd.along_px[rd.valid]) / 0.25 - 1.0) < 0.005
+    assert abs(np.median(rd.across_px[rd.valid]) - 0.04) < 0.004
+
+
+def test_row_delay_reads_nothing_in_a_stall():
+    # moving at 0.3 px/frame for 200 frames, then standing still for 300
+    t = np.arange(500)
+    along = 0.3 * np.minimum(t, 200)
+    z, ok = _rows_moving(along, 0.0 * t)
+    rd = register.row_delay(z, ok)
+    moving = rd.valid & (rd.time < 190)
+    assert moving.sum() > 100 and abs(np.median(rd.along_px[moving]) / 0.3 - 1.0) < 0.005
+    # no speed inside the stall: a stalled finger correlates alike at every delay
+    assert not (rd.valid & (rd.time > 215)).any()
+
+
+def test_row_delay_windows_skip_a_dropped_frame():
+    # three frames dropped after frame 199: the finger moves 4 steps in one link
+    idx = np.concatenate([np.arange(200), np.arange(203, 403)])
+    z, ok = _rows_moving(0.25 * idx, 0.0 * idx)
+    dt = np.diff(idx).astype(float)
+    rd = register.row_delay(z, ok, dt_frames=dt)
+    # every estimate read over uniform frames only: none is off by the straddled jump
+    assert rd.valid.mean() > 0.6
+    assert np.max(np.abs(rd.along_px[rd.valid] / 0.25 - 1.0)) < 0.03
+    unaware = register.row_delay(z, ok)
+    assert np.max(np.abs(unaware.along_px[unaware.valid] / 0.25 - 1.0)) > 0.03
+
+
+@settings(max_examples=12, deadline=None)
+@given(v=st.floats(0.08, 0.7), seed=st.integers(0, 50))
+def test_row_delay_speed_property(v, seed):
+    t = np.arange(300)
+    z, ok = _rows_moving(v * t, 0.0 * t, seed=seed)
+    rd = register.row_delay(z, ok)
+    assert rd.valid.sum() > 50
+    assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.01
+
+
+def test_row_delay_bad_input():
+    with pytest.raises(ValueError, match=r"z must be a \(T, R, C\) stack"):
+        register.row_delay(np.zeros((10, 64)), np.ones((1, 64), bool))
+    with pytest.raises(ValueError, match=r"plate_ok must have shape \(2, 16\)"):
+        register.row_delay(np.zeros((10, 2, 16)), np.ones((2, 8), bool))
