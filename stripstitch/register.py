@@ -20,8 +20,8 @@ from scipy import ndimage
 from ._jit import JIT
 from ._validate import check_array
 
-__all__ = ["Prepared", "PairEstimates", "RowDelay", "prepare", "coarse_shifts", "refine_shifts", "frame_turn",
-           "row_delay"]
+__all__ = ["Prepared", "PairEstimates", "RowDelay", "prepare", "coarse_shifts", "refine_shifts",
+           "frame_turn", "row_delay"]
 
 
 # --------------------------------------------------------------------------------------
@@ -1099,8 +1099,8 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         s_ab = _window_sums(prod, width)
         s_aa = _window_sums(ea * cnt, width)
         s_bb = _window_sums(ebl * cnt, width)
-        ncc = np.where(n_w[None] >= width - 0.5, s_ab / np.sqrt(np.maximum(s_aa[None] * s_bb, 1e-30)),
-                       -np.inf)
+        ncc = np.where(n_w[None] >= width - 0.5,
+                       s_ab / np.sqrt(np.maximum(s_aa[None] * s_bb, 1e-30)), -np.inf)
         flat = ncc.reshape(3 * n_l, t_n)
         best = np.argmax(flat, axis=0)
         kd, kl = np.divmod(best, n_l)
@@ -1134,8 +1134,8 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
             # all nine correlations around the peak from complete windows (near the ends of
             # the swipe the longer delays have none, and a peak next to them is no peak)
             full = (np.isfinite(lo3) & np.isfinite(mid3) & np.isfinite(hi3)).all(axis=0)
-            good = (inner & full & np.isfinite(q) & (q >= min_ncc) & (q - ncc[1, zero, tt] >= min_gain)
-                    & (q - mirror >= min_gain)
+            good = (inner & full & np.isfinite(q) & (q >= min_ncc)
+                    & (q - ncc[1, zero, tt] >= min_gain) & (q - mirror >= min_gain)
                     & (np.abs(off_l) <= 0.5) & (np.abs(off_d) <= 1.0) & (np.abs(tau) >= 1.0)
                     & (width >= min_travel_px * np.abs(tau)))
         # Each time takes the shortest window the finger travelled min_travel_px through: if
