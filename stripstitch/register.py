@@ -1,7 +1,8 @@
 """Pairwise registration stage: sub-pixel displacement, rotation and information between frames.
 
 In: a stack of strip frames and a list of frame pairs. Out: per-pair shift, rotation, 2x2
-information matrix (inverse covariance), residual noise and a match score.
+information matrix (inverse covariance), residual noise and a match score. For strips of very
+few rows also the speed read from the delay between neighbouring rows (:func:`row_delay`).
 
 Model (library convention): for a pair (i, j), ``frames[j][u] ~ frames[i][delta + Rot(theta) u]``
 with u measured from the frame centre, so ``delta`` is the position of frame j relative to
