@@ -576,7 +576,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 # span error -0.2 to -4.0 % (median -1.5 %) before, -0.14 to +0.11 % with the delay; 3 rows:
 # worst 1.57 -> 0.13 %. Seven harder 2-row swipes (stall and backtrack, 12 dB, 8 degree
 # slant, too fast, dropped frames, 0.74 px/frame, a 3 degree turn): -2.9 / +76 / -1.9 /
-# -4.0 / -0.33 / -14.9 / -1.1 % before, +0.49 / +7.5 / +0.62 / -2.5 / -0.42 / -1.8 / -0.60 %
+# -4.0 / -0.33 / -14.9 / -1.1 % before, +0.54 / +7.5 / +0.62 / -2.5 / -0.42 / -1.8 / -0.60 %
 # with it. Read after the refinement, the refinement's along steps (which it drifts off
 # by its own zero-shift bias on so few rows) would be worse: 12 passes from the delay's
 # start left the eight 2-row swipes at -0.8 to +0.0 %.
