@@ -982,15 +982,21 @@ class RowDelay:
     valid: np.ndarray
 
 
-def _window_sums(x, width):
-    """Sums of ``x`` (..., T) over windows of ``width`` samples starting at t - width // 2
-    (zero outside)."""
+def _padded_cumsum(x, pad):
+    """Cumulative sums of ``x`` (..., T) along the last axis with a leading zero, padded by
+    ``pad`` copies of the first (zero) and last values on either side (see _window_sums)."""
     t_n = x.shape[-1]
-    c = np.zeros(x.shape[:-1] + (t_n + 1,))
-    np.cumsum(x, axis=-1, out=c[..., 1:])
-    lo = np.clip(np.arange(t_n) - width // 2, 0, t_n)
-    hi = np.clip(np.arange(t_n) - width // 2 + width, 0, t_n)
-    return c[..., hi] - c[..., lo]
+    c = np.zeros(x.shape[:-1] + (t_n + 1 + 2 * pad,))
+    np.cumsum(x, axis=-1, out=c[..., pad + 1:pad + 1 + t_n])
+    c[..., pad + 1 + t_n:] = c[..., pad + t_n:pad + t_n + 1]
+    return c
+
+
+def _window_sums(c, width, t_n, pad):
+    """Sums over windows of ``width`` samples starting at t - width // 2 (zero outside), from
+    the padded cumulative sums ``c`` of :func:`_padded_cumsum` (two shifted views)."""
+    a = pad - width // 2
+    return c[..., a + width:a + width + t_n] - c[..., a:a + t_n]
 
 
 def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 128, 256),
@@ -1053,7 +1059,7 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     ok = np.asarray(plate_ok, dtype=bool)
     if ok.shape != (r_n, c_n):
         raise ValueError(f"plate_ok must have shape {(r_n, c_n)}; got {ok.shape}")
-    zn = _row_normalise(z, ok).astype(np.float64)
+    zn = _row_normalise(z, ok).astype(np.float32)
     # rows r (earlier in the finger's path) and r + 1; columns 1 .. C-2 so every across
     # offset of -1, 0, 1 has the same columns
     a = zn[:, :-1, 1:c_n - 1].reshape(t_n, -1)
@@ -1093,13 +1099,17 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     score = np.zeros(t_n)
     done = np.zeros(t_n, dtype=bool)
     decided = np.zeros(t_n, dtype=bool)
-    for width in sorted(int(w) for w in windows):
-        if width > t_n:
-            break
-        n_w = _window_sums(cnt, width)
-        s_ab = _window_sums(prod, width)
-        s_aa = _window_sums(ea * cnt, width)
-        s_bb = _window_sums(ebl * cnt, width)
+    widths = [w for w in sorted(int(w) for w in windows) if w <= t_n]
+    pad = max(widths, default=0)
+    c_n = _padded_cumsum(cnt, pad)
+    c_ab = _padded_cumsum(prod, pad)
+    c_aa = _padded_cumsum(ea * cnt, pad)
+    c_bb = _padded_cumsum(ebl * cnt, pad)
+    for width in widths:
+        n_w = _window_sums(c_n, width, t_n, pad)
+        s_ab = _window_sums(c_ab, width, t_n, pad)
+        s_aa = _window_sums(c_aa, width, t_n, pad)
+        s_bb = _window_sums(c_bb, width, t_n, pad)
         ncc = np.where(n_w[None] >= width - 0.5,
                        s_ab / np.sqrt(np.maximum(s_aa[None] * s_bb, 1e-30)), -np.inf)
         flat = ncc.reshape(3 * n_l, t_n)
