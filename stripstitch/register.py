@@ -1074,7 +1074,6 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     ea = np.zeros((n_l, t_n))
     cnt = np.zeros((n_l, t_n))
     eb = np.stack([np.einsum("ij,ij->i", b, b) for b in bs])            # (3, T)
-    ebl = np.zeros((3, n_l, t_n))
     aa = np.einsum("ij,ij->i", a, a)
     tt = np.arange(t_n)
     for i, tau in enumerate(lags):
@@ -1086,7 +1085,6 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         for k, b in enumerate(bs):
             prod[k, i, t0:t1] = np.einsum("ij,ij->i", at, b[t0:t1])
         ea[i, t0:t1] = aa[t0 + tau:t1 + tau]
-        ebl[:, i, t0:t1] = eb[:, t0:t1]
         # no dropped frame between the two frames of the product
         lo = np.minimum(tt[t0:t1], tt[t0:t1] + tau)
         hi = np.maximum(tt[t0:t1], tt[t0:t1] + tau)
@@ -1104,7 +1102,7 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     c_n = _padded_cumsum(cnt, pad)
     c_ab = _padded_cumsum(prod, pad)
     c_aa = _padded_cumsum(ea * cnt, pad)
-    c_bb = _padded_cumsum(ebl * cnt, pad)
+    c_bb = _padded_cumsum(eb[:, None, :] * cnt, pad)      # cnt is 0 where a lag has no product
     for width in widths:
         n_w = _window_sums(c_n, width, t_n, pad)
         s_ab = _window_sums(c_ab, width, t_n, pad)
