@@ -407,36 +407,26 @@ def _template_sums(b, g0, g1, pre):
             pre[k, r] = sums[k]
 
 
-@numba.njit(**JIT)
-def _row_norm(a, m, out):
-    r_n, c_n = a.shape
-    for r in range(r_n):
-        s = 0.0
-        n = 0.0
-        for c in range(c_n):
-            s += m[r, c] * a[r, c]
-            n += m[r, c]
-        mu = s / max(n, 1.0)
-        v = 0.0
-        for c in range(c_n):
-            x = (a[r, c] - mu) * m[r, c]
-            out[r, c] = x
-            v += x * x
-        sd = np.sqrt(v / max(n, 1.0))
-        for c in range(c_n):
-            out[r, c] = out[r, c] / max(sd, 1e-6)
+# Search candidates whose scores differ by less than this are taken as equally good.
+_TIE = 0.01
 
 
 @numba.njit(**JIT)
-def _coarse(an, bn, max_along, max_across, p0, p1, use_prior, res):
-    """Integer shift of bn against an by normalised cross-correlation over every candidate,
+def _coarse(a, b, m, max_along, max_across, p0, p1, use_prior, res):
+    """Integer shift of b against a by normalised cross-correlation over every candidate,
     scored by a lower confidence bound (NCC - 2 / sqrt(n)); a candidate within 1.5 px of
-    the prediction (p0, p1) wins unless the global peak is clearly stronger."""
-    r_n, c_n = an.shape
+    the prediction (p0, p1) wins unless the global peak is clearly stronger.
+
+    The NCC is taken over each candidate's overlap (its means and spreads; plates weighted
+    by ``m``), so the rows' means count: with ridges running across the strip (an arch)
+    they carry nearly all of the along-swipe signal. (Rows normalised one by one lost it: on
+    an 8x64 arch at 18 dB the search put a 1.2-row step at 7 rows, a one-row overlap of
+    noise, and a false gap ended the link.)"""
+    r_n, c_n = a.shape
+    n_d = 2 * max_along + 1
+    n_e = 2 * max_across + 1
+    score = np.full((n_d, n_e), -1e30)
     best = -1e30
-    bd = be = 0
-    bnear = -1e30
-    nd = ne = 0
     for d in range(-max_along, max_along + 1):
         rl = max(0, -d)
         rh = min(r_n, r_n - d)
@@ -447,20 +437,56 @@ def _coarse(an, bn, max_along, max_across, p0, p1, use_prior, res):
             ch = min(c_n, c_n - e)
             if ch - cl < 4:
                 continue
-            s = 0.0
+            sn = sx = sy = sxx = syy = sxy = 0.0
             for r in range(rl, rh):
                 for c in range(cl, ch):
-                    s += an[r + d, c + e] * bn[r, c]
-            cnt = (rh - rl) * (ch - cl)
-            v = s / cnt - 2.0 / np.sqrt(cnt)
+                    w = m[r + d, c + e] * m[r, c]
+                    x = a[r + d, c + e]
+                    y = b[r, c]
+                    sn += w
+                    sx += w * x
+                    sy += w * y
+                    sxx += w * x * x
+                    syy += w * y * y
+                    sxy += w * x * y
+            if sn < 4.0:
+                continue
+            vx = sxx - sx * sx / sn
+            vy = syy - sy * sy / sn
+            if not (vx > 0.0 and vy > 0.0):
+                continue
+            v = (sxy - sx * sy / sn) / np.sqrt(vx * vy) - 2.0 / np.sqrt(sn)
+            score[d + max_along, e + max_across] = v
             if v > best:
                 best = v
-                bd = d
-                be = e
+    # Among the candidates as good as the best (within _TIE), the one nearest the prediction
+    # (or no shift): on oblique ridges the peak is a ridge line through the integer grid, and
+    # a far end of it is a start the refinement slides back from by more than the 1.5 px it
+    # may move (an 8x64 arch: a good 0.95 match rejected, a false gap).
+    q0 = p0 if use_prior else 0.0
+    q1 = p1 if use_prior else 0.0
+    bd = be = 0
+    bdist = 1e30
+    bnear = -1e30
+    nd = ne = 0
+    for i in range(n_d):
+        for k in range(n_e):
+            v = score[i, k]
+            if v <= -1e29:
+                continue
+            d = i - max_along
+            e = k - max_across
+            if v >= best - _TIE:
+                dist = (d - q0) ** 2 + (e - q1) ** 2
+                if dist < bdist:
+                    bdist = dist
+                    bd = d
+                    be = e
             if use_prior and abs(d - p0) <= 1.5 and abs(e - p1) <= 1.5 and v > bnear:
                 bnear = v
                 nd = d
                 ne = e
+    best = score[bd + max_along, be + max_across] if best > -1e29 else best
     if use_prior and bnear > -1e29 and bnear >= 0.75 * best:
         bd = nd
         be = ne
@@ -601,8 +627,6 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     up_prev = np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32)
     g0 = np.empty((r_n, c_n), dtype=np.float32)
     g1 = np.empty((r_n, c_n), dtype=np.float32)
-    an = np.empty((r_n, c_n), dtype=np.float32)
-    bn = np.empty((r_n, c_n), dtype=np.float32)
     res = np.zeros(9)
     res2 = np.zeros(9)
     scratch = np.zeros(3 * c_n + 16, dtype=np.float32)
@@ -657,11 +681,9 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         if not placed:
             # Against the previous frame: integer search, then refinement.
             a = z[chain[j - 1]]
-            _row_norm(a, m, an)
-            _row_norm(b, m, bn)
             pp0 = x[0] - pos[j - 1, 0]
             pp1 = x[1] - pos[j - 1, 1]
-            _coarse(an, bn, max_along, max_across, pp0, pp1, have_v, cres)
+            _coarse(a, b, m, max_along, max_across, pp0, pp1, have_v, cres)
             if cres[2] > 0.0:
                 _upsample_extend(a, lor, wr, loc, wc, up_prev)
                 _gauss_newton(up_prev, m, b, g0, g1, m, cres[0], cres[1], iters + 2, lam, res,
