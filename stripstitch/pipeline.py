@@ -580,10 +580,27 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 # with it. Read after the refinement, the refinement's along steps (which it drifts off
 # by its own zero-shift bias on so few rows) would be worse: 12 passes from the delay's
 # start left the eight 2-row swipes at -0.8 to +0.0 %.
-_DELAY_MAX_ROWS = 3
+# Strips of 4-7 rows take it only where the finger moves at least _DELAY_MIN_SPEED px per
+# frame, read between the first and last rows (row_step R - 1: the longest delay, so it
+# stays over a frame up to R - 1 px per frame). There the few frames that see a row sample
+# few sub-pixel phases: the pairs lock towards whole pixels and the refinement, which needs
+# many phases, leaves them (a 4x160 arch at 0.85 px per frame came out 4.4 % long). Slower,
+# the refinement does better than the delay (20 random 4-7 row swipes at 0.1-1.3 px per
+# frame, 2-8 kHz, 15-40 dB: delay everywhere made the slow ones worse, e.g. 0.16 -> 0.54 %
+# on the suite's 4-row 10 dB strip at 0.39 px per frame; gated at 0.45 px per frame: median
+# |span error| 0.64 -> 0.35 %, worst 24 -> 11 %, the slow ones unchanged).
+_DELAY_MAX_ROWS = 7
+_DELAY_MIN_SPEED = 0.45
 # Links whose speed is interpolated between delay estimates: both within this many frames.
 _DELAY_REACH = 8.0
 _DELAY_SIGMA_PX = 0.05
+
+
+def _delay_settings(r_n):
+    """row_delay's row separation and the slowest speed (px/frame) it is taken at."""
+    if r_n <= 3:
+        return {"row_step": 1, "min_speed": 0.0}
+    return {"row_step": r_n - 1, "min_speed": _DELAY_MIN_SPEED}
 
 
 def _with_along_steps(positions, steps):
@@ -593,14 +610,15 @@ def _with_along_steps(positions, steps):
     return np.vstack([[0.0, 0.0], np.cumsum(d, axis=0)])
 
 
-def _delay_along(prep, positions, link_failed, dt_frames):
-    """Along-swipe steps from the delay between neighbouring rows (:func:`register.row_delay`)
-    where it was read (interpolated between estimates at most ``_DELAY_REACH`` frames away on
-    either side), the pairs' elsewhere and across gaps. Returns the new positions and the
-    steps taken from the delay (NaN where not; None if there were none)."""
+def _delay_along(prep, positions, link_failed, dt_frames, row_step=1, min_speed=0.0):
+    """Along-swipe steps from the delay between rows ``row_step`` apart
+    (:func:`register.row_delay`) where it was read (interpolated between estimates at most
+    ``_DELAY_REACH`` frames away on either side) and the speed is at least ``min_speed``
+    px/frame, the pairs' elsewhere and across gaps. Returns the new positions and the steps
+    taken from the delay (NaN where not; None if there were none)."""
     t_n = positions.shape[0]
     link_failed = np.asarray(link_failed, dtype=bool)
-    rd = _reg.row_delay(prep.z, prep.plate_ok, dt_frames=dt_frames)
+    rd = _reg.row_delay(prep.z, prep.plate_ok, dt_frames=dt_frames, row_step=row_step)
     steps = np.full(t_n - 1, np.nan)
     ok = rd.valid & np.isfinite(rd.along_px)
     if ok.sum() < 8:
@@ -614,7 +632,8 @@ def _delay_along(prep, positions, link_failed, dt_frames):
     before = np.where(k > 0, mid - when[np.maximum(k - 1, 0)], np.inf)
     after = np.where(k < when.size, when[np.minimum(k, when.size - 1)] - mid, np.inf)
     v = np.interp(mid, when, speed)
-    use = (before <= _DELAY_REACH) & (after <= _DELAY_REACH) & ~link_failed
+    use = ((before <= _DELAY_REACH) & (after <= _DELAY_REACH) & ~link_failed
+           & (np.abs(v) >= min_speed))
     steps[use] = v[use] * np.asarray(dt_frames, dtype=np.float64)[use]
     return _with_along_steps(positions, steps), steps
 
@@ -752,7 +771,8 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     frame_info = tr.frame_info
     delay_steps = None
     if r_n <= _DELAY_MAX_ROWS:
-        positions, delay_steps = _delay_along(prep_used, positions, link_failed, dt_frames)
+        positions, delay_steps = _delay_along(prep_used, positions, link_failed, dt_frames,
+                                              **_delay_settings(r_n))
     if delay_steps is not None:
         # Frames on a link the delay read get its along information, so the least determined
         # direction is the one the pairs still place (across). Its error: the speed averages

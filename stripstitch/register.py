@@ -19,7 +19,7 @@ import numpy as np
 from scipy import ndimage
 
 from ._jit import JIT
-from ._validate import check_array
+from ._validate import check_array, check_int
 
 __all__ = ["Prepared", "PairEstimates", "RowDelay", "prepare", "coarse_shifts", "refine_shifts",
            "frame_turn", "row_delay"]
@@ -1000,7 +1000,7 @@ def _window_sums(c, width, t_n, pad):
 
 
 def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 128, 256),
-              min_ncc=0.5, min_gain=0.02, min_travel_px=4.0, max_drop=0.05):
+              min_ncc=0.5, min_gain=0.02, min_travel_px=4.0, max_drop=0.05, row_step=1):
     """Speed of the finger from the time one row takes to see what its neighbour saw.
 
     While the finger slides along the swipe by ``v`` pixels per frame, row ``r`` sees at time
@@ -1039,6 +1039,10 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         Travel (px) a window must span.
     max_drop : float
         Largest shortfall of an estimate's correlation from the upper quartile of all of them.
+    row_step : int
+        Rows between the two rows compared (1: neighbours), 1 .. R - 1. Rows ``k`` apart see
+        the same texture ``k / v`` frames apart: a longer delay reads faster swipes (the
+        delay must be at least a frame) and more finely, from fewer row pairs.
 
     Returns
     -------
@@ -1059,11 +1063,12 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     ok = np.asarray(plate_ok, dtype=bool)
     if ok.shape != (r_n, c_n):
         raise ValueError(f"plate_ok must have shape {(r_n, c_n)}; got {ok.shape}")
+    k_r = check_int(row_step, name="row_step", lo=1, hi=r_n - 1)
     zn = _row_normalise(z, ok).astype(np.float32)
-    # rows r (earlier in the finger's path) and r + 1; columns 1 .. C-2 so every across
+    # rows r (earlier in the finger's path) and r + k_r; columns 1 .. C-2 so every across
     # offset of -1, 0, 1 has the same columns
-    a = zn[:, :-1, 1:c_n - 1].reshape(t_n, -1)
-    bs = [zn[:, 1:, 1 + d:c_n - 1 + d].reshape(t_n, -1) for d in (-1, 0, 1)]
+    a = zn[:, :-k_r, 1:c_n - 1].reshape(t_n, -1)
+    bs = [zn[:, k_r:, 1 + d:c_n - 1 + d].reshape(t_n, -1) for d in (-1, 0, 1)]
     lag_max = int(max(1, min(int(max_lag), (t_n - 1) // 3)))
     lags = np.arange(-lag_max, lag_max + 1)
     n_l = lags.size
@@ -1146,14 +1151,14 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
             good = (inner & full & np.isfinite(q) & (q >= min_ncc)
                     & (q - ncc[1, zero, tt] >= min_gain) & (q - mirror >= min_gain)
                     & (np.abs(off_l) <= 0.5) & (np.abs(off_d) <= 1.0) & (np.abs(tau) >= 1.0)
-                    & (width >= min_travel_px * np.abs(tau)))
+                    & (width * k_r >= min_travel_px * np.abs(tau)))
         # Each time takes the shortest window the finger travelled min_travel_px through: if
         # that one fails, so does the time (a longer window would only reach further into a
         # stall or past a reversal next to it).
-        travelled = inner & np.isfinite(tau) & (width >= min_travel_px * np.abs(tau))
+        travelled = inner & np.isfinite(tau) & (width * k_r >= min_travel_px * np.abs(tau))
         new = good & ~done & ~decided
         decided |= travelled
-        along[new] = 1.0 / tau[new]
+        along[new] = k_r / tau[new]
         across[new] = off_d[new] / tau[new]
         when[new] = tt[new] - width // 2 + 0.5 * (width - 1) + 0.5 * tau[new]
         score[new] = q[new]

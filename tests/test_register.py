@@ -296,8 +296,25 @@ def test_row_delay_speed_property(v, seed):
     assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.01
 
 
+@pytest.mark.parametrize("v", [0.85, 1.2, -1.5])
+def test_row_delay_between_rows_further_apart(v):
+    # Rows k apart see the same texture k / v frames apart: between the first and last rows
+    # of a 4-row strip (k = 3) the delay stays over a frame up to 3 px per frame, where
+    # neighbouring rows (under a frame's delay from 1 px per frame) read nothing.
+    t = np.arange(300)
+    z, ok = _rows_moving(v * t, 0.0 * t, n_rows=4)
+    rd = register.row_delay(z, ok, row_step=3)
+    assert rd.valid.mean() > 0.8
+    assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.005
+    assert np.percentile(np.abs(rd.along_px[rd.valid] / v - 1.0), 90) < 0.02
+    if abs(v) > 1.0:
+        assert register.row_delay(z, ok).valid.mean() < 0.05
+
+
 def test_row_delay_bad_input():
     with pytest.raises(ValueError, match=r"z must be a \(T, R, C\) stack"):
         register.row_delay(np.zeros((10, 64)), np.ones((1, 64), bool))
     with pytest.raises(ValueError, match=r"plate_ok must have shape \(2, 16\)"):
         register.row_delay(np.zeros((10, 2, 16)), np.ones((2, 8), bool))
+    with pytest.raises(ValueError, match="row_step"):
+        register.row_delay(np.zeros((10, 2, 16)), np.ones((2, 16), bool), row_step=2)
