@@ -124,8 +124,9 @@ def main(argv=None):
     cols = ["case", "placement", "frames", "span_error_pct", "along_rms_px", "across_rms_px",
             "rotation_rms_deg", "gap_true", "gap_false", "stall_true", "stall_detected",
             "stall_false", "backtrack_true", "backtrack_detected", "backtrack_false", "verdict"]
-    heads = ["case", "placement", "T", "span err %", "along rms px", "across rms px", "rot rms deg", "gaps",
-             "false gaps", "stalls", "found", "false", "backtracks", "found", "false", "verdict"]
+    heads = ["case", "placement", "T", "span err %", "along rms px", "across rms px",
+             "rot rms deg", "gaps", "false gaps", "stalls", "found", "false", "backtracks",
+             "found", "false", "verdict"]
     md = (f"# Geometries{' (quick)' if args.quick else ''}\n\n{n} swipes on random strips "
           f"(seed {args.seed}; see case()), default mode:\n\n" + "\n".join(lines)
           + "\n\n" + table(rows, cols, heads) + "\n")
