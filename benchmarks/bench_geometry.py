@@ -116,7 +116,8 @@ def main(argv=None):
     groups.append(("all", rows))
     summary = {name: _summary(g) for name, g in groups if g}
     lines = [f"- {name}: {s['swipes']} swipes, span error median "
-             f"{fmt(s['median_abs_span_error_pct'])} %, worst {fmt(s['worst_abs_span_error_pct'])} % "
+             f"{fmt(s['median_abs_span_error_pct'])} %, worst "
+             f"{fmt(s['worst_abs_span_error_pct'])} % "
              f"({s['swipes_over_1pct']} over 1 %), along / across RMS median "
              f"{fmt(s['median_along_rms_px'])} / {fmt(s['median_across_rms_px'])} px, events "
              f"reported where the truth has none {s['false_events']}, called unusable "

@@ -528,11 +528,12 @@ def _spread(times, chain, chain_pos):
         out[:, k] = np.interp(times, tc, chain_pos[:, k])
     n = min(_EDGE_VELOCITY_FRAMES, len(chain))
     if n >= 2:
-        for sel, side in ((slice(0, n), times < tc[0]), (slice(len(chain) - n, None), times > tc[-1])):
+        m = len(chain)
+        for sel, side, edge in ((slice(0, n), times < tc[0], 0),
+                                (slice(m - n, m), times > tc[-1], m - 1)):
             dt = tc[sel][-1] - tc[sel][0]
             if side.any() and dt > 0:
                 v = (chain_pos[sel][-1] - chain_pos[sel][0]) / dt
-                edge = 0 if sel.start == 0 else -1
                 out[side] = chain_pos[edge] + (times[side] - tc[edge])[:, None] * v[None, :]
     return out - out[0]
 

@@ -477,6 +477,12 @@ def test_frames_beyond_the_tracked_ones_move_on_at_the_end_velocity():
     # frame 0 to the first tracked frame: 7.2 px of travel (held still it would be 0)
     travel = true[chain[0], 0] - true[0, 0]
     assert abs((out[chain[0], 0] - out[0, 0]) - travel) < 0.05 * travel
+    # a chain no longer than the velocity window: each end from its own side
+    short = np.arange(10, 14)
+    out = _spread(times, short, true[short])
+    err = (out - out[short[0]]) - (true - true[short[0]])
+    assert np.abs(err[short[-1]:short[-1] + 5]).max() < 0.1
+    assert np.abs(err[short[0] - 5:short[0] + 1]).max() < 0.1
 
 
 def test_fingertip_frames_outside_contact_do_not_shorten_the_swipe():
