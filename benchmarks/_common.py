@@ -52,6 +52,18 @@ def fmt(v, nd=3):
     return str(v)
 
 
+def span_summary(rows):
+    """Span error over the gap-free swipes (median, worst, count over 1 %) and median along /
+    across RMS over all of them, from rows of stripstitch.evaluate figures."""
+    gap_free = np.array([abs(r["span_error_pct"]) for r in rows if not r["gap_true"]])
+    return {"swipes": len(rows),
+            "median_abs_span_error_pct": float(np.median(gap_free)) if gap_free.size else None,
+            "worst_abs_span_error_pct": float(gap_free.max()) if gap_free.size else None,
+            "swipes_over_1pct": int((gap_free > 1.0).sum()),
+            "median_along_rms_px": float(np.median([r["along_rms_px"] for r in rows])),
+            "median_across_rms_px": float(np.median([r["across_rms_px"] for r in rows]))}
+
+
 def table(rows, columns, headers=None):
     """Markdown table (also readable as plain text)."""
     headers = headers or columns

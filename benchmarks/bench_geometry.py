@@ -22,7 +22,7 @@ from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 
-from _common import environment, fmt, table, write
+from _common import environment, fmt, span_summary, table, write
 
 from stripstitch import evaluate as ev
 from stripstitch import simulate, stitch
@@ -89,13 +89,7 @@ def run(args):
 
 
 def _summary(rows):
-    gap_free = np.array([abs(r["span_error_pct"]) for r in rows if not r["gap_true"]])
-    out = {"swipes": len(rows),
-           "median_abs_span_error_pct": float(np.median(gap_free)) if gap_free.size else None,
-           "worst_abs_span_error_pct": float(gap_free.max()) if gap_free.size else None,
-           "swipes_over_1pct": int((gap_free > 1.0).sum()),
-           "median_along_rms_px": float(np.median([r["along_rms_px"] for r in rows])),
-           "median_across_rms_px": float(np.median([r["across_rms_px"] for r in rows])),
+    out = {**span_summary(rows),
            "false_events": int(sum((r["gap_false"] or 0) + (r["stall_false"] or 0)
                                    + (r["backtrack_false"] or 0) for r in rows)),
            "unusable": int(sum(r["verdict"] != "usable" for r in rows))}

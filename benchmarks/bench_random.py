@@ -19,7 +19,7 @@ from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 
-from _common import environment, fmt, table, write
+from _common import environment, fmt, span_summary, table, write
 
 from stripstitch import evaluate as ev
 from stripstitch import simulate, stitch
@@ -77,17 +77,12 @@ def main(argv=None):
     summary = {}
     for mode in MODES:
         mine = [r for r in rows if r["mode"] == mode]
-        gap_free = np.array([abs(r["span_error_pct"]) for r in mine if not r["gap_true"]])
         turning = [r["rotation_rms_deg"] for r in mine if r["turn_deg"]]
         tot = {k: int(sum(r[k] or 0 for r in mine)) for k in
                ("stall_true", "stall_detected", "stall_false", "backtrack_true",
                 "backtrack_detected", "backtrack_false", "gap_false")}
         summary[mode] = {
-            "swipes": len(mine), "median_abs_span_error_pct": float(np.median(gap_free)),
-            "worst_abs_span_error_pct": float(gap_free.max()),
-            "swipes_over_1pct": int((gap_free > 1.0).sum()),
-            "median_along_rms_px": float(np.median([r["along_rms_px"] for r in mine])),
-            "median_across_rms_px": float(np.median([r["across_rms_px"] for r in mine])),
+            **span_summary(mine),
             "median_rotation_rms_deg_turning": float(np.median(turning)) if turning else None,
             **tot}
     lines = []
