@@ -296,7 +296,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     if model_passes is not None:
         n_model = int(model_passes)
     elif placed is not None:
-        n_model = 0 if fast else 2
+        n_model = 0 if fast else _TRACKED_PASSES
     else:
         n_model = 6 if r_n > 3 else 12
     if n_model > 0:
@@ -614,6 +614,9 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 # frame, 2-8 kHz, 15-40 dB: delay everywhere made the slow ones worse, e.g. 0.16 -> 0.54 %
 # on the suite's 4-row 10 dB strip at 0.39 px per frame; gated at 0.45 px per frame: median
 # |span error| 0.64 -> 0.35 %, worst 24 -> 11 %, the slow ones unchanged).
+# Model passes after the tracker placed the frames (see stitch).
+_TRACKED_PASSES = 2
+
 _DELAY_MAX_ROWS = 7
 _DELAY_MIN_SPEED = 0.45
 # Links whose speed is interpolated between delay estimates: both within this many frames.

@@ -192,9 +192,13 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     model = work.get("model", shape)
     s00 = work.get("s00", shape)
     var0 = work.get("var0", shape) if sharp > 0 else np.empty((0, 0))
-    _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0,
-                    np.empty((9, 0, 0)), work.get("ring", (gy0.size, 9, shape[1])),
-                    work.get("ring_out", (9, shape[1])))
+    # The two passes in single precision like the sums they smooth (kernels, ring and row
+    # buffer): twice the lanes per vector instruction.
+    f32 = lambda *a: [np.asarray(x, dtype=np.float32) for x in a]
+    _smooth_moments(acc, pad, *f32(gx0, gx1, gx2, gy0, gy1, gy2), model, s00, var0,
+                    np.empty((9, 0, 0), dtype=np.float32),
+                    work.get("ring", (gy0.size, 9, shape[1]), np.float32),
+                    work.get("ring_out", (9, shape[1]), np.float32))
     # "Enough weight": 5 % of the 90th percentile of the positive weights, the percentile
     # taken on an even subsample of at most ~10^5 nodes (a statistic of the whole window).
     k = max(1, int(np.ceil(np.sqrt(s00.size / 1e5))))
@@ -325,6 +329,7 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                 k0 = gx0[j]
                 k1 = gx1[j]
                 k2 = gx2[j]
+                k1d = k1 + k1         # (not 2.0 * k1: a double literal widens single kernels)
                 o2 = off + j
                 for k in range(9):
                     for c in range(ww):
@@ -332,7 +337,7 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                 for c in range(ww):       # xa01 + x1_a00
                     p[s, 2, c] += k1 * acc[i, 0, c + o2]
                 for c in range(ww):       # xa02 + 2 x1_a01 + x2_a00
-                    p[s, 4, c] += 2.0 * k1 * acc[i, 2, c + o2] + k2 * acc[i, 0, c + o2]
+                    p[s, 4, c] += k1d * acc[i, 2, c + o2] + k2 * acc[i, 0, c + o2]
                 for c in range(ww):       # xa11 + x1_a10
                     p[s, 5, c] += k1 * acc[i, 1, c + o2]
                 for c in range(ww):       # xb1x + x1_b0
@@ -349,6 +354,7 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
             k0 = gy0[j + ry]
             k1 = gy1[j + ry]
             k2 = gy2[j + ry]
+            k1d = k1 + k1
             for c in range(ww):
                 q0 = p[s, 0, c]
                 q1 = p[s, 1, c]
@@ -357,7 +363,7 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                 buf[0, c] += k0 * q0                                  # s00
                 buf[1, c] += k0 * q1 + k1 * q0                        # s10
                 buf[2, c] += k0 * q2                                  # s01
-                buf[3, c] += k0 * p[s, 3, c] + 2.0 * k1 * q1 + k2 * q0   # s20
+                buf[3, c] += k0 * p[s, 3, c] + k1d * q1 + k2 * q0   # s20
                 buf[4, c] += k0 * p[s, 4, c]                          # s02
                 buf[5, c] += k0 * p[s, 5, c] + k1 * q2                # s11
                 buf[6, c] += k0 * q6                                  # t0
@@ -365,7 +371,7 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                 buf[8, c] += k0 * p[s, 8, c]                          # t1x
         if var0.shape[0] == hh:
             for c in range(ww):
-                b0 = buf[0, c]
+                b0 = float(buf[0, c])
                 if b0 > 0.0:
                     m1 = buf[1, c] / b0
                     var0[o, c] = buf[3, c] / b0 - 2.0 * m1 * m1
@@ -373,8 +379,11 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                     var0[o, c] = 0.0
         for c in range(ww):
             s00[o, c] = buf[0, c]
-            model[o, c] = _plane_value(buf[0, c], buf[1, c], buf[2, c], buf[3, c], buf[4, c],
-                                       buf[5, c], buf[6, c], buf[7, c], buf[8, c])
+            # (the plane's cofactors in double precision: they cancel where it is barely
+            # determined)
+            model[o, c] = _plane_value(float(buf[0, c]), float(buf[1, c]), float(buf[2, c]),
+                                       float(buf[3, c]), float(buf[4, c]), float(buf[5, c]),
+                                       float(buf[6, c]), float(buf[7, c]), float(buf[8, c]))
         if keep:
             out[:, o, :] = buf
 
