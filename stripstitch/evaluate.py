@@ -1106,7 +1106,9 @@ def evaluate(result, capture, *, crb=True, image=True, distortion=True, block_px
         Frame both trajectories are referenced to. Default is None: frame 0 (nothing removed)
         when it has contact >= ``min_contact``, else the first frame that has.
     min_contact : float, optional
-        Frames with at least this contact fraction are scored. Default is 0.5.
+        Frames with at least this contact fraction are scored. Default is 0.5. If no frame
+        has that much (a finger narrower than the strip), frames with at least this fraction
+        of the largest contact are.
     search_px : int, optional
         Global alignment search range for the image metrics. Default is 8.
     slack_frames : int, optional
@@ -1124,7 +1126,11 @@ def evaluate(result, capture, *, crb=True, image=True, distortion=True, block_px
     contact = np.asarray(getattr(capture, "contact", np.ones(t)), dtype=np.float64)
     scored = contact >= float(min_contact)
     if not scored.any():
-        scored = np.ones(t, dtype=bool)
+        # A pad that never covers min_contact of the strip (a finger narrower than a wide
+        # strip): the frames of at least min_contact of its largest contact, not every frame
+        # (those with no contact hold no data, only the method's guess).
+        c_max = float(contact.max()) if t else 0.0
+        scored = contact >= float(min_contact) * c_max if c_max > 0 else np.ones(t, dtype=bool)
     if reference_frame is None:
         ref = 0 if scored[0] else int(np.flatnonzero(scored)[0])
     else:

@@ -350,6 +350,25 @@ def test_evaluate_capture_without_ideal_frames_skips_the_bound():
         ev.pair_crb(bare)
 
 
+def test_evaluate_scores_frames_of_a_narrow_pad_not_blank_frames():
+    # Worked example: a pad covering at most 40 % of the strip. The frames of at least half
+    # that contact are placed exactly and the blank ones 10 px off: span and position errors
+    # are those of the scored frames (zero), not of the blank frames' guesses (span over all
+    # frames would read 20 px on 78: +25.6 %).
+    cap = _fake_capture(n_frames=40, step=2, seed=11)
+    cap.contact = np.where((np.arange(40) >= 5) & (np.arange(40) < 35), 0.4, 0.0)
+    cap.contact[5:8] = 0.1                   # the fingertip arriving: under half of 0.4
+    res = _perfect_result(cap)
+    res.positions[:5, 0] -= 10.0
+    res.positions[35:, 0] += 10.0
+    res.positions[5:8, 1] += 3.0
+    d = ev.evaluate(res, cap, crb=False, image=False).to_dict()
+    assert d["span_error_pct"] == 0 and d["along_rms_px"] == 0 and d["across_rms_px"] == 0
+    # Scored over every frame, the same result would read the blank frames' error.
+    every = ev.trajectory_errors(res.positions, None, cap.positions, None)
+    assert every.span_error_pct == pytest.approx(100 * 20 / 78)
+
+
 def test_evaluate_stretched_stand_in_reports_factor():
     # A reconstruction stretched by k along the swipe (positions k * truth, image stretched
     # by k about frame 0) reports span error 100 (k - 1) % and an along period ratio ~ k.
