@@ -948,6 +948,22 @@ def coarse_chain(zn, pairs, *, max_along, max_across, pool=8, penalty=0.005):
     kk = np.argmax(fine.reshape(p_n, -1), axis=1)
     kfd, kfe = np.unravel_index(kk, fine.shape[1:])
     shift = np.stack([fd[idx, kfd], fe[idx, kfe]], 1)
+    # The upsampled grid (4 (2 w + 1) samples over the patch) holds no whole-pixel shift: its
+    # nearest to zero are +-0.111 px, where a stall's peak lies. The lattice points compete
+    # with it: a pair at a whole-pixel peak starts there. (A stall on a 6x128 strip read
+    # (0.111, -0.111) per pair and, the refinement holding its start along the ridges,
+    # drifted 14 px across over 240 frames.)
+    lat = patch - (penalty * e[jj].astype(np.float32) ** 2)[:, None, :]
+    lat_ok = ((kd[:, None] + od[None, :] >= 0) & (kd[:, None] + od[None, :] < len(d)))[:, :, None] \
+        & ((ke[:, None] + od[None, :] >= 0) & (ke[:, None] + od[None, :] < len(e)))[:, None, :]
+    lat = np.where(lat_ok, lat, -np.inf)
+    kl = np.argmax(lat.reshape(p_n, -1), axis=1)
+    kld, kle = np.unravel_index(kl, lat.shape[1:])
+    # Not on strips of 2 rows: there every start is a guess the row delay later replaces,
+    # and a start at exactly zero along leaves the registration a single row it cannot use
+    # (the suite's 2-row swipe then failed a link and reported a false gap).
+    use_lat = (lat[idx, kld, kle] > fine[idx, kfd, kfe]) & (r_n >= 3)
+    shift[use_lat] = np.stack([d[ii[idx, kld]], e[jj[idx, kle]]], 1)[use_lat]
     id0 = np.clip(np.rint(shift[:, 0]).astype(int) - d[0], 0, len(d) - 1)
     ie0 = np.clip(np.rint(shift[:, 1]).astype(int) - e[0], 0, len(e) - 1)
     return shift, surf[idx, id0, ie0].astype(np.float64), pooled[idx, id0, ie0].astype(np.float64)

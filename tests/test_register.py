@@ -318,3 +318,31 @@ def test_row_delay_bad_input():
         register.row_delay(np.zeros((10, 2, 16)), np.ones((2, 8), bool))
     with pytest.raises(ValueError, match="row_step"):
         register.row_delay(np.zeros((10, 2, 16)), np.ones((2, 16), bool), row_step=2)
+
+
+def test_coarse_chain_starts_a_stall_at_zero():
+    # A stall: every frame the same window of the texture (plus independent noise), so each
+    # successive pair's true shift is zero (exact by construction; scikit-image's phase
+    # correlation on the same pairs, an outside check, reads zero too). The coarse start
+    # must be zero, not the nearest point of an upsampled grid (+-0.111 px), which the
+    # refinement keeps along the ridges where they run straight.
+    tex = band_texture((64, 160), period_px=9.0, seed=4)
+    frames = cut_frames(tex, np.zeros((40, 2)), n_rows=6, n_cols=128)
+    rng = np.random.default_rng(1)
+    frames = frames + 0.05 * frames.std() * rng.standard_normal(frames.shape)
+    prep = _prep(frames)
+    zn = register._row_normalise(prep.z, prep.plate_ok)
+    pairs = np.stack([np.arange(39), np.arange(1, 40)], 1)
+    shift, score, _ = register.coarse_chain(zn, pairs, max_along=5, max_across=12, pool=8)
+    np.testing.assert_array_equal(shift, 0.0)
+    ref = np.array([phase_cross_correlation(frames[a], frames[b], upsample_factor=20)[0]
+                    for a, b in pairs[:5]])
+    np.testing.assert_allclose(ref, 0.0, atol=0.1)
+    # A moving chain keeps its sub-pixel start: 0.4 px along per frame, within a grid step.
+    moving = cut_frames(tex, np.stack([0.4 * np.arange(40), np.zeros(40)], 1), n_rows=6,
+                        n_cols=128)
+    prep_m = _prep(moving)
+    zm = register._row_normalise(prep_m.z, prep_m.plate_ok)
+    shift_m, _, _ = register.coarse_chain(zm, pairs, max_along=5, max_across=12, pool=8)
+    np.testing.assert_allclose(shift_m[:, 0], 0.4, atol=0.12)
+    np.testing.assert_allclose(shift_m[:, 1], 0.0, atol=0.12)
