@@ -102,8 +102,11 @@ def test_shell_path_matches_in_memory_path(sim, capsys):
         # Layout b keeps the times as JSON floats in the manifest (exact round trip), so its
         # trajectory is the in-memory one to rounding. Layout a stores them as integer
         # nanoseconds in the frame header (<= 0.5 ns off in a 250 us frame interval, 2e-6
-        # relative), which moves the motion prior by micro-pixels: 1e-4 px tolerance.
-        atol = 1e-9 if name == "b" else 1e-4
+        # relative), which moves the motion prior by micro-pixels, and the model refinement's
+        # single-precision smoothing carries that to a few 1e-4 px (measured on an 8x192
+        # swipe with times moved by up to 0.5 ns: 3.9e-4 px, 8e-6 with double-precision
+        # smoothing; the per-frame noise floor is ~1e-2 px): 1e-3 px tolerance.
+        atol = 1e-9 if name == "b" else 1e-3
         np.testing.assert_allclose(traj["along_px"], ref.positions[:, 0], atol=atol)
         np.testing.assert_allclose(traj["across_px"], ref.positions[:, 1], atol=atol)
         np.testing.assert_allclose(traj["angle_deg"], ref.angles, atol=atol)
