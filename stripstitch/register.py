@@ -959,9 +959,11 @@ def coarse_chain(zn, pairs, *, max_along, max_across, pool=8, penalty=0.005):
     lat = np.where(lat_ok, lat, -np.inf)
     kl = np.argmax(lat.reshape(p_n, -1), axis=1)
     kld, kle = np.unravel_index(kl, lat.shape[1:])
-    # Not on strips of 2 rows: there every start is a guess the row delay later replaces,
-    # and a start at exactly zero along leaves the registration a single row it cannot use
-    # (the suite's 2-row swipe then failed a link and reported a false gap).
+    # Not on strips of 2 rows: their along steps come from the row delay, and a pair
+    # overlapping by a row or less is so weakly determined that the refinement can run off
+    # from any start (the suite's 2-row swipe, a faint pair as the finger leaves: from zero
+    # it stepped to -1.04 px along, where nothing overlaps, and the failed link read as a
+    # gap; from the old grid's 0.111 it held at -0.68 against a true +0.74).
     use_lat = (lat[idx, kld, kle] > fine[idx, kfd, kfe]) & (r_n >= 3)
     shift[use_lat] = np.stack([d[ii[idx, kld]], e[jj[idx, kle]]], 1)[use_lat]
     id0 = np.clip(np.rint(shift[:, 0]).astype(int) - d[0], 0, len(d) - 1)
