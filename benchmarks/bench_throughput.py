@@ -1,6 +1,7 @@
 """Throughput benchmark: frames/s of stitching, simulation, metrics and the reference chains.
 
-Run from a clean checkout:  python benchmarks/bench_throughput.py  [--repeat N] [--quick] [--cores N]
+Run from a clean checkout:
+    python benchmarks/bench_throughput.py  [--repeat N] [--quick] [--cores N]
 
 For each geometry (8 x 192 @ 4 kHz, 16 x 128 @ 2 kHz; one simulated full swipe each) times,
 side by side in one run: stripstitch.stitch mode "default" and "fast", the skimage and OpenCV
@@ -80,9 +81,10 @@ def main(argv=None):
     heads = ["case", "stage", "T", "s", "frames/s", "real-time factor", "speed vs skimage chain",
              "speed vs OpenCV chain", "peak MB (tracemalloc)"]
     t = table(rows, cols, heads)
-    md = (f"# Throughput{' (quick)' if args.quick else ''}\n\nOne process pinned to {len(cpus)} CPU(s) "
-          f"of a shared {os.cpu_count()}-core machine, best of {repeat}; chain times include fusing "
-          "the image with stripstitch.mosaic.fuse. "
+    title = "# Throughput" + (" (quick)" if args.quick else "")
+    md = (f"{title}\n\nOne process pinned to {len(cpus)} CPU(s) of a shared "
+          f"{os.cpu_count()}-core machine, best of {repeat}; chain times include fusing the "
+          "image with stripstitch.mosaic.fuse. "
           f"Finger generation ({FINGER_MM[0]:g} x {FINGER_MM[1]:g} mm at 12.7 um): {t_finger:.2f} s "
           f"(not included in 'simulate capture'). 'speed vs ... chain' = chain time / stage time "
           f"(> 1: faster than the chain). Max resident set size of the run: {rss_mb:.0f} MB.\n\n"
@@ -90,7 +92,8 @@ def main(argv=None):
     print()
     print(md)
     paths = write("throughput_quick" if args.quick else "throughput",
-                  {"environment": environment(), "repeat": repeat, "cpus": cpus, "finger_seconds": t_finger,
+                  {"environment": environment(), "repeat": repeat, "cpus": cpus,
+                   "finger_seconds": t_finger,
                    "max_rss_mb": rss_mb, "rows": rows}, md)
     print("wrote", *paths)
     return 0
