@@ -124,20 +124,45 @@ def _gradients(b, g0, g1):
                 g1[r, c] = 0.5 * (b[r, c + 1] - b[r, c - 1])
 
 
+@numba.njit(cache=True, inline="always")
+def _slot(x, ne):
+    """Storage column of column x of the extended twice-denser grid: the even columns first
+    (``ne`` of them), then the odd ones (see _upsample_extend)."""
+    return x // 2 if x % 2 == 0 else ne + x // 2
+
+
 @numba.njit(**JIT)
 def _upsample_extend(a, lor, wr, loc, wc, out):
     """Twice-denser grid (Lagrange mid-points, up to 6 taps) with Keys' boundary extension:
     interpolating it by cubic convolution has about eight times less phase error at ridge
     frequencies than interpolating the plates themselves. Written into ``out``
-    (2R + 3, 2C + 3) in place."""
+    (2R + 3, 2C + 3) in place, its columns stored by phase: the C + 2 even columns of the
+    extended grid first, then its C + 1 odd ones (see ``_slot``), so that a registration
+    reads every other column from contiguous memory."""
     r_n, c_n = a.shape
     nr = 2 * r_n - 1
     nc = 2 * c_n - 1
+    ne = c_n + 2
     kr = wr.shape[1]
     kc = wc.shape[1]
-    # Row by row through a contiguous buffer: even rows are the plates, odd rows the
-    # mid-points between them; then the mid-points between columns, on every row.
+    # The interior mid-points between columns share one centred 6-tap stencil: taken as a
+    # vectorised loop; the few near the edges from their own taps.
+    ja = c_n
+    jb = 0
+    if kc == 6:
+        jm = (c_n - 1) // 2
+        for j in range(c_n - 1):
+            if loc[j] == j - 2:
+                same = True
+                for k in range(kc):
+                    if wc[j, k] != wc[jm, k]:
+                        same = False
+                if same:
+                    ja = min(ja, j)
+                    jb = max(jb, j + 1)
     row = np.empty(c_n, dtype=np.float32)
+    # Row by row: even rows are the plates, odd rows the mid-points between them; then the
+    # mid-points between columns, on every row.
     for r in range(nr):
         i = r // 2
         if r % 2 == 0:
@@ -152,16 +177,33 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
                 for c in range(c_n):
                     row[c] += wk * a[src, c]
         rr = 2 + r
+        # plates: extended column 2 + 2c (even); mid-points: 3 + 2j (odd)
+        ev = out[rr, 1:1 + c_n]
+        od = out[rr, ne + 1:ne + c_n]
         for c in range(c_n):
-            out[rr, 2 + 2 * c] = row[c]
+            ev[c] = row[c]
+        if jb > ja:
+            v0 = wc[ja, 0]
+            v1 = wc[ja, 1]
+            v2 = wc[ja, 2]
+            v3 = wc[ja, 3]
+            v4 = wc[ja, 4]
+            v5 = wc[ja, 5]
+            for j in range(ja, jb):
+                od[j] = (v0 * row[j - 2] + v1 * row[j - 1] + v2 * row[j] + v3 * row[j + 1]
+                         + v4 * row[j + 2] + v5 * row[j + 3])
         for j in range(c_n - 1):
+            if ja <= j < jb:
+                continue
             acc = np.float32(0.0)
             b0 = loc[j]
             for k in range(kc):
                 acc += wc[j, k] * row[b0 + k]
-            out[rr, 3 + 2 * j] = acc
-    # Keys' boundary extension, two samples per side: rows, then columns (all rows)
-    for c in range(2, 2 + nc):
+            od[j] = acc
+    # Keys' boundary extension, two samples per side: rows (the columns between the
+    # extended ones: storage columns of x = 2 .. 2C), then columns (all rows)
+    for x in range(2, 2 + nc):
+        c = _slot(x, ne)
         if nr >= 3:
             lo1 = 3.0 * out[2, c] - 3.0 * out[3, c] + out[4, c]
             hi1 = 3.0 * out[nr + 1, c] - 3.0 * out[nr, c] + out[nr - 1, c]
@@ -172,13 +214,23 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
         out[0, c] = 2.0 * lo1 - out[2, c]
         out[nr + 2, c] = hi1
         out[nr + 3, c] = 2.0 * hi1 - out[nr + 1, c]
+    x0 = _slot(0, ne)
+    x1 = _slot(1, ne)
+    x2 = _slot(2, ne)
+    x3 = _slot(3, ne)
+    x4 = _slot(4, ne)
+    y0 = _slot(nc - 1, ne)
+    y1 = _slot(nc, ne)
+    y2 = _slot(nc + 1, ne)
+    y3 = _slot(nc + 2, ne)
+    y4 = _slot(nc + 3, ne)
     for r in range(nr + 4):
-        lo1 = 3.0 * out[r, 2] - 3.0 * out[r, 3] + out[r, 4]
-        hi1 = 3.0 * out[r, nc + 1] - 3.0 * out[r, nc] + out[r, nc - 1]
-        out[r, 1] = lo1
-        out[r, 0] = 2.0 * lo1 - out[r, 2]
-        out[r, nc + 2] = hi1
-        out[r, nc + 3] = 2.0 * hi1 - out[r, nc + 1]
+        lo1 = 3.0 * out[r, x2] - 3.0 * out[r, x3] + out[r, x4]
+        hi1 = 3.0 * out[r, y2] - 3.0 * out[r, y1] + out[r, y0]
+        out[r, x1] = lo1
+        out[r, x0] = 2.0 * lo1 - out[r, x2]
+        out[r, y3] = hi1
+        out[r, y4] = 2.0 * hi1 - out[r, y2]
 
 
 @numba.njit(**JIT)
@@ -191,11 +243,13 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
     res gets: d0, d1, I00, I01, I11 (noise-only information, px^-2), ncc, sigma, n, ok.
     """
     r_n, c_n = b.shape
-    # work arrays from the caller (no allocation per call): 8 + (2C + 8) + C floats
+    # work arrays from the caller (no allocation per call): 8 + 2 (C + 4) + C floats
     wy = scratch[0:4]
     wx = scratch[4:8]
-    tmp = scratch[8:2 * c_n + 16]
+    ta = scratch[8:c_n + 12]
+    tb = scratch[c_n + 12:2 * c_n + 16]
     wrow = scratch[2 * c_n + 16:3 * c_n + 16]
+    ne = c_n + 2                             # even columns of up_a stored first
     ok = 0.0
     st0 = d0
     st1 = d1
@@ -224,31 +278,40 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
         si = st = sii = stt = sit = 0.0
         kc = int(np.floor(d1 + 0.5))
         x_first = 2 * c_lo + k1 - 1          # first up-grid column a tap touches
-        n_x = 2 * (c_hi - c_lo) + 4
+        n_p = c_hi - c_lo + 2
         w0 = wy[0]
         w1 = wy[1]
         w2 = wy[2]
         w3 = wy[3]
         c0 = x_first + 2                     # extended column of the first tap (>= 0)
+        # Plate c's taps are the extended columns c0 + 2p + (0, 1, 2, 3), p = c - c_lo: every
+        # other column from two runs of one phase each, contiguous in up_a's storage.
+        sa = _slot(c0, ne)
+        sb = _slot(c0 + 1, ne)
         for r in range(r_lo, r_hi + 1):
             ra = 2 * r + k0 + 1              # extended row of tap -1: (2r + k0 - 1) + 2
-            # Contiguous views of the four rows: indexed from 0, the loop below has no
-            # negative-index branch and is vectorised.
-            u0 = up_a[ra, c0:c0 + n_x]
-            u1 = up_a[ra + 1, c0:c0 + n_x]
-            u2 = up_a[ra + 2, c0:c0 + n_x]
-            u3 = up_a[ra + 3, c0:c0 + n_x]
-            for q in range(n_x):
-                tmp[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
+            # Contiguous views of the four rows: indexed from 0, the loops below have no
+            # negative-index branch and are vectorised.
+            u0 = up_a[ra, sa:sa + n_p]
+            u1 = up_a[ra + 1, sa:sa + n_p]
+            u2 = up_a[ra + 2, sa:sa + n_p]
+            u3 = up_a[ra + 3, sa:sa + n_p]
+            for q in range(n_p):
+                ta[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
+            u0 = up_a[ra, sb:sb + n_p]
+            u1 = up_a[ra + 1, sb:sb + n_p]
+            u2 = up_a[ra + 2, sb:sb + n_p]
+            u3 = up_a[ra + 3, sb:sb + n_p]
+            for q in range(n_p):
+                tb[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
             if full:
                 # Every plate usable: the template's own sums over the row come from its
                 # row totals; only the sums that involve the interpolated key remain.
                 z32 = np.float32(0.0)
                 ri = rii = rit = r0i = r1i = z32
                 for c in range(c_lo, c_hi + 1):
-                    q = 2 * (c - c_lo)
-                    iv = (wx[0] * tmp[q] + wx[1] * tmp[q + 1] + wx[2] * tmp[q + 2]
-                          + wx[3] * tmp[q + 3])
+                    q = c - c_lo
+                    iv = wx[0] * ta[q] + wx[1] * tb[q] + wx[2] * ta[q + 1] + wx[3] * tb[q + 1]
                     ri += iv
                     rii += iv * iv
                     rit += iv * b[r, c]
@@ -284,8 +347,8 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
             ri = rt = rii = rtt = rit = z32
             for c in range(c_lo, c_hi + 1):
                 w = wrow[c]
-                q = 2 * (c - c_lo)
-                iv = wx[0] * tmp[q] + wx[1] * tmp[q + 1] + wx[2] * tmp[q + 2] + wx[3] * tmp[q + 3]
+                q = c - c_lo
+                iv = wx[0] * ta[q] + wx[1] * tb[q] + wx[2] * ta[q + 1] + wx[3] * tb[q + 1]
                 tv = b[r, c]
                 e = iv - tv
                 a0 = g0[r, c]
@@ -427,6 +490,26 @@ def _coarse(a, b, m, max_along, max_across, p0, p1, use_prior, res):
     n_e = 2 * max_across + 1
     score = np.full((n_d, n_e), -1e30)
     best = -1e30
+    full = True
+    for r in range(r_n):
+        for c in range(c_n):
+            if m[r, c] != 1.0:
+                full = False
+    if full:
+        # Every plate usable: the overlap's sums of a, a^2, b, b^2 from running sums along
+        # each row, so only the cross products are summed per candidate (a third of the work).
+        pa = np.zeros((r_n, c_n + 1))
+        pa2 = np.zeros((r_n, c_n + 1))
+        pb = np.zeros((r_n, c_n + 1))
+        pb2 = np.zeros((r_n, c_n + 1))
+        for r in range(r_n):
+            for c in range(c_n):
+                x = float(a[r, c])
+                y = float(b[r, c])
+                pa[r, c + 1] = pa[r, c] + x
+                pa2[r, c + 1] = pa2[r, c] + x * x
+                pb[r, c + 1] = pb[r, c] + y
+                pb2[r, c + 1] = pb2[r, c] + y * y
     for d in range(-max_along, max_along + 1):
         rl = max(0, -d)
         rh = min(r_n, r_n - d)
@@ -438,17 +521,31 @@ def _coarse(a, b, m, max_along, max_across, p0, p1, use_prior, res):
             if ch - cl < 4:
                 continue
             sn = sx = sy = sxx = syy = sxy = 0.0
-            for r in range(rl, rh):
-                for c in range(cl, ch):
-                    w = m[r + d, c + e] * m[r, c]
-                    x = a[r + d, c + e]
-                    y = b[r, c]
-                    sn += w
-                    sx += w * x
-                    sy += w * y
-                    sxx += w * x * x
-                    syy += w * y * y
-                    sxy += w * x * y
+            if full:
+                sn = float((rh - rl) * (ch - cl))
+                for r in range(rl, rh):
+                    sx += pa[r + d, ch + e] - pa[r + d, cl + e]
+                    sxx += pa2[r + d, ch + e] - pa2[r + d, cl + e]
+                    sy += pb[r, ch] - pb[r, cl]
+                    syy += pb2[r, ch] - pb2[r, cl]
+                    xr = a[r + d, cl + e:ch + e]
+                    yr = b[r, cl:ch]
+                    rxy = np.float32(0.0)
+                    for c in range(ch - cl):
+                        rxy += xr[c] * yr[c]
+                    sxy += rxy
+            else:
+                for r in range(rl, rh):
+                    for c in range(cl, ch):
+                        w = m[r + d, c + e] * m[r, c]
+                        x = a[r + d, c + e]
+                        y = b[r, c]
+                        sn += w
+                        sx += w * x
+                        sy += w * y
+                        sxx += w * x * x
+                        syy += w * y * y
+                        sxy += w * x * y
             if sn < 4.0:
                 continue
             vx = sxx - sx * sx / sn

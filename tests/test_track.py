@@ -147,6 +147,26 @@ def test_integer_search_keeps_the_row_means(seed):
     assert abs(res[1] - 0.1) < 1.5            # across is weak here: within the refinement's reach
 
 
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(d=st.integers(-7, 7), e=st.integers(-8, 8), seed=st.integers(0, 1000))
+def test_integer_search_finds_whole_pixel_shifts(d, e, seed):
+    # Frames a whole number of pixels apart on the sampled texture: the NCC peak is exactly
+    # there (the overlap holds the same samples; common practice). The search takes its sums
+    # from running sums along the rows when every plate is usable and plate by plate under a
+    # mask: one dead plate must not move the shift it reads, nor its score by much.
+    z = _frames(np.array([[0.0, 0.0], [float(d), float(e)]]), shape=(8, 64), seed=seed,
+                noise=0.05)
+    res_full, res_mask = np.zeros(3), np.zeros(3)
+    m = np.ones((8, 64), np.float32)
+    _coarse(z[0], z[1], m, 7, 8, 0.0, 0.0, False, res_full)
+    m[3, 40] = 0.0
+    _coarse(z[0], z[1], m, 7, 8, 0.0, 0.0, False, res_mask)
+    if abs(d) <= 5:                              # at least 3 rows of overlap: unambiguous
+        assert (res_full[0], res_full[1]) == (d, e)
+    assert (res_mask[0], res_mask[1]) == (res_full[0], res_full[1])
+    assert abs(res_mask[2] - res_full[2]) < 0.02
+
+
 def test_arch_swipe_on_a_narrow_strip_has_no_false_gap():
     # Simulated 8x64 strip, wet tented arch at 18 dB, speeding up to 1.4 px per frame with a
     # backtrack: the fallback search once put a 1.2-row step at 7 rows, the link was called
