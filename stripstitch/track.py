@@ -105,23 +105,28 @@ def _gradients(b, g0, g1):
     """Central differences; at the first and last row/column the nearest interior difference
     (a gradient through the residual's own sample would bias the shift towards zero)."""
     r_n, c_n = b.shape
+    half = np.float32(0.5)
     for r in range(r_n):
+        # along: the rows differenced, and the factor (whole rows: vectorised)
+        if r_n < 3:
+            lo, hi, f = 0, 1, np.float32(1.0)
+        elif r == 0:
+            lo, hi, f = 1, 2, np.float32(1.0)
+        elif r == r_n - 1:
+            lo, hi, f = r_n - 3, r_n - 2, np.float32(1.0)
+        else:
+            lo, hi, f = r - 1, r + 1, half
+        bl = b[lo]
+        bh = b[hi]
+        ga = g0[r]
         for c in range(c_n):
-            if r_n >= 3:
-                if r == 0:
-                    g0[r, c] = b[2, c] - b[1, c]
-                elif r == r_n - 1:
-                    g0[r, c] = b[r_n - 2, c] - b[r_n - 3, c]
-                else:
-                    g0[r, c] = 0.5 * (b[r + 1, c] - b[r - 1, c])
-            else:
-                g0[r, c] = b[1, c] - b[0, c]
-            if c == 0:
-                g1[r, c] = b[r, 2] - b[r, 1]
-            elif c == c_n - 1:
-                g1[r, c] = b[r, c_n - 2] - b[r, c_n - 3]
-            else:
-                g1[r, c] = 0.5 * (b[r, c + 1] - b[r, c - 1])
+            ga[c] = f * (bh[c] - bl[c])
+        br = b[r]
+        gc = g1[r]
+        for c in range(1, c_n - 1):
+            gc[c] = half * (br[c + 1] - br[c - 1])
+        gc[0] = br[2] - br[1]
+        gc[c_n - 1] = br[c_n - 2] - br[c_n - 3]
 
 
 @numba.njit(cache=True, inline="always")
