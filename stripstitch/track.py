@@ -123,8 +123,10 @@ def _gradients(b, g0, g1):
             ga[c] = f * (bh[c] - bl[c])
         br = b[r]
         gc = g1[r]
-        for c in range(1, c_n - 1):
-            gc[c] = half * (br[c + 1] - br[c - 1])
+        bn = br[2:]                      # views indexed from 0: no negative-index check
+        gm = gc[1:c_n - 1]
+        for c in range(c_n - 2):
+            gm[c] = half * (bn[c] - br[c])
         gc[0] = br[2] - br[1]
         gc[c_n - 1] = br[c_n - 2] - br[c_n - 3]
 
@@ -134,6 +136,16 @@ def _slot(x, ne):
     """Storage column of column x of the extended twice-denser grid: the even columns first
     (``ne`` of them), then the odd ones (see _upsample_extend)."""
     return x // 2 if x % 2 == 0 else ne + x // 2
+
+
+@numba.njit(cache=True, inline="always")
+def _taps(wc, loc, row, j, kc):
+    """Mid-point j of a row from its own Lagrange taps."""
+    acc = np.float32(0.0)
+    b0 = loc[j]
+    for k in range(kc):
+        acc += wc[j, k] * row[b0 + k]
+    return acc
 
 
 @numba.njit(**JIT)
@@ -178,9 +190,9 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
                 row[c] = 0.0
             for k in range(kr):
                 wk = wr[i, k]
-                src = lor[i] + k
+                ak = a[lor[i] + k]
                 for c in range(c_n):
-                    row[c] += wk * a[src, c]
+                    row[c] += wk * ak[c]
         rr = 2 + r
         # plates: extended column 2 + 2c (even); mid-points: 3 + 2j (odd)
         ev = out[rr, 1:1 + c_n]
@@ -194,31 +206,51 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
             v3 = wc[ja, 3]
             v4 = wc[ja, 4]
             v5 = wc[ja, 5]
-            for j in range(ja, jb):
-                od[j] = (v0 * row[j - 2] + v1 * row[j - 1] + v2 * row[j] + v3 * row[j + 1]
-                         + v4 * row[j + 2] + v5 * row[j + 3])
+            # views indexed from 0 (an index like j - 2 is checked for wrap-around, which
+            # keeps the loop from being vectorised: 6x slower)
+            m_j = jb - ja
+            q0 = row[ja - 2:ja - 2 + m_j]
+            q1 = row[ja - 1:ja - 1 + m_j]
+            q2 = row[ja:ja + m_j]
+            q3 = row[ja + 1:ja + 1 + m_j]
+            q4 = row[ja + 2:ja + 2 + m_j]
+            q5 = row[ja + 3:ja + 3 + m_j]
+            oj = od[ja:jb]
+            for j in range(m_j):
+                oj[j] = (v0 * q0[j] + v1 * q1[j] + v2 * q2[j] + v3 * q3[j] + v4 * q4[j]
+                         + v5 * q5[j])
+        # the mid-points near the edges, each from its own taps
         for j in range(c_n - 1):
-            if ja <= j < jb:
-                continue
-            acc = np.float32(0.0)
-            b0 = loc[j]
-            for k in range(kc):
-                acc += wc[j, k] * row[b0 + k]
-            od[j] = acc
-    # Keys' boundary extension, two samples per side: rows (the columns between the
-    # extended ones: storage columns of x = 2 .. 2C), then columns (all rows)
-    for x in range(2, 2 + nc):
-        c = _slot(x, ne)
-        if nr >= 3:
-            lo1 = 3.0 * out[2, c] - 3.0 * out[3, c] + out[4, c]
-            hi1 = 3.0 * out[nr + 1, c] - 3.0 * out[nr, c] + out[nr - 1, c]
-        else:
-            lo1 = 2.0 * out[2, c] - out[nr + 1, c]
-            hi1 = 2.0 * out[nr + 1, c] - out[2, c]
-        out[1, c] = lo1
-        out[0, c] = 2.0 * lo1 - out[2, c]
-        out[nr + 2, c] = hi1
-        out[nr + 3, c] = 2.0 * hi1 - out[nr + 1, c]
+            if j == ja:
+                break
+            od[j] = _taps(wc, loc, row, j, kc)
+        for j in range(max(jb, ja), c_n - 1):
+            od[j] = _taps(wc, loc, row, j, kc)
+    # Keys' boundary extension, two samples per side: rows (over the columns of x = 2 .. 2C:
+    # storage columns 1 .. C and C + 3 .. 2C + 1, as whole rows), then columns (all rows)
+    for s0, s1 in ((1, c_n + 1), (ne + 1, ne + c_n)):
+        m_s = s1 - s0
+        o0 = out[0, s0:s1]
+        o1 = out[1, s0:s1]
+        i2 = out[2, s0:s1]
+        i3 = out[3, s0:s1]
+        i4 = out[4, s0:s1] if nr >= 3 else i3
+        h2 = out[nr + 2, s0:s1]
+        h3 = out[nr + 3, s0:s1]
+        j1 = out[nr + 1, s0:s1]
+        j0 = out[nr, s0:s1]
+        jm = out[nr - 1, s0:s1] if nr >= 3 else j0
+        for c in range(m_s):
+            if nr >= 3:
+                lo1 = 3.0 * i2[c] - 3.0 * i3[c] + i4[c]
+                hi1 = 3.0 * j1[c] - 3.0 * j0[c] + jm[c]
+            else:
+                lo1 = 2.0 * i2[c] - j1[c]
+                hi1 = 2.0 * j1[c] - i2[c]
+            o1[c] = lo1
+            o0[c] = 2.0 * lo1 - i2[c]
+            h2[c] = hi1
+            h3[c] = 2.0 * hi1 - j1[c]
     x0 = _slot(0, ne)
     x1 = _slot(1, ne)
     x2 = _slot(2, ne)
@@ -309,19 +341,29 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
             u3 = up_a[ra + 3, sb:sb + n_p]
             for q in range(n_p):
                 tb[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
+            # The row's overlap as views indexed from 0 (no negative-index check: vectorised).
+            n_q = c_hi + 1 - c_lo
+            ta1 = ta[1:n_q + 1]
+            tb1 = tb[1:n_q + 1]
+            bv = b[r, c_lo:c_hi + 1]
+            g0v = g0[r, c_lo:c_hi + 1]
+            g1v = g1[r, c_lo:c_hi + 1]
+            x0 = wx[0]
+            x1 = wx[1]
+            x2 = wx[2]
+            x3 = wx[3]
             if full:
                 # Every plate usable: the template's own sums over the row come from its
                 # row totals; only the sums that involve the interpolated key remain.
                 z32 = np.float32(0.0)
                 ri = rii = rit = r0i = r1i = z32
-                for c in range(c_lo, c_hi + 1):
-                    q = c - c_lo
-                    iv = wx[0] * ta[q] + wx[1] * tb[q] + wx[2] * ta[q + 1] + wx[3] * tb[q + 1]
+                for q in range(n_q):
+                    iv = x0 * ta[q] + x1 * tb[q] + x2 * ta1[q] + x3 * tb1[q]
                     ri += iv
                     rii += iv * iv
-                    rit += iv * b[r, c]
-                    r0i += g0[r, c] * iv
-                    r1i += g1[r, c] * iv
+                    rit += iv * bv[q]
+                    r0i += g0v[q] * iv
+                    r1i += g1v[q] * iv
                 # template sums over the row minus the columns outside the overlap (few)
                 width = c_hi + 1 - c_lo
                 e0, e1, e2, e3, e4, e5, e6, e7, e8 = _template_row(b, g0, g1, r, c_n - width,
@@ -350,14 +392,14 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
             rw = rg0 = rg1 = rgg00 = rgg01 = rgg11 = z32
             rr = rg0r = rg1r = z32
             ri = rt = rii = rtt = rit = z32
-            for c in range(c_lo, c_hi + 1):
-                w = wrow[c]
-                q = c - c_lo
-                iv = wx[0] * ta[q] + wx[1] * tb[q] + wx[2] * ta[q + 1] + wx[3] * tb[q + 1]
-                tv = b[r, c]
+            wv = wrow[c_lo:c_hi + 1]
+            for q in range(n_q):
+                w = wv[q]
+                iv = x0 * ta[q] + x1 * tb[q] + x2 * ta1[q] + x3 * tb1[q]
+                tv = bv[q]
                 e = iv - tv
-                a0 = g0[r, c]
-                a1 = g1[r, c]
+                a0 = g0v[q]
+                a1 = g1v[q]
                 wa0 = w * a0
                 wa1 = w * a1
                 rw += w
