@@ -48,7 +48,7 @@ from . import register as _reg
 from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
-from .pipeline import _TRACK_MIN_ROWS
+from .pipeline import _TRACK_MIN_ROWS, _min_eig2, _with_model_error
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
 from ._validate import check_choice, check_frame, check_int, check_positive
 
@@ -904,8 +904,7 @@ class StreamingStitcher:
 
     def _confidence(self, sl, contact):
         fi = self._frame_info[sl]
-        ev = np.linalg.eigvalsh(0.5 * (fi + np.transpose(fi, (0, 2, 1))))
-        lam = np.maximum(ev[:, 0], 0.0)
+        lam = np.maximum(_min_eig2(0.5 * (fi + np.transpose(fi, (0, 2, 1)))), 0.0)
         sigma = 1.0 / np.sqrt(np.maximum(lam, 1e-12))
         conf = erf(0.25 / (np.sqrt(2.0) * sigma)) * np.clip(self._okfrac[sl], 0, 1)
         return np.clip(np.where(contact, conf, 0.0), 0.0, 1.0)
@@ -1188,17 +1187,3 @@ def _replace_rows(est, k, est2, sel):
         arr[k] = getattr(est2, name)[sel]
         fields[name] = arr
     return _reg.PairEstimates(**fields)
-
-
-def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
-    """Model-error allowance added to each pair's covariance (as the batch path does):
-    ``(floor + alias * 2 d)^2`` per axis, d the distance of the shift from a whole pixel."""
-    d = np.abs(shift - np.round(shift))
-    s = floor_px + alias_px * 2.0 * d
-    eye = np.eye(2)[None]
-    tr = np.trace(info, axis1=1, axis2=2)
-    reg = info + eye * 1e-12 * (tr[:, None, None] + 1e-12)
-    cov = np.linalg.inv(reg) + eye * (s ** 2)[:, :, None]
-    out = np.linalg.inv(cov)
-    out[tr <= 0] = 0.0
-    return out

@@ -537,3 +537,29 @@ def test_jump_as_the_finger_leaves_is_a_gap_not_a_weak_link():
                  timestamps_s=cap.times_s)
     found = res.events_of("gap")
     assert len(found) == 1 and abs(found[0].first_frame - truth[0].first_frame) <= 2
+
+
+def test_two_by_two_inverse_and_smallest_eigenvalue_match_numpy():
+    # Outside reference: numpy.linalg.inv and numpy.linalg.eigvalsh (LAPACK) on the same
+    # matrices: symmetric positive definite 2 x 2 information matrices, well conditioned and
+    # nearly rank one (ridges parallel to the swipe: 1e6 against 1e-2), and general ones.
+    from stripstitch.pipeline import _inv2, _min_eig2
+    rng = np.random.default_rng(5)
+    a = rng.standard_normal((200, 2, 3))
+    spd = a @ np.transpose(a, (0, 2, 1))
+    rot = rng.uniform(0, np.pi, 100)
+    u = np.stack([np.cos(rot), np.sin(rot)], 1)
+    v = np.stack([-np.sin(rot), np.cos(rot)], 1)
+    thin = 1e6 * u[:, :, None] * u[:, None, :] + 1e-2 * v[:, :, None] * v[:, None, :]
+    gen = rng.standard_normal((100, 2, 2))
+    for m in (spd, thin, gen):
+        ref = np.linalg.inv(m)
+        scale = np.abs(ref).max(axis=(1, 2), keepdims=True)
+        # both sides carry rounding errors of about condition number x machine epsilon
+        tol = 10 * np.finfo(float).eps * np.linalg.cond(m).max()
+        np.testing.assert_allclose(_inv2(m) / scale, ref / scale, rtol=tol, atol=tol)
+    for m in (spd, thin):
+        ref = np.linalg.eigvalsh(m)[:, 0]
+        # absolute accuracy relative to the matrix's size, as LAPACK's own
+        np.testing.assert_allclose(_min_eig2(m), ref, rtol=1e-9,
+                                   atol=1e-12 * np.abs(m).max())
