@@ -12,8 +12,9 @@ the hop that the rest of the swipe builds on.
 Each registration is inverse-compositional Gauss-Newton (translation and offset) with cubic
 convolution interpolation, started from the position the last step predicts (the motion is
 smooth at kHz frame rates); a normalised cross-correlation search over every integer shift
-takes over only when that fails. All of it runs in one compiled loop (numba): about 30 us a
-frame for an 8 x 192 strip on one core (benchmarks/bench_throughput.py).
+takes over only when that fails. All of it runs in one compiled loop (numba): about 11 us a
+frame for an 8 x 192 strip whose finger covers 136 columns, 17 us for 16 x 128, on one core of
+a 2.0 GHz Xeon (benchmarks/bench_throughput.py times the whole fast mode).
 
 The filter is a constant-velocity Kalman filter whose state also holds the positions of the
 current and the previous key frame (stochastic cloning [3]_): every registration measures a
