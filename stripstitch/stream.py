@@ -40,6 +40,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy import ndimage
 from scipy.special import erf
@@ -49,6 +50,7 @@ from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
 from .pipeline import _TRACK_MIN_ROWS, _min_eig2, _with_model_error
+from ._jit import JIT
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
 from ._validate import check_choice, check_frame, check_int, check_positive
 
@@ -939,39 +941,19 @@ class StreamingStitcher:
 
     def _splat(self, vals, pos, wts):
         r_n, c_n = self._shape
-        q0 = (pos[:, 0, None, None] + np.arange(r_n)[None, :, None]) / self._pitch_px[0]
-        q1 = (pos[:, 1, None, None] + np.arange(c_n)[None, None, :]) / self._pitch_px[1]
-        q0, q1 = np.broadcast_arrays(q0, q1)
-        keep = wts > 0
-        if not keep.any():
+        kept_rows = np.flatnonzero((wts > 0).any(axis=2).ravel())
+        if kept_rows.size == 0:
             return
-        q0, q1, v, wv = q0[keep], q1[keep], vals[keep], wts[keep]
-        i0 = np.floor(q0).astype(np.int64)
-        i1 = np.floor(q1).astype(np.int64)
-        a0 = q0 - i0
-        a1 = q1 - i1
-        lo_r, hi_r = int(i0.min()), int(i0.max()) + 2
+        # rows of the grid the kept observations touch (as numpy.floor of their row
+        # coordinate), so the band can grow to them before the compiled splat
+        q0 = ((pos[:, 0, None] + np.arange(r_n)[None, :]) / self._pitch_px[0]).ravel()[kept_rows]
+        lo_r = int(np.floor(q0.min()))
+        hi_r = int(np.floor(q0.max())) + 2
         self._extend_band(lo_r, hi_r, rows_out=None)
         blo, bhi = self._band
-        j1 = i1 - self._col0
-        h, wd = self._acc_h, self._acc_w
-        # Accumulate over the rows touched only, then add into the strip's ring rows.
-        span = hi_r - lo_r
-        loc_acc = np.zeros(span * wd)
-        loc_w = np.zeros(span * wd)
-        for di, wa in ((0, 1.0 - a0), (1, a0)):
-            for dj, wb in ((0, 1.0 - a1), (1, a1)):
-                rr = i0 + di
-                cc = j1 + dj
-                ok = (rr >= blo) & (rr < bhi) & (cc >= 0) & (cc < wd)
-                self._dropped += int((~ok & (wa * wb > 0)).sum())
-                ww = (wv * wa * wb)[ok]
-                idx = (rr[ok] - lo_r) * wd + cc[ok]
-                loc_acc += np.bincount(idx, weights=ww * v[ok], minlength=span * wd)
-                loc_w += np.bincount(idx, weights=ww, minlength=span * wd)
-        ring = np.arange(lo_r, hi_r) % h
-        self._acc[ring] += loc_acc.reshape(span, wd)
-        self._wacc[ring] += loc_w.reshape(span, wd)
+        self._dropped += _ring_splat(vals, pos, wts, float(self._pitch_px[0]),
+                                     float(self._pitch_px[1]), int(self._col0), int(blo),
+                                     int(bhi), self._acc, self._wacc)
 
     def _extend_band(self, lo_r, hi_r, rows_out):
         """Grow the live band [lo, hi) towards rows not yet handed out, within the strip."""
@@ -1187,3 +1169,41 @@ def _replace_rows(est, k, est2, sel):
         arr[k] = getattr(est2, name)[sel]
         fields[name] = arr
     return _reg.PairEstimates(**fields)
+
+
+@numba.njit(**JIT)
+def _ring_splat(vals, pos, wts, p0, p1, col0, blo, bhi, acc, wacc):
+    """Bilinear splat of every observation with weight ``wts[t, r, c]`` > 0 into the ring
+    accumulators (row ``i`` of the grid at ring row ``i % H``, column ``j`` at ``j - col0``),
+    in place; corners outside the live band [blo, bhi) or the columns are dropped. Returns
+    how many corners with positive weight were dropped."""
+    t_n, r_n, c_n = vals.shape
+    h, wd = acc.shape
+    dropped = 0
+    for t in range(t_n):
+        for r in range(r_n):
+            q0 = (pos[t, 0] + r) / p0
+            i0 = int(np.floor(q0))
+            a0 = q0 - i0
+            for c in range(c_n):
+                wv = wts[t, r, c]
+                if not wv > 0.0:
+                    continue
+                v = vals[t, r, c]
+                q1 = (pos[t, 1] + c) / p1
+                i1 = int(np.floor(q1))
+                a1 = q1 - i1
+                for di in range(2):
+                    wa = a0 if di == 1 else 1.0 - a0
+                    rr = i0 + di
+                    for dj in range(2):
+                        wb = a1 if dj == 1 else 1.0 - a1
+                        cc = i1 + dj - col0
+                        ww = wv * wa * wb
+                        if blo <= rr < bhi and 0 <= cc < wd:
+                            k = rr % h
+                            acc[k, cc] += ww * v
+                            wacc[k, cc] += ww
+                        elif wa * wb > 0.0:
+                            dropped += 1
+    return dropped

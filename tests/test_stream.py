@@ -318,3 +318,35 @@ def test_small_batches_place_as_large_ones(tex, batch_frames):
     _, _, small = _stream(frames, batch_frames=batch_frames)
     np.testing.assert_allclose(small.positions, ref.positions, atol=1e-6)
     assert np.abs(small.positions - pos).max() < 0.05
+
+
+def test_ring_splat_equals_bilinear_splat_in_numpy():
+    # The compiled splat into the ring accumulators against the same bilinear weights
+    # accumulated by numpy.add.at (common practice: bilinear splatting), corners outside the
+    # live band or the columns dropped and counted; the ring wraps rows modulo its height.
+    from stripstitch.stream import _ring_splat
+    rng = np.random.default_rng(4)
+    t_n, r_n, c_n = 5, 4, 12
+    vals = rng.normal(size=(t_n, r_n, c_n))
+    wts = rng.uniform(0.0, 1.0, size=(t_n, r_n, c_n)) * (rng.random((t_n, r_n, c_n)) > 0.2)
+    pos = np.cumsum(rng.uniform(0.3, 1.7, size=(t_n, 2)), axis=0) - [0.0, 2.5]
+    p0, p1, col0, blo, bhi, h, wd = 1.0, 1.02, -2, 1, 9, 6, 14
+    acc, wacc = np.zeros((h, wd)), np.zeros((h, wd))
+    dropped = _ring_splat(vals, pos, wts, p0, p1, col0, blo, bhi, acc, wacc)
+    ref, wref, n_drop = np.zeros((h, wd)), np.zeros((h, wd)), 0
+    q0 = (pos[:, 0, None, None] + np.arange(r_n)[None, :, None]) / p0 + 0 * vals
+    q1 = (pos[:, 1, None, None] + np.arange(c_n)[None, None, :]) / p1 + 0 * vals
+    keep = wts > 0
+    i0, i1 = np.floor(q0[keep]).astype(int), np.floor(q1[keep]).astype(int)
+    a0, a1 = q0[keep] - i0, q1[keep] - i1
+    for di, wa in ((0, 1 - a0), (1, a0)):
+        for dj, wb in ((0, 1 - a1), (1, a1)):
+            rr, cc = i0 + di, i1 + dj - col0
+            ok = (rr >= blo) & (rr < bhi) & (cc >= 0) & (cc < wd)
+            n_drop += int((~ok & (wa * wb > 0)).sum())
+            ww = (wts[keep] * wa * wb)[ok]
+            np.add.at(ref, (rr[ok] % h, cc[ok]), ww * vals[keep][ok])
+            np.add.at(wref, (rr[ok] % h, cc[ok]), ww)
+    assert dropped == n_drop > 0
+    np.testing.assert_allclose(acc, ref, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(wacc, wref, rtol=1e-12, atol=1e-12)
