@@ -148,13 +148,31 @@ class _Workspace:
 
     def __init__(self):
         self._bufs = {}
+        self._clean = set()          # buffers known to be all zero
 
     def get(self, name, shape, dtype=np.float64):
         n = int(np.prod(shape))
         buf = self._bufs.get(name)
         if buf is None or buf.size < n or buf.dtype != dtype:
             buf = self._bufs[name] = np.empty(max(n, 1), dtype=dtype)
+        self._clean.discard(name)
         return buf[:n].reshape(shape)
+
+    def get_zeroed(self, name, shape, dtype=np.float64):
+        """As :meth:`get`, all zero: cleared only if its last user did not leave it so
+        (see :meth:`mark_clean`)."""
+        n = int(np.prod(shape))
+        buf = self._bufs.get(name)
+        if buf is None or buf.size < n or buf.dtype != dtype:
+            buf = self._bufs[name] = np.zeros(max(n, 1), dtype=dtype)
+        elif name not in self._clean:
+            buf[:] = 0                   # all of it: mark_clean vouches for the whole buffer
+        self._clean.discard(name)
+        return buf[:n].reshape(shape)
+
+    def mark_clean(self, name):
+        """The whole buffer ``name`` is zero again (its user cleared what it wrote)."""
+        self._clean.add(name)
 
 
 def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work, sharp=0.0):
@@ -180,11 +198,22 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     # both compiled passes then run over contiguous rows of one moment at a time, which the
     # compiler vectorises (the node-major layout it replaced took twice as long).
     pad = gx0.size // 2
-    acc = work.get("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
-    acc[...] = 0.0
+    # (the smoothing below clears each row of sums once it has read it, so the buffer is
+    # zero again for the next window or pass without a sweep of its own: 1.7 ms a pass on
+    # an 8x192 swipe)
+    acc = work.get_zeroed("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
     cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
     _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
                    np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc, pad)
+    # Nodes with too little weight (see below) take a wide local mean of the sums (it only
+    # fills holes and borders): single precision (OpenCV's separable filter, zero outside
+    # like ndimage mode "constant", truncated at 3 sigma), the moment's plane as a strided
+    # view (OpenCV takes a row step, no copy needed).
+    import cv2
+    wide = 2.0 * sig + 0.5
+    ky, kx = (_gauss_kernel(s_, int(3.0 * s_ + 0.5)).astype(np.float32) for s_ in wide)
+    s3, w3 = (cv2.sepFilter2D(acc[:, m, pad:pad + shape[1]], cv2.CV_32F, kx, ky,
+                              borderType=cv2.BORDER_CONSTANT) for m in (6, 0))
     # Moments about each output node: the offset from splat node to output node is added in,
     # (dy + oy)^a (dx + ox)^b expanded; one compiled pass across, one along, and the local
     # linear fit where the samples around a node determine both slopes, local mean elsewhere
@@ -198,22 +227,14 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     _smooth_moments(acc, pad, *f32(gx0, gx1, gx2, gy0, gy1, gy2), model, s00, var0,
                     np.empty((9, 0, 0), dtype=np.float32),
                     work.get("ring", (gy0.size, 9, shape[1]), np.float32),
-                    work.get("ring_out", (9, shape[1]), np.float32))
+                    work.get("ring_out", (9, shape[1]), np.float32), True)
+    work.mark_clean("acc")
     # "Enough weight": 5 % of the 90th percentile of the positive weights, the percentile
     # taken on an even subsample of at most ~10^5 nodes (a statistic of the whole window).
     k = max(1, int(np.ceil(np.sqrt(s00.size / 1e5))))
     sub = s00[::k, ::k]
     pos_w = sub[sub > 0]
     thr = max(0.05 * float(np.percentile(pos_w, 90)), 1e-9) if pos_w.size else 1e-9
-    # Nodes under it take a wide local mean (it only fills holes and borders): single
-    # precision (OpenCV's separable filter, zero outside like ndimage mode "constant",
-    # truncated at 3 sigma).
-    import cv2
-    wide = 2.0 * sig + 0.5
-    ky, kx = (_gauss_kernel(s_, int(3.0 * s_ + 0.5)).astype(np.float32) for s_ in wide)
-    # (the moment's plane as a strided view: OpenCV takes a row step, no copy needed)
-    s3, w3 = (cv2.sepFilter2D(acc[:, m, pad:pad + shape[1]], cv2.CV_32F, kx, ky,
-                              borderType=cv2.BORDER_CONSTANT) for m in (6, 0))
     _fill_holes(model, s00, s3, w3, thr)
     if sharp > 0:
         _deblur_along(model, s00, var0, thr, sharp * 0.5 / (h[0] * h[0]),
@@ -294,7 +315,8 @@ def _plane_value(s00, s10, s01, s20, s02, s11, t0, t1y, t1x):
 
 
 @numba.njit(**JIT)
-def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, out, p, buf):
+def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, out, p, buf,
+                    clear=False):
     """Separable Gaussian moments of the splatted sums (zero outside the grid) and the local
     plane fit they define, row by row.
 
@@ -310,7 +332,8 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
     ``2 ry + 1`` rows only (a ring that stays in cache, no swipe-sized temporary). Every
     inner loop runs over the columns of one moment (contiguous, vectorised). ``p`` (the ring,
     (2 ry + 1, 9, W)) and ``buf`` (9, W) are scratch (passed in: measured faster than
-    allocating them here).
+    allocating them here). With ``clear`` each row of ``acc`` is zeroed once read (the
+    caller reuses it for the next window).
     """
     hh = acc.shape[0]
     ww = acc.shape[2] - 2 * pad
@@ -348,6 +371,12 @@ def _smooth_moments(acc, pad, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, var0, ou
                     p[s, 5, c] += k1 * acc[i, 1, c + o2]
                 for c in range(ww):       # xb1x + x1_b0
                     p[s, 8, c] += k1 * acc[i, 6, c + o2]
+            if clear:
+                # row i is never read again: leave the accumulator zero for its next use
+                for k in range(9):
+                    ak = acc[i, k]
+                    for c in range(ak.shape[0]):
+                        ak[c] = 0.0
         o = i - ry
         if o < 0:
             continue

@@ -384,6 +384,15 @@ def test_compiled_smoothing_matches_scipy_correlate1d(dtype, rtol, atol, plane_r
     well = det > 1e-3 * s00_ * s20 * s02
     assert well.mean() > 0.5
     np.testing.assert_allclose(model[well], plane[well], rtol=plane_rtol, atol=1e-9)
+    # clear=True (the accumulator reused by the next window): same outputs, sums left zero
+    cleared = padded.copy()
+    out2, model2, s002 = np.empty_like(out), np.empty_like(model), np.empty_like(s00)
+    _smooth_moments(cleared, pad, *kernels, model2, s002, np.empty((0, 0)), out2,
+                    np.empty((gy0.size, 9, 23), dtype=dtype), np.empty((9, 23), dtype=dtype),
+                    True)
+    np.testing.assert_array_equal(out2, out)
+    np.testing.assert_array_equal(model2, model)
+    assert not cleared.any()
     # fewer zero columns than the across radius would read outside the array: refused
     with pytest.raises(ValueError, match="pad"):
         _smooth_moments(padded, 1, gx0, gx1, gx2, gy0, gy1, gy2, model, s00, np.empty((0, 0)),
@@ -527,3 +536,25 @@ def test_batched_inverse_matches_numpy():
     got = _inv_batch(sing)
     assert np.isnan(got[0]).all()
     np.testing.assert_allclose(got[1], np.diag([0.5, 0.25, 2.0]))
+
+
+def test_workspace_zeroed_buffer_reused_across_shapes():
+    # The refinement's scratch accumulator is handed out zeroed; a user that clears what it
+    # wrote marks it clean and the next request (any shape that fits) skips the sweep.
+    from stripstitch.refine import _Workspace
+    work = _Workspace()
+    a = work.get_zeroed("acc", (4, 3, 5), np.float32)
+    assert a.shape == (4, 3, 5) and not a.any()
+    a[...] = 7.0                                  # written and not cleared: dirty
+    b = work.get_zeroed("acc", (2, 3, 4), np.float32)
+    assert not b.any()
+    b[...] = 1.0
+    b[...] = 0.0                                  # cleared by its user ...
+    work.mark_clean("acc")                        # ... who says so
+    base = work._bufs["acc"]
+    base[50:] = 3.0                               # (beyond the views' reach: must stay)
+    c = work.get_zeroed("acc", (2, 5, 5), np.float32)
+    assert c.base is base or c.base is base.base  # reused, not reallocated
+    assert not c.any()
+    d = work.get_zeroed("acc", (10, 9, 9), np.float32)   # larger: a fresh zeroed buffer
+    assert not d.any()
