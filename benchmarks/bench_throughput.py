@@ -9,7 +9,8 @@ phase-correlation chains (pairwise shifts + stripstitch.mosaic.fuse), the simula
 (finger made beforehand; finger generation timed separately) and stripstitch.evaluate.evaluate.
 Reports frames/s, the real-time factor (frames/s over the sensor's frame rate; >= 1 keeps up),
 ratios to the chains, and the peak traced allocation per stage (tracemalloc, separate run) plus
-the process's maximum resident set size (resource.getrusage). Best of --repeat runs. The process is
+the process's maximum resident set size (resource.getrusage). Best of --repeat rounds, each
+timing every stage once (a drift of the machine's speed reaches all stages alike). The process is
 pinned to --cores CPUs (default 1, the issue's "on one core"; OpenCV's thread pool sized to
 match), so every stage and both chains run under the same limit. Writes
 benchmarks/results/throughput.json/.md.
@@ -23,6 +24,7 @@ import resource
 import time
 
 import cv2
+import numpy as np
 
 from _common import best_time, environment, peak_memory_mb, table, write
 
@@ -63,10 +65,16 @@ def main(argv=None):
         }
         res_default = reconstruct(cap, "default")
         stages["evaluate"] = lambda: ev.evaluate(res_default, cap)
-        times = {}
-        for stage, fn in stages.items():
-            secs, _ = best_time(fn, repeat=repeat)
-            times[stage] = secs
+        # Round robin: every round times each stage once, so a drift of the machine's speed
+        # (this shared machine's drifts by up to two times within minutes, CPU time alike:
+        # not the host taking turns away) reaches all stages alike and the ratios between
+        # them hold; best of the rounds per stage.
+        times = {stage: np.inf for stage in stages}
+        for _ in range(repeat):
+            for stage, fn in stages.items():
+                secs, _ = best_time(fn, repeat=1)
+                times[stage] = min(times[stage], secs)
+        for stage, secs in times.items():
             print(f"{name:16s} {stage:18s} {secs:8.3f} s  {n / secs:10.0f} frames/s", flush=True)
         for stage, fn in stages.items():
             mem = peak_memory_mb(fn)
@@ -83,7 +91,9 @@ def main(argv=None):
     t = table(rows, cols, heads)
     title = "# Throughput" + (" (quick)" if args.quick else "")
     md = (f"{title}\n\nOne process pinned to {len(cpus)} CPU(s) of a shared "
-          f"{os.cpu_count()}-core machine, best of {repeat}; chain times include fusing the "
+          f"{os.cpu_count()}-core machine, best of {repeat} rounds (each round times every stage "
+          "once, so drifts of the machine's speed reach all stages alike); chain times include "
+          "fusing the "
           "image with stripstitch.mosaic.fuse. "
           f"Finger generation ({FINGER_MM[0]:g} x {FINGER_MM[1]:g} mm at 12.7 um): {t_finger:.2f} s "
           f"(not included in 'simulate capture'). 'speed vs ... chain' = chain time / stage time "
