@@ -7,6 +7,7 @@ Run from a clean checkout:  python benchmarks/bench_stream.py  [--frames N] [--q
 Latency: wall time of each ``push`` (time.perf_counter), median, p99 and max; most pushes only
 copy the frame into the ring, every ``batch_frames``-th one estimates the batch (that one
 sets the p99). Real-time factor = frames/s / frame rate (>= 1 keeps up) at 1, 4 and 8 kHz.
+Both modes are warmed up first (300 frames each: the compiled kernels load once a process).
 Frames: a band-limited ridge-like texture cycled at 1.37 px/frame (cheap to generate), then
 one simulated swipe (stripstitch.simulate.swipe, 8 x 192 at 4 kHz) for the agreement figures.
 Writes benchmarks/results/bench_stream.json/.md.
@@ -141,6 +142,10 @@ def main(argv=None):
     args = ap.parse_args(argv)
     t_n = 1000 if args.quick else args.frames
     frames = texture_frames(t_n)
+    # Warm-up: the first stitcher of a process loads the compiled kernels (0.3-1 s, which
+    # landed in the first mode's max latency and frames/s); a capture driver pays it once.
+    for mode in ("default", "fast"):
+        latency(frames[:300], mode=mode)
     rows = [latency(frames, mode="default"), latency(frames, mode="fast"),
             latency(frames, mode="fast", batch_frames=32)]
     cols = ["mode", "batch", "median_us", "p99_us", "max_ms", "fps", "rtf_1k", "rtf_4k",
