@@ -271,6 +271,18 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
         out[r, y4] = 2.0 * hi1 - out[r, y2]
 
 
+@numba.njit(cache=True, inline="always")
+def _rows4(up, ra, s0, n, w0, w1, w2, w3, out):
+    """out[q] = the four rows ra .. ra + 3 of ``up`` weighted by w0 .. w3 at storage column
+    s0 + q, q < n (contiguous views indexed from 0: no negative-index branch, vectorised)."""
+    u0 = up[ra, s0:s0 + n]
+    u1 = up[ra + 1, s0:s0 + n]
+    u2 = up[ra + 2, s0:s0 + n]
+    u3 = up[ra + 3, s0:s0 + n]
+    for q in range(n):
+        out[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
+
+
 @numba.njit(**JIT)
 def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, full, pre):
     """Shift (d0, d1) with b(u) ~ a(u + d) + offset, from the start (d0, d1).
@@ -328,20 +340,8 @@ def _gauss_newton(up_a, ma, b, g0, g1, mb, d0, d1, iters, lam, res, scratch, ful
         sb = _slot(c0 + 1, ne)
         for r in range(r_lo, r_hi + 1):
             ra = 2 * r + k0 + 1              # extended row of tap -1: (2r + k0 - 1) + 2
-            # Contiguous views of the four rows: indexed from 0, the loops below have no
-            # negative-index branch and are vectorised.
-            u0 = up_a[ra, sa:sa + n_p]
-            u1 = up_a[ra + 1, sa:sa + n_p]
-            u2 = up_a[ra + 2, sa:sa + n_p]
-            u3 = up_a[ra + 3, sa:sa + n_p]
-            for q in range(n_p):
-                ta[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
-            u0 = up_a[ra, sb:sb + n_p]
-            u1 = up_a[ra + 1, sb:sb + n_p]
-            u2 = up_a[ra + 2, sb:sb + n_p]
-            u3 = up_a[ra + 3, sb:sb + n_p]
-            for q in range(n_p):
-                tb[q] = w0 * u0[q] + w1 * u1[q] + w2 * u2[q] + w3 * u3[q]
+            _rows4(up_a, ra, sa, n_p, w0, w1, w2, w3, ta)
+            _rows4(up_a, ra, sb, n_p, w0, w1, w2, w3, tb)
             # The row's overlap as views indexed from 0 (no negative-index check: vectorised).
             n_q = c_hi + 1 - c_lo
             ta1 = ta[1:n_q + 1]
