@@ -97,7 +97,8 @@ def main(argv=None):
     title = "# Throughput" + (" (quick)" if args.quick else "")
     md = (f"{title}\n\nOne process pinned to {len(cpus)} CPU(s) of a shared "
           f"{os.cpu_count()}-core machine, best of {repeat} rounds (each round times every stage "
-          "once, so drifts of the machine's speed reach all stages alike); chain times include "
+          "once, after an untimed call of it, so drifts of the machine's speed reach all stages "
+          "alike); chain times include "
           "fusing the "
           "image with stripstitch.mosaic.fuse. "
           f"Finger generation ({FINGER_MM[0]:g} x {FINGER_MM[1]:g} mm at 12.7 um): {t_finger:.2f} s "
