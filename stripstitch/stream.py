@@ -43,13 +43,13 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 from scipy import ndimage
-from scipy.special import erf
 
 from . import register as _reg
 from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
-from .pipeline import _TRACK_MIN_ROWS, _min_eig2, _with_model_error
+from .pipeline import _TRACK_MIN_ROWS, _with_model_error
+from .pipeline import _confidence as _frame_confidence
 from ._jit import JIT
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
 from ._validate import check_choice, check_frame, check_int, check_positive
@@ -905,11 +905,9 @@ class StreamingStitcher:
         self._okfrac[sl] = np.where(total > 0, kept / np.maximum(total, 1), 0.0)[start - lo:]
 
     def _confidence(self, sl, contact):
-        fi = self._frame_info[sl]
-        lam = np.maximum(_min_eig2(0.5 * (fi + np.transpose(fi, (0, 2, 1)))), 0.0)
-        sigma = 1.0 / np.sqrt(np.maximum(lam, 1e-12))
-        conf = erf(0.25 / (np.sqrt(2.0) * sigma)) * np.clip(self._okfrac[sl], 0, 1)
-        return np.clip(np.where(contact, conf, 0.0), 0.0, 1.0)
+        # the batch path's rule (pipeline._confidence)
+        return _frame_confidence(self._frame_info[sl], np.asarray(contact, dtype=bool),
+                                 np.clip(self._okfrac[sl], 0, 1))
 
     def _freeze(self, upto, events, rows):
         a = self._n_frozen
