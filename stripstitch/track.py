@@ -228,26 +228,23 @@ def _upsample_extend(a, lor, wr, loc, wc, out):
         for j in range(max(jb, ja), c_n - 1):
             od[j] = _taps(wc, loc, row, j, kc)
     # Keys' boundary extension, two samples per side: rows (over the columns of x = 2 .. 2C:
-    # storage columns 1 .. C and C + 3 .. 2C + 1, as whole rows), then columns (all rows)
+    # storage columns 1 .. C and C + 3 .. 2C + 1, as whole rows), then columns (all rows).
+    # (At least 2 rows, so at least 3 grid rows: the three-point formula always applies.)
     for s0, s1 in ((1, c_n + 1), (ne + 1, ne + c_n)):
         m_s = s1 - s0
         o0 = out[0, s0:s1]
         o1 = out[1, s0:s1]
         i2 = out[2, s0:s1]
         i3 = out[3, s0:s1]
-        i4 = out[4, s0:s1] if nr >= 3 else i3
+        i4 = out[4, s0:s1]
         h2 = out[nr + 2, s0:s1]
         h3 = out[nr + 3, s0:s1]
         j1 = out[nr + 1, s0:s1]
         j0 = out[nr, s0:s1]
-        jm = out[nr - 1, s0:s1] if nr >= 3 else j0
+        jm = out[nr - 1, s0:s1]
         for c in range(m_s):
-            if nr >= 3:
-                lo1 = 3.0 * i2[c] - 3.0 * i3[c] + i4[c]
-                hi1 = 3.0 * j1[c] - 3.0 * j0[c] + jm[c]
-            else:
-                lo1 = 2.0 * i2[c] - j1[c]
-                hi1 = 2.0 * j1[c] - i2[c]
+            lo1 = 3.0 * i2[c] - 3.0 * i3[c] + i4[c]
+            hi1 = 3.0 * j1[c] - 3.0 * j0[c] + jm[c]
             o1[c] = lo1
             o0[c] = 2.0 * lo1 - i2[c]
             h2[c] = hi1
