@@ -23,9 +23,10 @@ Per batch of ``batch_frames`` new frames, on strips of 8 rows or more: the key-f
 the batch path (:class:`stripstitch.track.FrameTracker`, its filter and two key frames carried
 from batch to batch) places every frame from the finger's arrival on; its placement is final
 at once (the filter is causal), so the frames are fused right away. The first frames wait
-(at most half a window) until their texture shows whether a finger is there yet. Unlike the
-batch path it tracks from the fingertip forwards (the batch path starts in the middle of the
-swipe) and it does not push frames out across a gap. ``python benchmarks/bench_stream.py``:
+(at most half a window) until their texture shows whether a finger is there yet; the
+fingertip's arrival (the next half window) waits too and is tracked backwards from its
+best-seen frame, as the batch path meets the ends of the swipe, and the frame tracker carries
+on forwards from there. Unlike the batch path it does not push frames out across a gap. ``python benchmarks/bench_stream.py``:
 5 300 frames/s in default mode and 7 400 in fast mode on one core of an earlier machine (1.3
 and 1.9 times real time at 4 kHz; the pairwise window path before it ran at 0.36; 2 000 and
 2 200 on a 2.0 GHz Xeon); on its simulated 8 x 192 swipe span
@@ -278,11 +279,13 @@ class StreamingStitcher:
         self._tracker = None
         self._tr_pos = np.zeros(2)        # position of the last placed frame
         self._tr_fr = None                # frame rate used for the tracker's times
-        self._tr_prev_contact = False
         self._tr_prev_strong = False
         self._tr_armed = False
         self._tr_tex_min = np.inf         # quietest frame so far (noise and fixed pattern)
         self._tr_next = 0                 # first frame not yet placed
+        self._tr_lead_done = False        # the arrival placed (tracked backwards)
+        self._tr_off = np.zeros(2)        # the frame tracker's origin in the swipe's frame
+        self._lead_in = w // 2            # frames of the arrival tracked backwards
         # Counters.
         self._n = 0                # frames pushed
         self._n_est = 0            # frames whose pairs are estimated
@@ -391,7 +394,8 @@ class StreamingStitcher:
             raise ReconstructionError("no frames were pushed")
         events, rows = [], []
         if not self._finished:
-            if self._n > self._n_est:
+            # (on the tracker path frames may wait prepared but unplaced: the arrival)
+            if self._n > self._n_est or (self._use_tracker and self._tr_next < self._n):
                 self._process(events, rows, final=True)
             else:
                 self._freeze(self._n, events, rows)
@@ -677,8 +681,9 @@ class StreamingStitcher:
         """New frames placed by the key-frame tracker (final at once: the filter is causal),
         then frozen and fused. Frames wait (unfrozen, in the ring) only until it is clear
         whether the finger has arrived."""
-        self._prepare_batch(self._n_est, self._n)
-        self._n_est = self._n
+        if self._n > self._n_est:
+            self._prepare_batch(self._n_est, self._n)
+            self._n_est = self._n
         a, b = self._tr_next, self._n
         sl = self._slots(a, b)
         if self._scale is None and not final:
@@ -701,11 +706,32 @@ class StreamingStitcher:
             elif not (final or b - a >= self.window // 2):
                 return                                  # wait
             self._tr_armed = True
-        # From the finger's arrival every frame is tracked, the faint ones too (the finger
-        # leaving): where nothing matches the motion carries them, which places them better
-        # than holding; their fusion weight follows the contact test as before.
-        track_these = np.arange(b - a) >= start
-        self._place_tracked(a, b, track_these)
+            if start:
+                # finger-absent frames: placed where the swipe will start, nothing to fuse
+                self._place_tracked(a, a + start, tracked=False)
+                self._tr_next = a = a + start
+                self._freeze(a, events, rows)
+        if not self._tr_lead_done:
+            # The fingertip's arrival is held back (in the ring, rows waiting too) and tracked
+            # backwards from its best-seen frame, as the batch path meets the ends: from the
+            # first faint frames forwards, the filter's velocity is not yet settled where the
+            # partial contact gives little across the ridges, and the placement slides (the
+            # suite's steady 8x192 swipe: 2 px across while contact rose from 0.3 to 0.7).
+            # Half a window of frames is held (a batch is at most half a window, so the ring
+            # never overflows).
+            if b - a < self._lead_in and not final:
+                return
+            held = min(b - a, self._lead_in)
+            if held:
+                self._place_lead_in(a, a + held)
+                self._tr_lead_done = True
+            if a + held < b:
+                self._place_tracked(a + held, b)
+        else:
+            # From the finger's arrival every frame is tracked, the faint ones too (the finger
+            # leaving): where nothing matches the motion carries them, which places them
+            # better than holding; their fusion weight follows the contact test as before.
+            self._place_tracked(a, b)
         self._tr_next = b
         self._freeze(b, events, rows)
         self._emit(rows, everything=final)
@@ -717,70 +743,103 @@ class StreamingStitcher:
         floor2 = self._tr_tex_min ** 2
         return tex ** 2 - floor2 >= 0.25 * max(self._tex_hi ** 2 - floor2, 0.0)
 
-    def _place_tracked(self, a, b, contact):
-        """Positions, links and confidence inputs of frames a..b-1 (their ring slots)."""
-        sl = self._slots(a, b)
-        r_n = self._shape[0]
-        if self._tracker is None and contact.any():
-            self._tracker = _track.FrameTracker(self._plate_ok, max_across_px=self.max_across_px,
-                                                sigma_acc_px=self.motion_prior_px)
-        pos = np.repeat(self._tr_pos[None], b - a, axis=0)
-        link = np.ones(b - a, dtype=bool)
-        info = np.zeros((b - a, 2, 2))
-        okf = np.zeros(b - a)
-        idx = np.flatnonzero(contact)
-        if idx.size:
-            tt = self._time[sl][idx]
-            if self._uses_times:
-                if self._tr_fr is None and self.frame_rate_hz:
-                    self._tr_fr = self.frame_rate_hz
-                if self._tr_fr is None:
-                    # from the frames still in the ring (a batch may hold a single frame)
-                    d = np.diff(self._time[self._slots(max(0, b - self.window), b)])
-                    d = d[d > 0]
-                    if d.size:
-                        self._tr_fr = float(1.0 / np.median(d))
-                tt = tt * (self._tr_fr if self._tr_fr else 1.0)
-            first = self._tracker.n_frames == 0
-            # The frames as prepared now: those that waited for the plate and finger decisions
-            # were prepared with a provisional level and scale.
-            scale = self._scale if self._scale is not None else 1.0
-            zt = ((self._raw[sl][idx] - self._offset) / scale).astype(np.float32)
-            zt[:, ~self._plate_ok] = 0.0
-            out = self._tracker.push(zt, times=tt)
-            p = out["positions"]
-            ok = out["link_ok"].copy()
-            if first:
-                ok[0] = True                      # the first frame in contact has no link
-            # A link with no overlap is a gap only between two frames of clear texture (faint
-            # frames at the fingertip and as the finger leaves fail to match without any gap).
-            # The motion carries the frames across it; unlike the batch path, nothing is pushed
-            # out by the strip's height: without the frames after it, a failed link at the
-            # finger's exit cannot be told from a too-fast swipe.
-            strong = self._clear_texture(self._tex[sl][idx])
-            prev_strong = np.concatenate([[self._tr_prev_strong], strong[:-1]])
-            ok |= ~(strong & prev_strong)
-            # The previous frame out of contact: no link to judge.
-            prev_contact = np.concatenate([[self._tr_prev_contact], contact[:-1]])
-            link[idx] = ok | ~prev_contact[idx]
-            info[idx] = _with_model_error(out["info"], out["displacement"])
-            okf[idx] = out["reference"] >= 0
-            # frames out of contact hold the last placed position
-            last = self._tr_pos.copy()
-            j = 0
-            for k in range(b - a):
-                if contact[k]:
-                    last = p[j]
-                    j += 1
-                pos[k] = last
-            self._tr_pos = last.copy()
-            self._tr_prev_strong = bool(strong[-1])
-        if b > a:
-            self._tr_prev_contact = bool(contact[-1])
+    def _tracker_input(self, sl, first):
+        """Frames of ring slots ``sl`` as the tracker takes them (prepared now: those that
+        waited for the plate and finger decisions were prepared with a provisional level and
+        scale) and their times in frame periods."""
+        tt = self._time[sl]
+        if self._uses_times:
+            if self._tr_fr is None and self.frame_rate_hz:
+                self._tr_fr = self.frame_rate_hz
+            if self._tr_fr is None:
+                # from the frames still in the ring (a batch may hold a single frame)
+                end = first + len(sl)
+                d = np.diff(self._time[self._slots(max(0, end - self.window), end)])
+                d = d[d > 0]
+                if d.size:
+                    self._tr_fr = float(1.0 / np.median(d))
+            tt = tt * (self._tr_fr if self._tr_fr else 1.0)
+        scale = self._scale if self._scale is not None else 1.0
+        zt = ((self._raw[sl] - self._offset) / scale).astype(np.float32)
+        zt[:, ~self._plate_ok] = 0.0
+        return zt, tt
+
+    def _new_tracker(self):
+        self._tracker = _track.FrameTracker(self._plate_ok, max_across_px=self.max_across_px,
+                                            sigma_acc_px=self.motion_prior_px)
+
+    def _store_tracked(self, sl, pos, ok, info, okf):
+        """Placement of tracked frames into their slots, with the gap rule: a link with no
+        overlap is a gap only between two frames of clear texture (faint frames at the
+        fingertip and as the finger leaves fail to match without any gap). The motion
+        carries the frames across it; unlike the batch path, nothing is pushed out by the
+        strip's height: without the frames after it, a failed link at the finger's exit
+        cannot be told from a too-fast swipe."""
+        strong = self._clear_texture(self._tex[sl])
+        prev_strong = np.concatenate([[self._tr_prev_strong], strong[:-1]])
         self._pos[sl] = pos
-        self._link_ok[sl] = link
+        self._link_ok[sl] = ok | ~(strong & prev_strong)
         self._frame_info[sl] = info
         self._okfrac[sl] = okf
+        self._tr_pos = pos[-1].copy()
+        self._tr_prev_strong = bool(strong[-1])
+
+    def _place_lead_in(self, a, b):
+        """Frames a..b-1, from the finger's arrival: backwards from the frame of strongest
+        texture among them (:func:`stripstitch.track.track` started at its last frame), and
+        from that frame on by the frame tracker that carries on with the swipe."""
+        sl = self._slots(a, b)
+        zt, tt = self._tracker_input(sl, a)
+        n = b - a
+        s = int(np.argmax(self._texture(self._raw[sl])))
+        pos = np.zeros((n, 2))
+        ok = np.ones(n, dtype=bool)              # the arrival frame has no link to judge
+        info = np.zeros((n, 2, 2))
+        okf = np.zeros(n)
+        if s > 0:
+            back = _track.track(zt[:s + 1], self._plate_ok, times=tt[:s + 1], start=s,
+                                max_across_px=self.max_across_px,
+                                sigma_acc_px=self.motion_prior_px)
+            pos[:s + 1] = back.positions
+            ok[1:s + 1] = back.link_ok
+            ref = back.reference
+            disp = back.positions - back.positions[np.maximum(ref, 0)]
+            info[:s + 1] = _with_model_error(back.info, disp)
+            okf[:s + 1] = ref >= 0
+        base = self._tr_pos.copy()               # the arrival where the swipe starts
+        self._new_tracker()
+        out = self._tracker.push(zt[s:], times=tt[s:])
+        pos += base
+        self._tr_off = pos[s].copy()
+        pos[s:] = out["positions"] + self._tr_off
+        ok[s + 1:] = out["link_ok"][1:]
+        info[s + 1:] = _with_model_error(out["info"][1:], out["displacement"][1:])
+        okf[s + 1:] = out["reference"][1:] >= 0
+        # the frame both started from was registered by neither: its neighbour's
+        nb = s - 1 if s > 0 else s + 1
+        if nb < n:
+            info[s] = info[nb]
+            okf[s] = okf[nb]
+        self._store_tracked(sl, pos, ok, info, okf)
+
+    def _place_tracked(self, a, b, tracked=True):
+        """Positions, links and confidence inputs of frames a..b-1 (their ring slots), placed
+        by the frame tracker; not ``tracked`` (finger-absent), they hold the last placed
+        position (weight 0 in the image)."""
+        sl = self._slots(a, b)
+        if not tracked:
+            self._pos[sl] = self._tr_pos
+            self._link_ok[sl] = True
+            self._frame_info[sl] = 0.0
+            self._okfrac[sl] = 0.0
+            return
+        if self._tracker is None:
+            self._new_tracker()
+        zt, tt = self._tracker_input(sl, a)
+        out = self._tracker.push(zt, times=tt)
+        self._store_tracked(sl, out["positions"] + self._tr_off, out["link_ok"],
+                            _with_model_error(out["info"], out["displacement"]),
+                            (out["reference"] >= 0).astype(np.float64))
 
     def _recent_steps(self, lo, a):
         if a - lo < 2:
