@@ -1,4 +1,4 @@
-"""Random swipes: settings drawn at random on the two target geometries, default and fast mode.
+"""Random swipes: settings drawn at random on the two target geometries, default, fast, stream.
 
 Run from a clean checkout:  python benchmarks/bench_random.py  [--quick] [--seed N]
 
@@ -8,8 +8,9 @@ accelerating-decelerating), 40 to 200 mm/s, 12 to 40 dB, a skew within 8 degrees
 up to 4 degrees in one swipe of three, a stall in about 30 % and a backtrack in about 30 %.
 Span, along, across and rotation errors against the simulator's truth, and every scored event
 (gap, stall, backtrack: stripstitch.evaluate) reported or missed, with reports where the truth
-has none. Writes benchmarks/results/random[_quick].json/.md. Synthetic prints; speeds are an
-unsourced modelling assumption (REFERENCE-VALUES.md section 7).
+has none; the streaming stitcher (fed frame by frame) beside the batch modes. Writes
+benchmarks/results/random[_quick].json/.md. Synthetic prints; speeds are an unsourced
+modelling assumption (REFERENCE-VALUES.md section 7).
 """
 
 from __future__ import annotations
@@ -23,9 +24,10 @@ from _common import environment, fmt, span_summary, table, write
 
 from stripstitch import evaluate as ev
 from stripstitch import simulate, stitch
+from stripstitch.sweep import reconstruct
 
 PATTERNS = ("arch", "tented_arch", "left_loop", "right_loop", "whorl", "twin_loop")
-MODES = ("default", "fast")
+MODES = ("default", "fast", "stream")
 
 
 def case(i, seed0):
@@ -53,8 +55,12 @@ def run(args):
             + (" stall" if "stalls" in p else "") + (" backtrack" if "backtracks" in p else ""))
     out = []
     for mode in MODES:
-        res = stitch(cap.frames, pitch_um=float(cap.pitch_um), frame_rate_hz=p["frame_rate_hz"],
-                     timestamps_s=np.asarray(cap.times_s, dtype=np.float64), mode=mode)
+        if mode == "stream":       # StreamingStitcher fed frame by frame, as the accuracy suite
+            res = reconstruct(cap, "stream")
+        else:
+            res = stitch(cap.frames, pitch_um=float(cap.pitch_um),
+                         frame_rate_hz=p["frame_rate_hz"],
+                         timestamps_s=np.asarray(cap.times_s, dtype=np.float64), mode=mode)
         d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
         row = {"case": desc, "mode": mode, "turn_deg": p["rotation_deg"]}
         for k in ("span_error_pct", "along_rms_px", "across_rms_px", "rotation_rms_deg",
@@ -103,7 +109,7 @@ def main(argv=None):
              "stalls found", "stalls", "backtracks found", "backtracks", "false stalls",
              "false backtracks", "false gaps"]
     md = (f"# Random swipes{' (quick)' if args.quick else ''}\n\n{n} swipes with random settings "
-          f"(seed {args.seed}; see case()), fast mode ignores rotation:\n\n" + "\n".join(lines)
+          f"(seed {args.seed}; see case()), fast mode and the streaming stitcher ignore rotation:\n\n" + "\n".join(lines)
           + "\n\n" + table(rows, cols, heads) + "\n")
     print(md)
     paths = write("random_quick" if args.quick else "random",
