@@ -425,6 +425,15 @@ class StreamingStitcher:
             raise ReconstructionError("no finger found: fewer than two frames show finger "
                                       f"texture (of {len(tex)} frames)")
         conf = np.where(contact, conf, 0.0)
+        # Before the first frame the tracker placed by a registration (and after the last)
+        # the frames were carried by the motion or held: a slowly arriving finger's faint
+        # frames, which pass the relative contact test where no finger-absent frames gave the
+        # fixed pattern, would read as a stall there (6 of 64 random swipes, all arriving
+        # slowly). As the batch path, such frames are not in contact.
+        placed = np.flatnonzero(conf > 0.05)
+        if placed.size >= 2:
+            contact[:placed[0]] = False
+            contact[placed[-1] + 1:] = False
         times = np.array(self._h_time)
         fr = self.frame_rate_hz
         if self._uses_times:
