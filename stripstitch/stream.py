@@ -585,7 +585,7 @@ class StreamingStitcher:
             g0, g1 = _reg._template_gradients(z)
             self._g0[sl] = g0
             self._g1[sl] = g1
-        if len(z) > 1:
+        if len(z) > 1 and not self._use_tracker:     # (the pairwise path's noise level)
             dz = np.diff(z, axis=0)[:, self._plate_ok]
             if dz.size:
                 self._noise_sigma = float(np.median(np.abs(dz)) * 1.4826 / np.sqrt(2.0))
