@@ -109,7 +109,8 @@ def main(argv=None):
              "stalls found", "stalls", "backtracks found", "backtracks", "false stalls",
              "false backtracks", "false gaps"]
     md = (f"# Random swipes{' (quick)' if args.quick else ''}\n\n{n} swipes with random settings "
-          f"(seed {args.seed}; see case()), fast mode and the streaming stitcher ignore rotation:\n\n" + "\n".join(lines)
+          f"(seed {args.seed}; see case()), fast mode and the streaming stitcher ignore "
+          f"rotation:\n\n" + "\n".join(lines)
           + "\n\n" + table(rows, cols, heads) + "\n")
     print(md)
     paths = write("random_quick" if args.quick else "random",

@@ -26,11 +26,11 @@ at once (the filter is causal), so the frames are fused right away. The first fr
 (at most half a window) until their texture shows whether a finger is there yet; the
 fingertip's arrival (the next half window) waits too and is tracked backwards from its
 best-seen frame, as the batch path meets the ends of the swipe, and the frame tracker carries
-on forwards from there. Unlike the batch path it does not push frames out across a gap. ``python benchmarks/bench_stream.py``:
-5 300 frames/s in default mode and 7 400 in fast mode on one core of an earlier machine (1.3
-and 1.9 times real time at 4 kHz; the pairwise window path before it ran at 0.36; 2 000 and
-2 200 on a 2.0 GHz Xeon); on its simulated 8 x 192 swipe span
-error +0.16 % (batch -0.04 %), image correlation with the batch image 0.95.
+on forwards from there. Unlike the batch path it does not push frames out across a gap.
+``python benchmarks/bench_stream.py``: 6 200 frames/s in default mode and 5 700-7 800 in fast
+mode on one core of a 2.0 GHz Xeon (1.4-1.9 times real time at 4 kHz; the pairwise window
+path before the tracker ran at 0.36); on its simulated 8 x 192 swipe span error +0.25 %
+(batch -0.04 %), image correlation with the batch image 0.96.
 On shorter strips: coarse NCC search and Gauss-Newton refinement of the successive pairs and
 of whole-pixel partners looking back within the window (the registration stage of the batch
 path), a robust least-squares solve of the window's positions with the frames that already
