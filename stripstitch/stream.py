@@ -425,11 +425,12 @@ class StreamingStitcher:
             raise ReconstructionError("no finger found: fewer than two frames show finger "
                                       f"texture (of {len(tex)} frames)")
         conf = np.where(contact, conf, 0.0)
-        # Before the first frame the tracker placed by a registration (and after the last)
-        # the frames were carried by the motion or held: a slowly arriving finger's faint
-        # frames, which pass the relative contact test where no finger-absent frames gave the
-        # fixed pattern, would read as a stall there (6 of 64 random swipes, all arriving
-        # slowly). As the batch path, such frames are not in contact.
+        # Before the first frame placed with any confidence (and after the last) the frames
+        # were carried by the motion or held: a slowly arriving finger's faint frames, which
+        # pass the relative contact test where no finger-absent frames gave the fixed
+        # pattern, would read as a stall there (6 of 64 random swipes, all arriving slowly).
+        # As in the batch path, such frames are not in contact (on either placement path;
+        # 0.05: the fusion's weight threshold).
         placed = np.flatnonzero(conf > 0.05)
         if placed.size >= 2:
             contact[:placed[0]] = False
@@ -800,6 +801,8 @@ class StreamingStitcher:
         sl = self._slots(a, b)
         zt, tt = self._tracker_input(sl, a)
         n = b - a
+        # (texture measured again: the first frames' was taken before any finger-absent
+        # frames gave the fixed pattern)
         s = int(np.argmax(self._texture(self._raw[sl])))
         pos = np.zeros((n, 2))
         ok = np.ones(n, dtype=bool)              # the arrival frame has no link to judge
