@@ -141,7 +141,7 @@ def test_integer_search_keeps_the_row_means(seed):
     waves = (f, rng.uniform(0, 2 * np.pi, n), np.where(np.arange(n) < 3, 1.0, 0.05))
     z = _frames(np.array([[0.0, 0.0], [1.2, 0.1]]), shape=(8, 64), waves=waves, noise=0.3,
                 seed=seed)
-    res = np.zeros(3)
+    res = np.zeros(5)
     _coarse(z[0], z[1], np.ones((8, 64), np.float32), 7, 8, 0.0, 0.0, False, res)
     assert res[0] == 1.0
     assert abs(res[1] - 0.1) < 1.5            # across is weak here: within the refinement's reach
@@ -156,7 +156,7 @@ def test_integer_search_finds_whole_pixel_shifts(d, e, seed):
     # mask: one dead plate must not move the shift it reads, nor its score by much.
     z = _frames(np.array([[0.0, 0.0], [float(d), float(e)]]), shape=(8, 64), seed=seed,
                 noise=0.05)
-    res_full, res_mask = np.zeros(3), np.zeros(3)
+    res_full, res_mask = np.zeros(5), np.zeros(5)
     m = np.ones((8, 64), np.float32)
     _coarse(z[0], z[1], m, 7, 8, 0.0, 0.0, False, res_full)
     m[3, 40] = 0.0
