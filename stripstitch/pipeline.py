@@ -161,7 +161,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         Both place the frames with the key-frame tracker (:mod:`stripstitch.track`, one
         compiled pass); ``"default"`` then refines every frame against a model of the finger
         (stretch, shear, turn, pixel locking), ``"fast"`` stops there (no rotation), for
-        drivers. Strips of fewer than 8 rows or 24 columns (too little overlap or texture per
+        drivers. Strips of fewer than 6 rows or 24 columns (too little overlap or texture per
         key frame for the tracker) take the multi-baseline pairs in both modes, several times slower
         (``result.options["placement"]`` says which). Default is "default".
     output_pitch_um : float or (2,) float, optional
@@ -197,7 +197,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
        the key frames' positions are part of the filter's state (stochastic cloning [5]_),
        so their errors are corrected rather than inherited, and tracking runs outwards from
        the best-seen frame in the middle of the swipe.
-    3. Strips of fewer than 8 rows or 24 columns: successive frames are matched by
+    3. Strips of fewer than 6 rows or 24 columns: successive frames are matched by
        normalised cross-correlation over every integer shift (FFT) and refined by
        Gauss-Newton with a 2x2 information matrix per pair (cluster-robust over blocks of
        columns); frames are also paired at longer baselines at nearly whole-pixel
@@ -520,8 +520,17 @@ def _texture_about(z, frames, static, ok):
 # R = 6: +1.1 % vs -0.04 %; R = 7: +0.6 % vs -0.01 %; R = 8: -0.35 % vs -0.04 % at 30 dB, and
 # at 12 / 10 dB the tracker (then refined) held where the pairs drifted (across RMS 0.16 vs
 # 0.63 px; span +0.15 % vs -0.77 %). The filter's own drift estimate did not separate these
-# (it passed R = 4 at 30 dB and failed R = 8 at 12 dB), so the row count decides.
-_TRACK_MIN_ROWS = 8
+# (it passed R = 4 at 30 dB and failed R = 8 at 12 dB), so the row count decides. Those were
+# single swipes at 0.39 px per frame; over 84 simulated swipes of 6 and 7 rows (160 columns,
+# 4 kHz, 0.2-2.8 px per frame, constant and human profiles, four finger classes, 25-35 dB;
+# default mode) the tracker placed 58 better: median |span error| 0.95 -> 0.22 % at 0.8-2.8
+# px per frame (over 1 %: 23 -> 8 of 48), 0.033 -> 0.017 % at 0.2-0.6 (worst 4.2 -> 0.50 %),
+# where the pairs' along steps drift (an outside generator's 6x144 strip at 2.3 px per frame:
+# -6.8 % against -0.43 %). At 5 rows it helped less (median 0.92 -> 0.71 %, better on 12 of 24)
+# and at 4 it did worse (1.12 -> 1.73 %): the pairs keep 2-5 rows. The streaming stitcher
+# shares the switch; its tracker against its pairs window on 48 such swipes (0.4-2.2 px per
+# frame): better on 40, median |span error| 1.21 -> 0.35 %, over 1 %: 26 -> 8.
+_TRACK_MIN_ROWS = 6
 # ... and a strip of fewer than 24 columns shows the tracker too little texture per key: 16
 # simulated swipes of 16 columns (8 to 32 rows, four finger classes, 25 dB) placed by the
 # tracker erred by 0.16-172 px RMS along (median 3.9; ridge-period jumps, two false gaps), by

@@ -279,9 +279,12 @@ def test_fast_mode_uses_the_tracker_and_hands_short_strips_over():
     assert res.options["placement"] == "key-frame tracker"
     est = res.positions - res.positions[0]
     assert np.abs(est - pos).max() < 0.1
-    # Three and six rows: too little overlap per key frame for the tracker (fewer than 8
-    # rows); the pairwise path takes over.
-    for r_n in (3, 6):
+    # Three and five rows: too little overlap per key frame for the tracker (fewer than 6
+    # rows); the pairwise path takes over. Six rows are tracked.
+    res6 = stitch(_frames(pos, shape=(6, 96)) * 20 + 100, mode="fast")
+    assert res6.options["placement"] == "key-frame tracker"
+    assert np.abs((res6.positions - res6.positions[0]) - pos).max() < 0.1
+    for r_n in (3, 5):
         pos3 = np.stack([0.3 * np.arange(150), np.zeros(150)], 1)
         res3 = stitch(_frames(pos3, shape=(r_n, 96)) * 20 + 100, mode="fast")
         assert res3.options["placement"] == "multi-baseline pairs"
