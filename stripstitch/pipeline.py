@@ -527,8 +527,9 @@ def _texture_about(z, frames, static, ok):
 # px per frame (over 1 %: 23 -> 8 of 48), 0.033 -> 0.017 % at 0.2-0.6 (worst 4.2 -> 0.50 %),
 # where the pairs' along steps drift (an outside generator's 6x144 strip at 2.3 px per frame:
 # -6.8 % against -0.43 %). 32 more with skew, stalls and backtracks at 1-6 kHz: median span
-# 0.52 -> 0.20 %, along / across RMS 0.67 / 1.23 -> 0.28 / 0.25 px (across worse on 8). At 5 rows it helped less (median 0.92 -> 0.71 %, better on 12 of 24)
-# and at 4 it did worse (1.12 -> 1.73 %): the pairs keep 2-5 rows. The streaming stitcher
+# 0.52 -> 0.20 %, along / across RMS 0.67 / 1.23 -> 0.28 / 0.25 px (across worse on 8). At
+# 5 rows it helped less (median 0.92 -> 0.71 %, better on 12 of 24) and at 4 it did worse
+# (1.12 -> 1.73 %): the pairs keep 2-5 rows. The streaming stitcher
 # shares the switch; its tracker against its pairs window on 48 such swipes (0.4-2.2 px per
 # frame): better on 40, median |span error| 1.21 -> 0.35 %, over 1 %: 26 -> 8.
 _TRACK_MIN_ROWS = 6
