@@ -115,11 +115,13 @@ def test_stream_equals_batch_and_truth(tex, kind):
     assert isinstance(res, Reconstruction)
     # Against ground truth: every frame within 0.25 px (measured: at most 0.18 px).
     assert np.abs(res.positions - pos).max() < 0.25
-    # Against the batch path on every frame: within 0.3 px (stated tolerance; measured at
-    # 324df5e: at most 0.24 px along and 0.28 px across, the batch's own error on "varying"),
-    # and the batch against the truth within 0.4 px.
+    # Against the batch path on every frame: within 0.4 px (measured at 324df5e: at most
+    # 0.24 px along and 0.28 px across, the batch's own error on "varying"; since the stream
+    # fits a fixed pattern to its placed frames when none was given, 0.37 px on "varying",
+    # the two 0.12 and 0.23 px from the truth on opposite sides), and the batch against the
+    # truth within 0.4 px.
     assert np.abs(batch.positions - pos).max() < 0.4
-    np.testing.assert_allclose(res.positions, batch.positions, atol=0.3)
+    np.testing.assert_allclose(res.positions, batch.positions, atol=0.4)
     # Image: equals the source texture (bilinear splatting blurs slightly: a one-pixel
     # tent kernel, so 0.99 as in test_pipeline) and the batch image where both cover.
     assert _source_ncc(res, tex, corner) >= 0.99
@@ -358,11 +360,36 @@ def test_small_batches_place_as_large_ones(tex, batch_frames):
     # The tracker path is causal: pushing frames in batches of 1, 2 or 5 gives the same
     # placement as batches of 16 (the usable plates are decided on 16 contact frames whatever
     # the batch, and frames that waited for it are prepared again), within the texture's truth.
+    # Exactly so without the fixed-pattern fit to placed frames (split at fixed frames, but
+    # its frames' contact test follows the reference texture as the batches update it:
+    # measured up to 0.012 px apart, 0.13 px from the truth on this texture, which has no
+    # fixed pattern for the fit to find).
     pos, frames, corner = _swipe(tex, "varying")
-    _, _, ref = _stream(frames)
-    _, _, small = _stream(frames, batch_frames=batch_frames)
+    _, _, ref = _stream(frames, fixed_pattern_travel_px=None)
+    _, _, small = _stream(frames, batch_frames=batch_frames, fixed_pattern_travel_px=None)
     np.testing.assert_allclose(small.positions, ref.positions, atol=1e-6)
     assert np.abs(small.positions - pos).max() < 0.05
+    _, _, ref = _stream(frames)
+    _, _, small = _stream(frames, batch_frames=batch_frames)
+    np.testing.assert_allclose(small.positions, ref.positions, atol=0.03)
+    assert np.abs(small.positions - pos).max() < 0.2
+
+
+def test_column_pattern_with_the_finger_on_from_the_first_frame(tex):
+    # A finger on the strip from the first frame (no finger-absent frames, no calibration)
+    # and an offset per column (column-parallel readout mismatch, common practice), 10 % of
+    # the texture's spread, on a slanted swipe (0.21 px across per frame). Left in, the
+    # pattern pulls the across shifts towards zero: measured 2.3 px across by the end with
+    # the fit switched off. Fitted to the placed frames: at most 0.15 px from the truth
+    # (frames cut by exact Fourier shifts, scipy.ndimage.fourier_shift).
+    pos, frames, corner = _swipe(tex, "steady")
+    rng = np.random.default_rng(11)
+    fp = 0.1 * frames.std() * rng.standard_normal(frames.shape[2])
+    frames = frames + fp[None, None, :]
+    _, _, off = _stream(frames, fixed_pattern_travel_px=None)
+    _, _, res = _stream(frames)
+    assert np.abs(off.positions[:, 1] - pos[:, 1]).max() > 1.0
+    assert np.abs(res.positions - pos).max() < 0.3
 
 
 def test_ring_splat_equals_bilinear_splat_in_numpy():
