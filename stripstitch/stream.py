@@ -102,7 +102,7 @@ class StreamUpdate:
 
 # Passes over the arrival's frames when they give the fixed pattern (placed, pattern fitted
 # to the placement, placed again): on 24 swipes from an independent generator, all starting
-# in contact, across RMS median 0.28 / 0.24 / 0.22 px with 1 / 2 / 3 passes (and the
+# in contact, across RMS median 0.39 / 0.22 / 0.18 px with 0 / 1 / 3 passes (and the
 # refreshes after the arrival; 0.89 px with neither).
 _LEAD_PASSES = 3
 
@@ -275,6 +275,9 @@ class StreamingStitcher:
         # Fixed pattern and contact.
         self._lead_fp = False                     # offset taken from placed frames
         self._fp_last = 0                         # ... last from this half window
+        self._fit_n = np.zeros((r_n, c_n))        # residual sums gathered for the next fit
+        self._fit_d = np.zeros((r_n, c_n))
+        self._fit_travel = 0.0
         self._blank_sum = np.zeros((r_n, c_n))
         self._blank_n = 0
         self._seen_contact = False
@@ -761,11 +764,13 @@ class StreamingStitcher:
         self._freeze(b, events, rows)
         self._emit(rows, everything=final)
 
-    def _pattern_from_placed(self, a, b):
+    def _pattern_from_placed(self, a, b, gather=False):
         """With no finger-absent frames (nor calibration) to take the fixed pattern from, take
         it from frames a..b-1 as placed (if they travelled ``fixed_pattern_travel_px``): each
         plate's mean residual against the image fused from them, sampled where the plate
         looked (frames weighted by their travel), is added to the offset. True if it changed.
+        With ``gather`` the residual sums are gathered over successive calls until their
+        frames travelled that far (a slow swipe's half window travels a few pixels).
 
         Without it, the frames of a finger already on the strip when the capture starts are
         placed with the level removed only, and the fixed pattern, the same in every frame,
@@ -781,7 +786,9 @@ class StreamingStitcher:
         pos = self._pos[sl]
         contact = self._contact_of(self._tex[sl])
         wt = self._travel_weights(pos[0], pos, contact)
-        if wt.sum() < self.fixed_pattern_travel_px:
+        if not gather and wt.sum() < self.fixed_pattern_travel_px:
+            return False
+        if not wt.sum() > 0:
             return False
         level = float(np.mean(self._offset))
         vals = self._raw[sl] - self._offset + level
@@ -792,7 +799,8 @@ class StreamingStitcher:
         r_n, c_n = self._shape
         # Where each plate looked, in the fused image's pixels, sampled bilinearly (as it was
         # splatted; an image fused at half the pitch, less blurred, measured no better: across
-        # RMS median 0.33 against 0.22 px on the independent generator's swipes).
+        # RMS median 0.33 against 0.22 px on the independent generator's swipes, before the
+        # refreshes were gathered).
         q0 = pos[:, 0, None, None] + np.arange(r_n)[None, :, None] + mos.origin_px[0]
         q1 = pos[:, 1, None, None] + np.arange(c_n)[None, None, :] + mos.origin_px[1]
         q0, q1 = np.broadcast_arrays(q0, q1)
@@ -803,10 +811,22 @@ class StreamingStitcher:
         n = use.sum(axis=0).astype(np.float64)
         sx = np.where(use, vals, 0.0).sum(axis=0)
         sr = np.where(use, ref, 0.0).sum(axis=0)
+        if gather:
+            self._fit_n += n
+            self._fit_d += sx - sr
+            self._fit_travel += float(wt.sum())
+            if self._fit_travel < self.fixed_pattern_travel_px:
+                return False
+            n, d = self._fit_n.copy(), self._fit_d.copy()
+            self._fit_n[:] = 0.0
+            self._fit_d[:] = 0.0
+            self._fit_travel = 0.0
+        else:
+            d = sx - sr
         ok = self._plate_ok & (n >= 4)
         if not ok.any():
             return False
-        res = np.where(ok, (sx - sr) / np.maximum(n, 1.0), 0.0)
+        res = np.where(ok, d / np.maximum(n, 1.0), 0.0)
         res[ok] -= res[ok].mean()
         self._offset = self._offset + res
         self._lead_fp = True
@@ -1083,7 +1103,7 @@ class StreamingStitcher:
         again to every half window of placed frames (a slow arrival may not have travelled
         far enough for the first fit; a pattern constant along the columns shows more as the
         frames move across; on the independent generator's 24 swipes, across RMS median
-        0.26 -> 0.22 px), and split there, the placement does not depend on how the pushes
+        0.26 -> 0.18 px), and split there, the placement does not depend on how the pushes
         were batched."""
         half = self.window // 2
         while a < b:
@@ -1093,15 +1113,15 @@ class StreamingStitcher:
             a = nxt
 
     def _refresh_pattern(self, b):
-        """Fit the fixed pattern again (:meth:`_pattern_from_placed`) to the last whole half
-        window of frames before ``b``, once per half window: the frames are fixed by their
-        index, not by how the pushes were batched (a batch is at most half a window, so
-        they are still in the ring)."""
+        """Gather the residuals of the last whole half window of frames before ``b`` for the
+        next fit (:meth:`_pattern_from_placed`), once per half window: the frames are fixed
+        by their index, not by how the pushes were batched (a batch is at most half a
+        window, so they are still in the ring)."""
         half = self.window // 2
         k = b // half
         if k > self._fp_last and k >= 1:
             self._fp_last = k
-            self._pattern_from_placed((k - 1) * half, k * half)
+            self._pattern_from_placed((k - 1) * half, k * half, gather=True)
 
     def _travel_weights(self, prev, pos, contact):
         """Weights of frames at ``pos`` (the frame before them at ``prev``) in the fixed
