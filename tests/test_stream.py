@@ -375,21 +375,27 @@ def test_small_batches_place_as_large_ones(tex, batch_frames):
     assert np.abs(small.positions - pos).max() < 0.2
 
 
-def test_column_pattern_with_the_finger_on_from_the_first_frame(tex):
+@pytest.mark.parametrize("rows", [8, 4])
+def test_column_pattern_with_the_finger_on_from_the_first_frame(tex, rows):
     # A finger on the strip from the first frame (no finger-absent frames, no calibration)
     # and an offset per column (column-parallel readout mismatch, common practice), 10 % of
     # the texture's spread, on a slanted swipe (0.21 px across per frame). Left in, the
-    # pattern pulls the across shifts towards zero: measured 2.3 px across by the end with
-    # the fit switched off. Fitted to the placed frames: at most 0.15 px from the truth
-    # (frames cut by exact Fourier shifts, scipy.ndimage.fourier_shift).
+    # pattern pulls the across shifts towards zero: measured 2.3 / 2.4 px across by the end
+    # on 8 / 4 rows with the fit switched off. Fitted to the placed frames: at most 0.15 /
+    # 0.29 px across from the truth (frames cut by exact Fourier shifts,
+    # scipy.ndimage.fourier_shift); 4 rows take the pairwise path, whose along placement
+    # errs by 0.6 px on this texture with or without the fit (0.03 on 8 rows).
     pos, frames, corner = _swipe(tex, "steady")
+    frames = frames[:, :rows]
     rng = np.random.default_rng(11)
     fp = 0.1 * frames.std() * rng.standard_normal(frames.shape[2])
     frames = frames + fp[None, None, :]
     _, _, off = _stream(frames, fixed_pattern_travel_px=None)
     _, _, res = _stream(frames)
     assert np.abs(off.positions[:, 1] - pos[:, 1]).max() > 1.0
-    assert np.abs(res.positions - pos).max() < 0.3
+    assert np.abs(res.positions[:, 1] - pos[:, 1]).max() < 0.4
+    if rows == 8:
+        assert np.abs(res.positions - pos).max() < 0.3
 
 
 def test_ring_splat_equals_bilinear_splat_in_numpy():
