@@ -172,10 +172,11 @@ class StreamingStitcher:
     arrived (at least 8); with a ``calibration`` it is taken as removed. Without either (a
     finger on the strip from the first frame), strips placed by the key-frame tracker (6 rows
     and more) fit it to their placed frames: each plate's mean residual against the image
-    fused from the finger's arrival (placed, fitted and placed again), then refreshed from
-    every window of frames (the pairwise path, 2-5 rows, from every window as placed so
-    far); a pattern constant along the columns shows only as far as the frames moved across.
-    Until then only the level is removed. Contact: the spatial texture of a frame against
+    fused from the finger's arrival (placed, fitted and placed again), then from the
+    residuals of every half window, gathered until their frames travelled
+    ``fixed_pattern_travel_px`` (seven such fits at most; the pairwise path, 2-5 rows, only
+    these, on its frames as placed so far); a pattern constant along the columns shows only
+    as far as the frames moved across. Until then only the level is removed. Contact: the spatial texture of a frame against
     the largest texture seen so far, decided when the frame is frozen.
 
     Examples
@@ -279,7 +280,7 @@ class StreamingStitcher:
         self._dropped = 0
         # Fixed pattern and contact.
         self._lead_fp = False                     # offset taken from placed frames
-        self._fp_last = 0                         # ... last from this half window
+        self._fp_last = 0                         # half windows gathered (the last's index)
         self._fit_n = np.zeros((r_n, c_n))        # residual sums gathered for the next fit
         self._fit_d = np.zeros((r_n, c_n))
         self._fit_travel = 0.0
@@ -773,8 +774,9 @@ class StreamingStitcher:
     def _pattern_from_placed(self, a, b, gather=False):
         """With no finger-absent frames (nor calibration) to take the fixed pattern from, take
         it from frames a..b-1 as placed (if they travelled ``fixed_pattern_travel_px``): each
-        plate's mean residual against the image fused from them, sampled where the plate
-        looked (frames weighted by their travel), is added to the offset. True if it changed.
+        plate's mean residual, over the frames that moved, against the image fused from them
+        (each frame weighted by its travel) sampled where the plate looked, is added to the
+        offset. True if it changed.
         With ``gather`` the residual sums are gathered over successive calls until their
         frames travelled that far (a slow swipe's half window travels a few pixels).
 
