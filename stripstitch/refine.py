@@ -175,10 +175,16 @@ class _Workspace:
         self._clean.add(name)
 
 
-def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work, sharp=0.0):
+def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work, sharp=0.0,
+                  splat=True, keep=False, pad_px=0.0):
     """Model (and smoothed weight) on the grid of ``shape`` nodes from ``lo``, from the
     observations of frames ``src`` that fall on it (see :func:`build_model`). The arrays
-    returned are views into ``work``."""
+    returned are views into ``work``.
+
+    The splatted sums depend on the positions only, not on the smoothing: with ``keep`` they
+    stay in ``work`` for the next call on the same window, which passes ``splat=False`` (a
+    second model of other smoothing, as the twist's). ``pad_px``: smoothing (px across) of
+    the widest model the sums are kept for (their zero margin must fit its kernel)."""
     r_n, c_n = z.shape[1:]
     # Moments per node for a local linear fit: sums of w, w dy, w dx, w dy^2, w dx^2,
     # w dy dx, w z, w z dy, w z dx, with (dy, dx) the offset (px) of the observation from
@@ -197,14 +203,17 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     # Plane-major (H, 9, W) with the across kernel's radius of zero columns on either side:
     # both compiled passes then run over contiguous rows of one moment at a time, which the
     # compiler vectorises (the node-major layout it replaced took twice as long).
-    pad = gx0.size // 2
+    pad = max(gx0.size // 2, int(_TRUNCATE * float(pad_px) / h[1] + 0.5))
     # (the smoothing below clears each row of sums once it has read it, so the buffer is
     # zero again for the next window or pass without a sweep of its own: 1.7 ms a pass on
     # an 8x192 swipe)
-    acc = work.get_zeroed("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
-    cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
-    _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
-                   np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc, pad)
+    if splat:
+        acc = work.get_zeroed("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
+        cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
+        _splat_moments(z, w, np.asarray(src, dtype=np.int64), positions, np.cos(angles_rad),
+                       np.sin(angles_rad), cf, np.asarray(lo, dtype=np.float64), h, acc, pad)
+    else:
+        acc = work.get("acc", (shape[0], 9, shape[1] + 2 * pad), np.float32)
     # Nodes with too little weight (see below) take a wide local mean of the sums (it only
     # fills holes and borders): single precision (OpenCV's separable filter, zero outside
     # like ndimage mode "constant", truncated at 3 sigma), the moment's plane as a strided
@@ -227,8 +236,9 @@ def _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, wor
     _smooth_moments(acc, pad, *f32(gx0, gx1, gx2, gy0, gy1, gy2), model, s00, var0,
                     np.empty((9, 0, 0), dtype=np.float32),
                     work.get("ring", (gy0.size, 9, shape[1]), np.float32),
-                    work.get("ring_out", (9, shape[1]), np.float32), True)
-    work.mark_clean("acc")
+                    work.get("ring_out", (9, shape[1]), np.float32), not keep)
+    if not keep:
+        work.mark_clean("acc")
     # "Enough weight": 5 % of the 90th percentile of the positive weights, the percentile
     # taken on an even subsample of at most ~10^5 nodes (a statistic of the whole window).
     k = max(1, int(np.ceil(np.sqrt(s00.size / 1e5))))
@@ -578,28 +588,42 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
 
 @numba.njit(**JIT)
 def _gradient_stack(model, h0, h1, stack, curv_weight=1.0):
-    """``stack[..., 0]`` = model, ``[..., 1:3]`` = its gradient along and across, as
-    numpy.gradient (central differences inside, one-sided at the edges); ``[..., 3:5]`` (if
-    the stack has them) = its second differences along and across, node units (0 at the
-    edges) times ``curv_weight``, for the curvature term of the interpolation in
-    :func:`_frame_normals`."""
+    """``stack[0]`` = model, ``[1:3]`` = its gradient along and across, as numpy.gradient
+    (central differences inside, one-sided at the edges); ``[3:5]`` (if the stack has them)
+    = its second differences along and across, node units (0 at the edges) times
+    ``curv_weight``, for the curvature term of the interpolation in :func:`_frame_normals`.
+    Plane-major (channels, H, W) in single precision (the model's noise is far above its
+    rounding): each channel is written by a contiguous pass, and the sampling in
+    :func:`_frame_normals` streams through half the memory (measured: the stack's 4.3 ms
+    per 8x192 stitch -> 1.7 ms, positions within 1e-4 px)."""
     hh, ww = model.shape
-    curv = stack.shape[2] >= 5
+    curv = stack.shape[0] >= 5
     for i in range(hh):
         im = max(i - 1, 0)
         ip = min(i + 1, hh - 1)
         dy = (ip - im) * h0
+        inv_dy = 1.0 / dy if dy > 0 else 0.0
+        cy = curv_weight if ip - im == 2 else 0.0
         for c in range(ww):
-            cm = max(c - 1, 0)
-            cp = min(c + 1, ww - 1)
-            stack[i, c, 0] = model[i, c]
-            stack[i, c, 1] = (model[ip, c] - model[im, c]) / dy if dy > 0 else 0.0
-            stack[i, c, 2] = (model[i, cp] - model[i, cm]) / ((cp - cm) * h1) if cp > cm else 0.0
-            if curv:
-                stack[i, c, 3] = (curv_weight * (model[ip, c] - 2.0 * model[i, c] + model[im, c])
-                                  if ip - im == 2 else 0.0)
-                stack[i, c, 4] = (curv_weight * (model[i, cp] - 2.0 * model[i, c] + model[i, cm])
-                                  if cp - cm == 2 else 0.0)
+            stack[0, i, c] = model[i, c]
+            stack[1, i, c] = (model[ip, c] - model[im, c]) * inv_dy
+        if curv:
+            for c in range(ww):
+                stack[3, i, c] = cy * (model[ip, c] - 2.0 * model[i, c] + model[im, c])
+        if ww >= 2:
+            stack[2, i, 0] = (model[i, 1] - model[i, 0]) / h1
+            stack[2, i, ww - 1] = (model[i, ww - 1] - model[i, ww - 2]) / h1
+        else:
+            stack[2, i, 0] = 0.0
+        inv_2h1 = 0.5 / h1
+        for c in range(1, ww - 1):
+            stack[2, i, c] = (model[i, c + 1] - model[i, c - 1]) * inv_2h1
+        if curv:
+            stack[4, i, 0] = 0.0
+            stack[4, i, ww - 1] = 0.0
+            for c in range(1, ww - 1):
+                stack[4, i, c] = curv_weight * (model[i, c + 1] - 2.0 * model[i, c]
+                                                + model[i, c - 1])
 
 
 @numba.njit(**JIT)
@@ -731,20 +755,20 @@ def _sample_stack(stack, i0, i1, a0, a1, curv):
     w01 = (1.0 - a0) * a1
     w10 = a0 * (1.0 - a1)
     w11 = a0 * a1
-    m = (stack[i0, i1, 0] * w00 + stack[i0, i1 + 1, 0] * w01
-         + stack[i0 + 1, i1, 0] * w10 + stack[i0 + 1, i1 + 1, 0] * w11)
+    m = (stack[0, i0, i1] * w00 + stack[0, i0, i1 + 1] * w01
+         + stack[0, i0 + 1, i1] * w10 + stack[0, i0 + 1, i1 + 1] * w11)
     if curv:
         # Linear interpolation reads f - a (1 - a) h^2 f'' / 2 between nodes: add the
         # curvature term back (interpolated second differences).
-        d2y = (stack[i0, i1, 3] * w00 + stack[i0, i1 + 1, 3] * w01
-               + stack[i0 + 1, i1, 3] * w10 + stack[i0 + 1, i1 + 1, 3] * w11)
-        d2x = (stack[i0, i1, 4] * w00 + stack[i0, i1 + 1, 4] * w01
-               + stack[i0 + 1, i1, 4] * w10 + stack[i0 + 1, i1 + 1, 4] * w11)
+        d2y = (stack[3, i0, i1] * w00 + stack[3, i0, i1 + 1] * w01
+               + stack[3, i0 + 1, i1] * w10 + stack[3, i0 + 1, i1 + 1] * w11)
+        d2x = (stack[4, i0, i1] * w00 + stack[4, i0, i1 + 1] * w01
+               + stack[4, i0 + 1, i1] * w10 + stack[4, i0 + 1, i1 + 1] * w11)
         m -= 0.5 * (a0 * (1.0 - a0) * d2y + a1 * (1.0 - a1) * d2x)
-    gy = (stack[i0, i1, 1] * w00 + stack[i0, i1 + 1, 1] * w01
-          + stack[i0 + 1, i1, 1] * w10 + stack[i0 + 1, i1 + 1, 1] * w11)
-    gx = (stack[i0, i1, 2] * w00 + stack[i0, i1 + 1, 2] * w01
-          + stack[i0 + 1, i1, 2] * w10 + stack[i0 + 1, i1 + 1, 2] * w11)
+    gy = (stack[1, i0, i1] * w00 + stack[1, i0, i1 + 1] * w01
+          + stack[1, i0 + 1, i1] * w10 + stack[1, i0 + 1, i1 + 1] * w11)
+    gx = (stack[2, i0, i1] * w00 + stack[2, i0, i1 + 1] * w01
+          + stack[2, i0 + 1, i1] * w10 + stack[2, i0 + 1, i1 + 1] * w11)
     return m, gy, gx
 
 
@@ -753,9 +777,10 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
     """Per frame of ``idx``: the model (and its gradients) sampled bilinearly where each plate looked,
     Huber weights (k = 2 robust sigmas of the frame's residuals), and the weighted normal
     equations of the 7 parameters (shift along, across, stretch, shear, twist, gain, offset),
-    the weighted residual sum of squares, the count and the NCC with the model (in place)."""
+    the weighted residual sum of squares, the count and the NCC with the model (in place).
+    ``stack`` is :func:`_gradient_stack`'s (channels, H, W)."""
     _, r_n, c_n = z.shape
-    hh, ww_, n_ch = stack.shape
+    n_ch, hh, ww_ = stack.shape
     curv = n_ch >= 5
     n_px = r_n * c_n
     stride = max(1, n_px // 256)
@@ -968,11 +993,15 @@ def _phase_concentration(along, active, n_rows, phase_of=None):
 
 
 def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, margin_px=3.0,
-               sharp=0.0):
+               sharp=0.0, twist_smooth_px=None, twist_frames=None):
     """Model and frame fits tile by tile along the swipe, so memory and cache follow the
     tile, not the swipe: the frames whose centres lie in a tile are fitted to a model of the
     window they cover (plus a margin for the smoothing and the gradients), built from every
-    observation that falls in that window."""
+    observation that falls in that window.
+
+    With ``twist_smooth_px`` the frames flagged in ``twist_frames`` are also fitted to a
+    second model of that smoothing (unsharpened), built from the same splatted sums, and
+    its twist estimate (values, variances) is returned as a seventh item."""
     t_n, r_n, c_n = z.shape
     work = _Workspace() if work is None else work
     positions = np.asarray(positions, dtype=np.float64)
@@ -996,6 +1025,15 @@ def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, ma
     ncc = np.zeros(t_n)
     cf = np.array([(r_n - 1) / 2.0, (c_n - 1) / 2.0])
     ct, st = np.cos(angles_rad), np.sin(angles_rad)
+    two = twist_smooth_px is not None
+    if two:
+        hess2, grad2, rss2 = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7)), np.zeros(t_n)
+        nobs2, ncc2 = np.zeros(t_n), np.zeros(t_n)
+        flag = np.ones(t_n, bool) if twist_frames is None else np.asarray(twist_frames, bool)
+        pad_px = max(float(np.asarray(smooth_px, dtype=np.float64)[1]),
+                     float(np.asarray(twist_smooth_px, dtype=np.float64)[1]))
+    else:
+        pad_px = 0.0
     for fit in np.split(order, cuts):
         if fit.size == 0:
             continue
@@ -1004,12 +1042,25 @@ def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, ma
         src = np.flatnonzero((y_hi >= lo[0]) & (y_lo <= hi[0]) & (x_hi >= lo[1]) & (x_lo <= hi[1]))
         shape = tuple(int(v) for v in np.ceil((hi - lo) / h).astype(np.int64) + 2)
         model, _ = _model_window(z, w, src, positions, angles_rad, h, smooth_px, lo, shape, work,
-                                 sharp=sharp)
-        stack = work.get("stack", shape + (5 if sharp > 0 else 3,))
+                                 sharp=sharp, keep=two, pad_px=pad_px)
+        stack = work.get("stack", (5 if sharp > 0 else 3,) + shape, np.float32)
         _gradient_stack(model, float(h[0]), float(h[1]), stack, float(sharp))
         _frame_normals(z, w, fit.astype(np.int64), positions, ct, st, cf, stack, lo, h, hess,
                        grad, rss, nobs, ncc)
+        if two:
+            # the second model from the same sums (the first is done with: its buffers are
+            # reused)
+            model, _ = _model_window(z, w, src, positions, angles_rad, h, twist_smooth_px, lo,
+                                     shape, work, splat=False, pad_px=pad_px)
+            stack = work.get("stack", (3,) + shape, np.float32)
+            _gradient_stack(model, float(h[0]), float(h[1]), stack, 0.0)
+            sel = fit[flag[fit]]
+            if sel.size:
+                _frame_normals(z, w, sel.astype(np.int64), positions, ct, st, cf, stack, lo, h,
+                               hess2, grad2, rss2, nobs2, ncc2)
     delta, info, st_, sh_, tw_ = _solve_frames(hess, grad, rss, nobs)
+    if two:
+        return delta, info, st_, sh_, tw_, ncc, _solve_frames(hess2, grad2, rss2, nobs2)[4]
     return delta, info, st_, sh_, tw_, ncc
 
 
@@ -1189,19 +1240,23 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     auto = isinstance(sharpen, str)
     sharp = 1.0 if auto else check_in_range(sharpen, 0.0, 1.0, name="sharpen")
     for it in range(max(1, int(iterations))):
-        delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = _fit_tiles(
-            z, w, pos, ang, h, smooth_px, tile_px, work, sharp=sharp)
         # Only where the frames sample many sub-pixel phases is the model finer than the
         # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
         # like any other, and the pairwise placement stands.
         conc = _phase_concentration(pos[:, 0], active, r_n)
         alias = active & (conc >= 0.5)
-        if twist_smooth_px is not None and rotation and alias.sum() >= 0.1 * max(active.sum(), 1):
-            # Where the along phases are concentrated, the twist from a model smoothed wider
-            # along: the sharp model's interpolation between the few phases reads only part
-            # of a turn (measured on two 16-row strips turning 3 degrees at 0.98 px per frame:
-            # 0.55 deg RMS -> 0.09 and 0.08).
-            tw2, tw2_var = _fit_tiles(z, w, pos, ang, h, twist_smooth_px, tile_px, work)[4]
+        # Where the along phases are concentrated, the twist from a model smoothed wider
+        # along: the sharp model's interpolation between the few phases reads only part of a
+        # turn (measured on two 16-row strips turning 3 degrees at 0.98 px per frame: 0.55 deg
+        # RMS -> 0.09 and 0.08). Built from the same splatted sums as the first model.
+        twist2 = (twist_smooth_px is not None and rotation
+                  and alias.sum() >= 0.1 * max(active.sum(), 1))
+        fitted = _fit_tiles(z, w, pos, ang, h, smooth_px, tile_px, work, sharp=sharp,
+                            twist_smooth_px=twist_smooth_px if twist2 else None,
+                            twist_frames=alias)
+        delta, info, (st, st_var), (sh, sh_var), (tw, tw_var), ncc = fitted[:6]
+        if twist2:
+            tw2, tw2_var = fitted[6]
             tw = np.where(alias, tw2, tw)
             tw_var = np.where(alias, tw2_var, tw_var)
         ok = active & (ncc > 0.3)

@@ -296,7 +296,7 @@ def test_compiled_normal_equations_match_the_formula(r_n, c_n, turned):
     pos = np.cumsum(rng.uniform(0.2, 0.8, (t_n, 2)), axis=0)
     # unturned frames inside the grid take the kernel's per-row path
     ang = rng.uniform(-0.02, 0.02, t_n) if turned else np.zeros(t_n)
-    stack = rng.standard_normal((60, 2 * c_n + 30, 3))
+    stack = rng.standard_normal((3, 60, 2 * c_n + 30))     # (channels, H, W)
     lo, h = np.array([-3.0, -4.0]), np.array([0.25, 0.5])
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
     hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
@@ -307,6 +307,7 @@ def test_compiled_normal_equations_match_the_formula(r_n, c_n, turned):
     f0, f1 = (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1]
     i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
     a0, a1 = f0 - i0, f1 - i1
+    stack = np.moveaxis(stack, 0, -1)                       # (H, W, channels) below
     samp = (stack[i0, i1] * ((1 - a0) * (1 - a1))[..., None] + stack[i0, i1 + 1] * ((1 - a0) * a1)[..., None]
             + stack[i0 + 1, i1] * (a0 * (1 - a1))[..., None] + stack[i0 + 1, i1 + 1] * (a0 * a1)[..., None])
     u0 = (np.arange(r_n) - cf[0])[:, None] * np.ones((1, c_n))
@@ -449,7 +450,7 @@ def test_curvature_term_makes_the_interpolation_exact_for_a_quadratic(turned):
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
     rss = {}
     for n_ch in (3, 5):
-        stack = np.zeros(gy.shape + (n_ch,))
+        stack = np.zeros((n_ch,) + gy.shape)
         _gradient_stack(quad(gy, gx), h[0], h[1], stack)
         hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
         r_, nobs, ncc = np.zeros(t_n), np.zeros(t_n), np.zeros(t_n)
@@ -558,3 +559,27 @@ def test_workspace_zeroed_buffer_reused_across_shapes():
     assert not c.any()
     d = work.get_zeroed("acc", (10, 9, 9), np.float32)   # larger: a fresh zeroed buffer
     assert not d.any()
+
+
+def test_second_model_from_the_same_sums_matches_a_separate_fit():
+    # The twist's second model (wider smoothing) is built from the sums splatted for the first
+    # one: for the flagged frames its twist must equal that of a fit of its own (the splat
+    # does not depend on the smoothing), on turned frames (a margin wider than the first
+    # model's kernel) cut from a band-limited texture.
+    tex = band_texture((256, 160), period_px=7.0, seed=2)
+    t_n = 120
+    pos = np.stack([0.37 * np.arange(t_n), 0.05 * np.arange(t_n)], 1)
+    ang = np.radians(np.linspace(0.0, 2.0, t_n))
+    frames = _turning_frames(tex, pos, ang)
+    w = np.ones(frames.shape, np.float32)
+    h = np.array([0.25, 0.5])
+    flag = np.arange(t_n) % 3 == 0
+    both = rf._fit_tiles(frames, w, pos, ang, h, (0.3, 0.3), 64.0, sharp=1.0,
+                         twist_smooth_px=(0.8, 0.8), twist_frames=flag)
+    first = rf._fit_tiles(frames, w, pos, ang, h, (0.3, 0.3), 64.0, sharp=1.0)
+    alone = rf._fit_tiles(frames, w, pos, ang, h, (0.8, 0.8), 64.0)
+    np.testing.assert_allclose(both[0], first[0], rtol=1e-12, atol=1e-12)   # first fit intact
+    np.testing.assert_allclose(both[5], first[5], rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(both[6][0][flag], alone[4][0][flag], rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(both[6][1][flag], alone[4][1][flag], rtol=1e-9, atol=1e-15)
+    assert np.ptp(both[6][0][flag]) > 0                  # it read something
