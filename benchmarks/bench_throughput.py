@@ -3,7 +3,8 @@
 Run from a clean checkout:
     python benchmarks/bench_throughput.py  [--repeat N] [--quick] [--cores N]
 
-For each geometry (8 x 192 @ 4 kHz, 16 x 128 @ 2 kHz; one simulated full swipe each) times,
+For each geometry (8 x 192 @ 4 kHz, 16 x 128 @ 2 kHz, and the 8 x 192 swipe turning by 2 degrees;
+one simulated full swipe each) times,
 side by side in one run: stripstitch.stitch mode "default" and "fast", the skimage and OpenCV
 phase-correlation chains (pairwise shifts + stripstitch.mosaic.fuse), the simulator's capture
 (finger made beforehand; finger generation timed separately) and stripstitch.evaluate.evaluate.
@@ -36,6 +37,10 @@ from stripstitch.sweep import reconstruct
 CASES = {
     "8x192 @ 4 kHz": dict(n_rows=8, n_cols=192, frame_rate_hz=4000.0, speed_mm_s=100.0, snr_db=30.0),
     "16x128 @ 2 kHz": dict(n_rows=16, n_cols=128, frame_rate_hz=2000.0, speed_mm_s=100.0, snr_db=30.0),
+    # A finger that turns by 2 degrees over the swipe: the refinement then turns every frame
+    # (each plate placed on its own, no shared row weights) and runs three more passes.
+    "8x192 @ 4 kHz, turning 2 deg": dict(n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                                         speed_mm_s=100.0, snr_db=30.0, rotation_deg=2.0),
 }
 FINGER_MM = (12.0, 10.0)
 
