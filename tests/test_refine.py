@@ -296,7 +296,7 @@ def test_compiled_normal_equations_match_the_formula(r_n, c_n, turned):
     pos = np.cumsum(rng.uniform(0.2, 0.8, (t_n, 2)), axis=0)
     # unturned frames inside the grid take the kernel's per-row path
     ang = rng.uniform(-0.02, 0.02, t_n) if turned else np.zeros(t_n)
-    stack = rng.standard_normal((3, 60, 2 * c_n + 30))     # (channels, H, W)
+    stack = rng.standard_normal((60, 2 * c_n + 30, 3))
     lo, h = np.array([-3.0, -4.0]), np.array([0.25, 0.5])
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
     hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
@@ -307,7 +307,6 @@ def test_compiled_normal_equations_match_the_formula(r_n, c_n, turned):
     f0, f1 = (q0 - lo[0]) / h[0], (q1 - lo[1]) / h[1]
     i0, i1 = np.floor(f0).astype(int), np.floor(f1).astype(int)
     a0, a1 = f0 - i0, f1 - i1
-    stack = np.moveaxis(stack, 0, -1)                       # (H, W, channels) below
     samp = (stack[i0, i1] * ((1 - a0) * (1 - a1))[..., None] + stack[i0, i1 + 1] * ((1 - a0) * a1)[..., None]
             + stack[i0 + 1, i1] * (a0 * (1 - a1))[..., None] + stack[i0 + 1, i1 + 1] * (a0 * a1)[..., None])
     u0 = (np.arange(r_n) - cf[0])[:, None] * np.ones((1, c_n))
@@ -450,7 +449,7 @@ def test_curvature_term_makes_the_interpolation_exact_for_a_quadratic(turned):
     cf = np.array([(r_n - 1) / 2, (c_n - 1) / 2])
     rss = {}
     for n_ch in (3, 5):
-        stack = np.zeros((n_ch,) + gy.shape)
+        stack = np.zeros(gy.shape + (n_ch,))
         _gradient_stack(quad(gy, gx), h[0], h[1], stack)
         hess, grad = np.zeros((t_n, 7, 7)), np.zeros((t_n, 7))
         r_, nobs, ncc = np.zeros(t_n), np.zeros(t_n), np.zeros(t_n)
