@@ -129,6 +129,16 @@ class TrajectoryErrors:
             "increment_rms_across_px": self.increment_rms_px[1], "n_scored": self.n_scored})
 
 
+def _into_axes_of(pos, ang, ref):
+    """Positions (T, 2) re-expressed relative to frame ``ref`` and in that frame's axes:
+    ``Rot(-a) (p_t - p_ref)`` with ``a = ang[ref] - ang[0]`` (row-vector form), the library's
+    convention for frame 0 applied to frame ``ref``."""
+    a = float(ang[ref] - ang[0])
+    th = np.radians(a) if np.isfinite(a) else 0.0
+    c, s = np.cos(th), np.sin(th)
+    return (pos - pos[ref]) @ np.array([[c, -s], [s, c]])
+
+
 def trajectory_errors(positions, angles, true_positions, true_angles, *, frames=None,
                       reference_frame=0):
     """Compare an estimated trajectory with the truth.
@@ -147,7 +157,9 @@ def trajectory_errors(positions, angles, true_positions, true_angles, *, frames=
         Frames to score (e.g. frames with finger contact). Default is None (all frames).
     reference_frame : int, optional
         Both trajectories are re-referenced to this frame before comparing (position and
-        angle of that frame subtracted). Default is 0, which removes nothing because both are
+        angle of that frame subtracted, positions expressed in that frame's axes: each
+        trajectory rotated by its own angle of that frame). Default is 0, which removes
+        nothing because both are
         relative to frame 0 already.
 
     Returns
@@ -174,8 +186,13 @@ def trajectory_errors(positions, angles, true_positions, true_angles, *, frames=
         if mask.shape != (t,):
             raise ValueError(f"frames must be a boolean mask of shape ({t},); got shape {mask.shape}")
     ref = check_int(reference_frame, name="reference_frame", lo=0, hi=t - 1)
-    est = est - est[ref]
-    tru = tru - tru[ref]
+    # Each trajectory in its own reference frame's axes, not only shifted to it: a frame
+    # without finger (frame 0 before the finger arrives) cannot be measured against, so the
+    # angle of the reference is removed, and with it the rotation of the whole trajectory
+    # that angle implies (subtracting the angle but not rotating the positions counted a
+    # turn made before the finger arrived as an across drift of angle x travel).
+    est = _into_axes_of(est, ang, ref)
+    tru = _into_axes_of(tru, tang, ref)
     ang = ang - ang[ref]
     tang = tang - tang[ref]
     mask = mask & np.isfinite(est).all(axis=1) & np.isfinite(ang)

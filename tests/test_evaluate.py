@@ -98,6 +98,39 @@ def test_reference_frame_and_mask():
     assert np.isnan(err.position_error_px[0]).all()
 
 
+def test_reference_frame_removes_the_turn_made_before_it():
+    # A turn made before the reference frame (before the finger arrived) is not measurable:
+    # an estimate that knows everything but that turn places the frames in the reference
+    # frame's axes. Re-referenced to that frame it must score zero; scored against frame 0
+    # it is off by the rotation of coordinates, Rot(-a) p (common practice).
+    from stripstitch.simulate import make_motion
+    m = make_motion("constant", frame_rate_hz=2000.0, speed_mm_s=60.0, length_mm=8.0,
+                    skew_deg=2.0, rotation_deg=4.0, rng=3)
+    pitch = 50.8
+    true, tang = m.positions_px(pitch), m.angles_deg()
+    k = len(true) // 4
+    a_k = np.radians(m.angle_deg[k])                     # absolute sensor angle at frame k
+    d = (m.centre_um - m.centre_um[0]) / pitch
+    # Rot(-a_k) d written out: (cos d0 + sin d1, -sin d0 + cos d1)
+    est = np.stack([np.cos(a_k) * d[:, 0] + np.sin(a_k) * d[:, 1],
+                    -np.sin(a_k) * d[:, 0] + np.cos(a_k) * d[:, 1]], axis=1)
+    ang = np.where(np.arange(len(true)) >= k, m.angle_deg - m.angle_deg[k], 0.0)
+    scored = np.arange(len(true)) >= k
+    assert abs(tang[k]) > 0.1                            # the turn before frame k is real
+    err = ev.trajectory_errors(est, ang, true, tang, frames=scored, reference_frame=k)
+    assert err.along_max_px < 1e-9 and err.across_max_px < 1e-9
+    assert err.rotation_max_deg < 1e-12
+    # against frame 0 the same estimate is rotated by the turn before frame k (frame 0 had
+    # angle a_0, so relative to frame 0 it is tang[k]): across error -sin(tang[k]) * travel
+    err0 = ev.trajectory_errors(est, ang, true, tang, frames=scored, reference_frame=0)
+    a = np.radians(tang[k])
+    rel = est[scored] - true[scored]
+    tr = true[scored]
+    expect = -np.sin(a) * tr[:, 0] + (np.cos(a) - 1.0) * tr[:, 1]
+    np.testing.assert_allclose(rel[:, 1], expect, atol=1e-6 * np.abs(tr).max())
+    assert err0.across_max_px > 0.5
+
+
 def test_trajectory_rejects_bad_shapes():
     with pytest.raises(ValueError, match=r"true_positions must have shape \(5, 2\)"):
         ev.trajectory_errors(np.zeros((5, 2)), None, np.zeros((4, 2)), None)
