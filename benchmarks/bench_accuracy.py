@@ -211,7 +211,8 @@ def main(argv=None):
     prior_summary["with prior, SNR <= 20 dB"] = float(np.median(low)) if low else None
     md = (f"# Accuracy benchmark{' (quick)' if args.quick else ''}\n\n"
           "Positions in sensor pixels (50.8 um); errors over frames with contact >= 0.5, relative to "
-          "frame 0; CRB = Cramer-Rao bound per pair (Robinson & Milanfar 2004), doubled for noise in "
+          "frame 0 (or the first frame in contact when frame 0 has none, each trajectory in that "
+          "frame's axes); CRB = Cramer-Rao bound per pair (Robinson & Milanfar 2004), doubled for noise in "
           "both frames; image metrics after the best global translation; period = measured ridge "
           "period ratio reconstruction / truth; scale = geometric scale from the block distortion map; "
           "NCC and SSIM are over the covered pixels only (covered = fraction of the true image).\n\n"
