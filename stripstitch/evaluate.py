@@ -159,8 +159,7 @@ def trajectory_errors(positions, angles, true_positions, true_angles, *, frames=
         Both trajectories are re-referenced to this frame before comparing (position and
         angle of that frame subtracted, positions expressed in that frame's axes: each
         trajectory rotated by its own angle of that frame). Default is 0, which removes
-        nothing because both are
-        relative to frame 0 already.
+        nothing because both are relative to frame 0 already.
 
     Returns
     -------

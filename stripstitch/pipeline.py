@@ -391,14 +391,13 @@ def _across_drift_from(positions, tracked, contact, r_n):
     keeps the detail, the tracker the long-range drift. Measured (across RMS, default mode):
     64 random swipes (bench_random.py) median 0.158 -> 0.145 px, mean 0.205 -> 0.191 (8
     better, 4 worse by more than 0.05 px, the worst a turn of 0.9 degrees left uncorrected:
-    0.32 -> 0.50); the
-    independent generator's 72 swipes of three seeds median 0.111 -> 0.108, mean 0.487 ->
-    0.404 (22 better, 3 worse by more than 0.05 px); the accuracy suite median 0.056 ->
-    0.055, mean 0.320 -> 0.325 (slanted 0.22 -> 0.18, accelerating 0.43 -> 0.52). Over two
-    strip heights instead the random swipes' median rose (0.167 -> 0.169 px, before the
-    evaluation's re-referencing was corrected): arches, whose weak across texture lets the
-    tracker wander, lost up to 0.4 px. Not on turning swipes: the tracker does not model the
-    turn.
+    0.32 -> 0.50); the independent generator's 72 swipes of three seeds median 0.111 ->
+    0.108, mean 0.487 -> 0.404 (22 better, 3 worse by more than 0.05 px); the accuracy
+    suite median 0.056 -> 0.055, mean 0.320 -> 0.325 (slanted 0.22 -> 0.18, accelerating
+    0.43 -> 0.52). Over two strip heights instead the random swipes' median rose (0.167 ->
+    0.169 px, before the evaluation's re-referencing was corrected): arches, whose weak
+    across texture lets the tracker wander, lost up to 0.4 px. Not on turning swipes: the
+    tracker does not model the turn.
     """
     diff = positions[:, 1] - tracked[:, 1]
     if contact.sum() < 2:
