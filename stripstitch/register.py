@@ -608,7 +608,10 @@ def refine_shifts(prep, pairs, init_shift, *, init_angle=None, estimate_rotation
     estimate_rotation : bool
         Estimate theta (else held at ``init_angle``). Default is True.
     iterations : int
-        Gauss-Newton iterations. Default is 3.
+        Gauss-Newton iterations. Default is 3. With the rotation free and only a few rows
+        overlapping at the strip's edge, the rotation's across term is nearly the across
+        shift and convergence is linear (3 of 8 rows, a start 0.17 px off: 0.030 px along
+        after 4 iterations, 0.007 after 8); the library's own callers hold the rotation.
     prior_px : float or None
         Standard deviation of a weak Gaussian prior of the shift around its start, so that
         along an ambiguous direction (ridges parallel to the shift: the aperture problem) the
