@@ -57,6 +57,10 @@ class Refined:
         Angle error (rad) per pixel of travel of that trajectory (smoothed).
     ncc : (T,) float64
         Normalised correlation of each frame with the model at its refined position.
+    first_turn_deg : float
+        The turn (degrees, peak to peak over the frames with finger) the first pass's twist
+        implied, whether or not it was kept (NaN when ``min_turn_deg`` is None or the
+        angles are not read).
     """
 
     positions: np.ndarray
@@ -66,12 +70,14 @@ class Refined:
     shear: np.ndarray
     twist: np.ndarray
     ncc: np.ndarray
+    first_turn_deg: float = float("nan")
 
     def __post_init__(self):
         for name in ("positions", "angles_rad", "frame_info", "stretch", "shear", "twist", "ncc"):
             arr = np.array(getattr(self, name), dtype=np.float64)
             arr.flags.writeable = False
             object.__setattr__(self, name, arr)
+        object.__setattr__(self, "first_turn_deg", float(self.first_turn_deg))
 
 
 def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3),
@@ -1224,6 +1230,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         raise ValueError(f'sharpen must be "auto" or a number in [0, 1]; got {sharpen!r}')
     auto = isinstance(sharpen, str)
     sharp = 1.0 if auto else check_in_range(sharpen, 0.0, 1.0, name="sharpen")
+    first_turn = float("nan")
     for it in range(max(1, int(iterations))):
         # Only where the frames sample many sub-pixel phases is the model finer than the
         # plates (see the stretch below); elsewhere it is an interpolation of aliased samples
@@ -1314,6 +1321,8 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             dk = np.abs(np.concatenate([d[:, 0], [0.0]]))
             raw = float(np.sum(np.where(ok_t, tw * dk, 0.0)))
             se = float(np.sqrt(np.sum(np.where(ok_t, tw_var, 0.0) * dk ** 2)))
+            if min_turn_deg is not None and rotation and active.any():
+                first_turn = float(np.degrees(np.ptp(probe[active])))
             use_twist = bool(active.any()) and (
                 min_turn_deg is None
                 or (np.degrees(np.ptp(probe[active])) >= float(min_turn_deg) and abs(raw) >= 10.0 * se))
@@ -1329,4 +1338,4 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
     d[cut] = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[cut]
     pos = np.vstack([[0.0, 0.0], np.cumsum(d, axis=0)])
     return Refined(positions=pos, angles_rad=ang, frame_info=info, stretch=st_s, shear=sh_s,
-                   twist=tw_s, ncc=ncc)
+                   twist=tw_s, ncc=ncc, first_turn_deg=first_turn)

@@ -187,10 +187,17 @@ def test_turn_read_from_the_twist():
     out = rf.refine_positions(frames, np.ones(frames.shape), pos, np.zeros(t_n), iterations=6)
     # Measured 0.022 degrees RMS; the target for a swipe turning by 3 degrees is 0.1.
     assert np.degrees(np.sqrt(np.mean((out.angles_rad - ang) ** 2))) < 0.1
+    # The first reading is reported whether kept or not (the pipeline's second opinion).
+    assert out.first_turn_deg > 1.0
     # Without a turn nothing is turned (below the 1 degree threshold the angles stand).
     still = _turning_frames(tex, pos, np.zeros(t_n))
     out0 = rf.refine_positions(still, np.ones(still.shape), pos, np.zeros(t_n), iterations=2)
     assert np.all(out0.angles_rad == 0.0)
+    assert 0.0 <= out0.first_turn_deg < 1.0
+    # Turn established beforehand (min_turn_deg None): no first reading to report.
+    out1 = rf.refine_positions(still, np.ones(still.shape), pos, np.zeros(t_n), iterations=1,
+                               min_turn_deg=None)
+    assert np.isnan(out1.first_turn_deg)
 
 
 def test_turn_read_when_the_strip_moves_by_whole_pixels():
