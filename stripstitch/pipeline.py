@@ -365,7 +365,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # 1.0 % long and 5 px off across at its end; the passes read 3.1).
             turning = stall_turned or np.ptp(angles_deg[prep.contact]) >= 1.0
             second = (not turning and np.isfinite(ref.first_turn_deg)
-                      and ref.first_turn_deg >= _SECOND_OPINION_DEG)
+                      and ref.first_turn_deg >= _SECOND_OPINION_DEG
+                      and r_n >= _SECOND_OPINION_MIN_ROWS and c_n >= _SECOND_OPINION_MIN_COLS)
             if model_passes is None and placed is not None and rotation and (turning or second):
                 ref2 = refine(3, min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8))
                 if turning or np.ptp(np.degrees(ref2.angles_rad[prep.contact])) >= _SECOND_OPINION_DEG:
@@ -388,8 +389,16 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
 
 
 # A turn (degrees) the first reading implied that gets the turn passes as a second opinion,
-# and the turn those passes must establish to be kept (see stitch).
+# and the turn those passes must establish to be kept (see stitch). Only on strips of at
+# least these many rows and columns: the twist is an along shift that changes across the
+# strip, so narrow strips read it weakly, and there the passes invented turns of 1.4-3.9
+# degrees RMS on swipes that do not turn (bench_geometry.py: an 8x24 photo texture at 13 dB,
+# image NCC 0.979 -> 0.799; a 6x128 twin loop at 2.2 px per frame, 0.965 -> 0.853; an 8x24
+# twin loop), against two real turns recovered (8x64, 1.77 -> 0.34 deg; 16x32, 1.14 ->
+# 0.88 deg, which this limit leaves out).
 _SECOND_OPINION_DEG = 1.0
+_SECOND_OPINION_MIN_ROWS = 8
+_SECOND_OPINION_MIN_COLS = 64
 
 # The across path's drift over more than this many strip heights of travel (Gaussian sigma)
 # is the tracker's, on swipes that kept no turn: see _across_drift_from.
