@@ -346,6 +346,21 @@ def test_turn_read_short_at_first_gets_a_second_opinion():
     assert d["backtrack_detected"] == 1
 
 
+def test_central_turn_ignores_a_turn_made_at_the_ends_of_the_travel():
+    # The second opinion's test: a turn made while the fingertip arrives (first 10 % of the
+    # travel) does not count; one spread over the swipe counts 80 % of it (linear ramp).
+    from stripstitch.pipeline import _central_turn_deg
+
+    t_n = 201
+    pos = np.stack([np.arange(t_n, dtype=float), np.zeros(t_n)], 1)
+    contact = np.ones(t_n, bool)
+    arrival = np.radians(np.clip(np.arange(t_n) / 15.0, 0.0, 1.0) * 1.2)
+    assert _central_turn_deg(pos, arrival, contact) < 1e-9
+    ramp = np.radians(np.linspace(0.0, 2.0, t_n))
+    assert abs(_central_turn_deg(pos, ramp, contact) - 1.6) < 0.02
+    assert _central_turn_deg(pos, ramp, np.zeros(t_n, bool)) == 0.0
+
+
 def test_slow_swipe_near_the_stall_speed_gets_no_turn():
     # Simulator truth: no rotation; 1.5 mm/s at 1 kHz (0.03 px per frame) hovers around the
     # stall speed for the whole swipe. Measured: with a weaker residual rule for a stall's
