@@ -412,6 +412,7 @@ _SECOND_OPINION_DEG = 0.8
 _SECOND_OPINION_MIN_ROWS = 8
 _SECOND_OPINION_MIN_COLS = 64
 
+
 def _central_turn_deg(positions, angles_rad, contact, frac=0.1):
     """Peak-to-peak turn (degrees) over the frames with finger in the middle of the travel
     (from ``frac`` to ``1 - frac`` of it)."""
