@@ -418,7 +418,7 @@ def _central_turn_deg(positions, angles_rad, contact, frac=0.1):
     (from ``frac`` to ``1 - frac`` of it)."""
     if contact.sum() < 2:
         return 0.0
-    travel = np.concatenate([[0.0], np.cumsum(np.abs(np.diff(positions[:, 0])))])
+    travel = _refine._travel_px(positions)
     tc = travel[contact]
     lo, hi = tc.min() + frac * np.ptp(tc), tc.max() - frac * np.ptp(tc)
     mid = contact & (travel >= lo) & (travel <= hi)
@@ -451,7 +451,7 @@ def _across_drift_from(positions, tracked, contact, r_n):
     diff = positions[:, 1] - tracked[:, 1]
     if contact.sum() < 2:
         return positions
-    travel = np.concatenate([[0.0], np.cumsum(np.abs(np.diff(positions[:, 0])))])
+    travel = _refine._travel_px(positions)
     drift = _refine._smooth_weighted(diff, np.where(contact, 1.0, np.inf), travel,
                                      _ACROSS_DRIFT_STRIPS * r_n)
     # frames without finger (no weight in the image) follow the nearest frames with it

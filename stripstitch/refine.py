@@ -1060,6 +1060,11 @@ def _fit_tiles(z, w, positions, angles_rad, h, smooth_px, tile_px, work=None, ma
 _READERS = (4.0, 8.0)
 
 
+def _travel_px(positions):
+    """Distance travelled along the swipe up to each frame (px): backtracks count."""
+    return np.concatenate([[0.0], np.cumsum(np.abs(np.diff(positions[:, 0])))])
+
+
 def _smooth_weighted(values, var, travel_px, sigma_px):
     """Inverse-variance weighted Gaussian smoothing over the travel.
 
@@ -1291,7 +1296,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         whole_px = moving & (_phase_concentration(pos[:, 0], moving, r_n) >= 0.5)
         tw_var = np.where(ok & ((conc < 0.5) | whole_px), tw_var, np.inf) if rotation \
             else np.full(t_n, np.inf)
-        travel_px = np.concatenate([[0.0], np.cumsum(np.abs(np.diff(pos[:, 0])))])
+        travel_px = _travel_px(pos)
         st_s = _smooth_weighted(st, st_var, travel_px, sigma_px)
         sh_s = _smooth_weighted(sh, sh_var, travel_px, sigma_px)
         tw_s = _smooth_weighted(tw, tw_var, travel_px, sigma_px)
@@ -1321,11 +1326,12 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             dk = np.abs(np.concatenate([d[:, 0], [0.0]]))
             raw = float(np.sum(np.where(ok_t, tw * dk, 0.0)))
             se = float(np.sqrt(np.sum(np.where(ok_t, tw_var, 0.0) * dk ** 2)))
+            read_deg = float(np.degrees(np.ptp(probe[active]))) if active.any() else 0.0
             if min_turn_deg is not None and rotation and active.any():
-                first_turn = float(np.degrees(np.ptp(probe[active])))
+                first_turn = read_deg
             use_twist = bool(active.any()) and (
                 min_turn_deg is None
-                or (np.degrees(np.ptp(probe[active])) >= float(min_turn_deg) and abs(raw) >= 10.0 * se))
+                or (read_deg >= float(min_turn_deg) and abs(raw) >= 10.0 * se))
         if not use_twist:
             turn[:] = 0.0
         if not correct_stretch:
