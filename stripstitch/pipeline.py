@@ -379,6 +379,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                 positions = _across_drift_from(positions, placed[0], prep.contact, r_n)
     if delay_steps is not None:
         positions = _with_along_steps(positions, delay_steps)
+    positions, confidence, link_failed = _bridge_blank_runs(prep, chain, positions, confidence,
+                                                            link_failed, times, r_n)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
                    dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
                    pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
@@ -516,12 +518,12 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
     return out, turned
 
 
-def _strong_frames(prep, chain, noise, along):
-    """Frames with clear texture (for telling a gap from faint frames at the finger's ends).
+def _texture_power(prep, chain, noise, along):
+    """Signal power of each chain frame: its texture's variance above the temporal noise
+    (std ``noise``), and the median of that over the chain.
 
     Texture here is what changes over the swipe: a blank frame shows the static (fixed)
     pattern left over after preparation, which the per-plate median over the swipe removes.
-    Signal power above the temporal noise: at low SNR a blank frame's spread is the noise.
     ``along``: the chain frames' along positions (so a stall counts once in the median).
     """
     # Per-plate median over about 40 frames spread evenly over the finger's length, not its
@@ -537,8 +539,98 @@ def _strong_frames(prep, chain, noise, along):
         sub = chain[:: max(1, len(chain) // 40)]
     static = np.median(prep.z[sub], axis=0)
     tex = _texture_about(prep.z, chain, static.astype(np.float32), prep.plate_ok)
-    sig2 = np.maximum(tex ** 2 - noise ** 2, 0.0)
-    return sig2 >= 0.25 * float(np.median(sig2))
+    sig2 = np.maximum(tex ** 2 - float(noise) ** 2, 0.0)
+    return sig2, float(np.median(sig2))
+
+
+def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r_n):
+    """Frames in the middle of the swipe that show no texture at all (a band of the finger
+    without ridges, a crease or a scar, at least as wide as the strip) cannot be registered:
+    what they match is noise, no frame overlaps the texture on both sides, and the link
+    across them used to be taken for a too-fast jump (a gap pushed to at least a strip
+    length). A run of faint frames with blank ones among them (or frames where the finger
+    was not seen at all), with clear texture on both sides and long enough that at the
+    speed measured on both sides the finger travelled at least half a strip length in it
+    (a too-fast jump has a blurred frame or two, and slow frames around it), is carried at the mean of those
+    two velocities (exact for a constant acceleration); the frames after it keep their
+    placement relative to each other, the links in it are no gap, and its frames get a low
+    confidence (reported as low_confidence; still fused, since the band they show is real).
+    Returns positions, confidence, link_failed."""
+    if chain.size < 8:
+        return positions, confidence, link_failed
+    sig2, med = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
+    if med <= 0.0:
+        return positions, confidence, link_failed
+    t_n = positions.shape[0]
+    # per frame, over the finger's extent: faint (incl. not in contact) and blank
+    faint = np.zeros(t_n, dtype=bool)
+    blank = np.zeros(t_n, dtype=bool)
+    faint[chain[0]:chain[-1] + 1] = True
+    blank[chain[0]:chain[-1] + 1] = True
+    faint[chain] = sig2 < _FAINT_FRAC * med
+    blank[chain] = sig2 < _BLANK_FRAC * med
+    clear = np.zeros(t_n, dtype=bool)
+    clear[chain] = ~faint[chain]
+    positions = np.array(positions, dtype=np.float64, copy=True)
+    confidence = np.array(confidence, dtype=np.float64, copy=True)
+    link_failed = np.array(link_failed, dtype=bool, copy=True)
+    f = chain[0]
+    while f <= chain[-1]:
+        if not faint[f]:
+            f += 1
+            continue
+        a = f
+        while f <= chain[-1] and faint[f]:
+            f += 1
+        f0, f1 = a - 1, f                            # clear frames on either side
+        if f0 < chain[0] or f1 > chain[-1] or not blank[a:f1].any():
+            continue                                 # the finger's ends, or faint texture only
+        vel = []
+        for edge, side in ((f0, -1), (f1, 1)):
+            # clear frames next to the run over about a strip length of travel (at least R
+            # frames, at most 64): a slow swipe's speed from a few frames is noisy
+            m = 1
+            while (m < 64 and 0 <= edge + side * m < t_n and clear[edge + side * m]
+                   and (m < r_n or abs(positions[edge + side * m, 0] - positions[edge, 0]) < r_n)):
+                m += 1
+            lo, hi = sorted((edge, edge + side * (m - 1)))
+            if hi - lo >= 2 and times[hi] > times[lo]:
+                vel.append((positions[hi] - positions[lo]) / (times[hi] - times[lo]))
+        if len(vel) < 2:
+            continue
+        v = 0.5 * (vel[0] + vel[1])
+        dt = times[f1] - times[f0]
+        if f1 - f0 - 1 < _BRIDGE_MIN_FRAMES or np.hypot(*(v * dt)) < 0.5 * r_n:
+            continue                                 # too short for a blank band: a jump
+        new_f1 = positions[f0] + v * dt
+        positions[f1:] += new_f1 - positions[f1]
+        w = ((times[f0:f1 + 1] - times[f0]) / dt)[:, None]
+        positions[f0:f1 + 1] = positions[f0] + w * (new_f1 - positions[f0])
+        link_failed[f0:f1] = False
+        sigma = np.hypot(_BRIDGE_SIGMA_PX, 0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt)
+        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        run = np.arange(a, f1)
+        run = run[prep.contact[run]]
+        confidence[run] = np.minimum(confidence[run], conf)
+    return positions, confidence, link_failed
+
+
+# A frame is faint when its texture power (above the noise) is under this share of the
+# swipe's median, blank under the second (no texture left to register).
+_FAINT_FRAC = 0.25
+_BLANK_FRAC = 0.03
+# Placement error (px) assumed for frames carried across a blank run at the measured speed.
+_BRIDGE_SIGMA_PX = 0.5
+# A blank run has at least this many frames (a too-fast jump blurs one or two).
+_BRIDGE_MIN_FRAMES = 3
+
+
+def _strong_frames(prep, chain, noise, along):
+    """Frames with clear texture (for telling a gap from faint frames at the finger's ends):
+    signal power above the temporal noise (std ``noise``; at low SNR a blank frame's spread
+    is the noise) at least a quarter of the swipe's median (see _texture_power)."""
+    sig2, med = _texture_power(prep, chain, noise, along)
+    return sig2 >= _FAINT_FRAC * med
 
 
 def _gap_links(link_ok, strong):
