@@ -24,7 +24,7 @@ from _singular import (count_minutiae, count_singular_points, estimate_orientati
                        fft_peak_period, poincare_index)
 
 from stripstitch.simulate.finger import (PATTERNS, SKINS, Finger, make_finger,  # noqa: E402
-                                         orientation_field, texture_finger)
+                                         orientation_field, texture_finger, with_crease)
 
 _CACHE = {}
 
@@ -595,3 +595,42 @@ def test_texture_finger_gravel_swipe_end_to_end():
     assert cap.finger is f and cap.finger_info["pattern"] == "texture"
     full = cap.frames[cap.contact == 1.0].astype(float)
     assert full.std(axis=(1, 2)).min() > 5.0                   # texture, not a flat grey
+
+
+def test_crease_is_a_ridge_free_band_the_plates_see_as_flat():
+    # A crease: no ridges in the band, nothing in it touching the sensor. Checked on what the
+    # capture makes of it: over the band the noise-free frames are flat (a plate sees the
+    # parallel-plate capacitance of a uniform gap, common practice), elsewhere the ridges
+    # show; outside the band and its edges the finger is the same array for array.
+    from stripstitch import simulate
+
+    f = make_finger("whorl", size_mm=(10.0, 6.0), rng=2)
+    g = with_crease(f, at_mm=5.0, width_mm=0.8, edge_um=100.0)
+    rows = np.arange(f.ridge.shape[0]) * f.spacing_um
+    far = np.abs(rows - 5000.0) > 400.0 + 50.0
+    core = np.abs(rows - 5000.0) < 400.0 - 50.0
+    for name in ("ridge", "height_um", "air_gap_um", "fluid_um", "contact"):
+        np.testing.assert_array_equal(getattr(g, name)[far], getattr(f, name)[far])
+    assert (g.height_um[core] == 0.0).all() and (g.ridge[core] == -1.0).all()
+    # the gap in the band: the valley floor's plus the valley depth (the default depth)
+    np.testing.assert_allclose(g.air_gap_um[core], (f.air_gap_um + f.height_um)[core]
+                               + f.valley_depth_um)
+    cap = simulate.swipe("whorl", finger=g, n_rows=8, n_cols=64, frame_rate_hz=4000.0,
+                         speed_mm_s=100.0, snr_db=None, rng=0)
+    spread = np.asarray(cap.ideal_frames, dtype=float).std(axis=(1, 2))
+    seen = cap.contact >= 0.9
+    typical = np.median(spread[seen])
+    assert (spread[seen] < 0.01 * typical).sum() >= 10      # frames that saw only the band
+
+
+@pytest.mark.parametrize("kwargs, exc, match", [
+    (dict(finger=np.zeros((4, 4)), at_mm=1.0), TypeError, "finger must be a Finger"),
+    (dict(at_mm=1.0, width_mm=0.0), ValueError, "width_mm"),
+    (dict(at_mm=1.0, depth_um=-1.0), ValueError, "depth_um"),
+    (dict(at_mm=float("nan")), ValueError, "at_mm"),
+])
+def test_with_crease_bad_arguments(kwargs, exc, match):
+    kw = dict(finger=make_finger("arch", size_mm=(4.0, 4.0), rng=0))
+    kw.update(kwargs)
+    with pytest.raises(exc, match=match):
+        with_crease(kw.pop("finger"), **kw)

@@ -681,6 +681,27 @@ def test_ridge_free_band_is_crossed_at_the_measured_speed(seed):
     assert (res.confidence[inside] < 0.5).all()
 
 
+def test_simulated_crease_is_no_gap():
+    # A right loop with a 0.6 mm flexion crease (simulate.with_crease), an 8-row strip at
+    # 100 mm/s: frames in the middle of the swipe with no texture, the finger moving at
+    # 0.5 px per frame throughout (simulator truth: no gap). Measured before the band was
+    # bridged: a false gap, span +6.2 %, along RMS 7.7 px, image NCC 0.69; after: +0.015 %,
+    # 0.05 px, 0.98.
+    from stripstitch import evaluate, simulate
+
+    f = simulate.make_finger("right_loop", size_mm=(14.0, 12.0), rng=3)
+    cap = simulate.swipe("right_loop", finger=simulate.with_crease(f, at_mm=7.0, width_mm=0.6),
+                         rng=5, n_rows=8, n_cols=192, frame_rate_hz=4000.0, speed_mm_s=100.0,
+                         snr_db=25.0)
+    assert not cap.events_of("gap")
+    res = stitch(cap.frames, frame_rate_hz=4000.0, timestamps_s=cap.times_s)
+    assert not res.events_of("gap")
+    d = evaluate.evaluate(res, cap, distortion=False).to_dict()
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.2 %.
+    assert abs(d["span_error_pct"]) < 0.2
+    assert d["along_rms_px"] < 0.3 and d["ncc"] > 0.95
+
+
 def test_six_row_strip_at_speed_is_tracked():
     # A 6-row strip at 1.6 px per frame (a third of a 4-row overlap per frame): the pairwise
     # path drifted along (span +3.8 %, along RMS 2.0 px); the key-frame tracker, used from 6

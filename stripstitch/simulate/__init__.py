@@ -10,13 +10,14 @@ from __future__ import annotations
 import numpy as np
 
 from .capture import CONTACT_THRESHOLD, Capture, capture
-from .finger import PATTERNS, SKINS, Finger, make_finger, orientation_field, texture_finger
+from .finger import (PATTERNS, SKINS, Finger, make_finger, orientation_field, texture_finger,
+                     with_crease)
 from .frontend import EPS0_F_M, K_B_J_K, Layer, Readout, Sensor, SensorUnit
 from .motion import Motion, make_motion
 
 __all__ = ["PATTERNS", "SKINS", "orientation_field", "Readout", "EPS0_F_M", "K_B_J_K",
            "make_finger", "Finger", "Sensor", "Layer", "SensorUnit", "make_motion", "Motion",
-           "capture", "Capture", "swipe", "swipe_extent_um", "texture_finger"]
+           "capture", "Capture", "swipe", "swipe_extent_um", "texture_finger", "with_crease"]
 
 
 def swipe_extent_um(finger, sensor, *, margin_um=250.0):

@@ -27,7 +27,8 @@ from scipy import ndimage
 
 from .._validate import check_array, check_choice, check_in_range, check_positive, check_real
 
-__all__ = ["PATTERNS", "SKINS", "Finger", "make_finger", "orientation_field", "texture_finger"]
+__all__ = ["PATTERNS", "SKINS", "Finger", "make_finger", "orientation_field", "texture_finger",
+           "with_crease"]
 
 #: Pattern classes :func:`make_finger` can draw.
 PATTERNS = ("arch", "tented_arch", "left_loop", "right_loop", "whorl", "twin_loop")
@@ -690,6 +691,63 @@ _MAD_TO_STD = 1.4826          # MAD of a normal distribution x 1.4826 = its std 
 _MAX_PIXEL_UM = 200.0         # coarsest accepted texture pixel (4 sensor pitches of 50.8 um)
 _MIN_IMAGE_PX = 16            # smallest accepted image side
 _SPECTRUM_CROP_PX = 1024      # the period is estimated on a central crop at most this big
+
+
+def with_crease(finger, *, at_mm, width_mm=0.6, depth_um=None, edge_um=100.0):
+    """The same finger with a flexion crease: a band across it without ridges.
+
+    A crease (the skin folding at a joint, or a scar) is a groove: no ridges, the skin a
+    little below the valley floor, so nothing in it touches the sensor. Within the band the
+    ridges fade out (cosine edges of ``edge_um``) and the air gap becomes the valley floor's
+    plus ``depth_um``. A band at least as wide as a strip's rows leaves frames with no texture
+    at all in the middle of a swipe.
+
+    Parameters
+    ----------
+    finger : Finger
+        From :func:`make_finger` or :func:`texture_finger`.
+    at_mm : float
+        Centre of the band along the finger (axis 0), mm from the centre of the first grid row.
+    width_mm : float, optional
+        Width of the ridge-free band (between the edges' midpoints), mm, > 0. Default is 0.6.
+    depth_um : float or None, optional
+        Depth of the groove below the valley floor, um, >= 0. None: the finger's valley depth.
+    edge_um : float, optional
+        Width of each cosine edge, um, >= 0. Default is 100.
+
+    Returns
+    -------
+    Finger
+
+    Examples
+    --------
+    >>> f = make_finger("arch", size_mm=(8.0, 6.0), rng=0)
+    >>> g = with_crease(f, at_mm=4.0, width_mm=0.8)
+    >>> mid = int(round(4000.0 / f.spacing_um))
+    >>> bool(g.height_um[mid].max() == 0.0 and (g.air_gap_um[mid] >= f.valley_depth_um).all())
+    True
+    >>> bool(np.array_equal(g.air_gap_um[:100], f.air_gap_um[:100]))
+    True
+    """
+    if not isinstance(finger, Finger):
+        raise TypeError(f"finger must be a Finger (from make_finger or texture_finger); "
+                        f"got {type(finger).__name__}")
+    at = check_real(at_mm, name="at_mm") * 1000.0
+    width = check_positive(width_mm, name="width_mm") * 1000.0
+    depth = finger.valley_depth_um if depth_um is None else check_positive(
+        depth_um, name="depth_um", allow_zero=True)
+    edge = check_positive(edge_um, name="edge_um", allow_zero=True)
+    y = np.arange(finger.ridge.shape[0], dtype=np.float64)[:, None] * finger.spacing_um
+    # 1 inside the band, 0 outside, cosine ramps of ``edge`` centred on its limits
+    d = np.abs(y - at) - 0.5 * width
+    ramp = np.clip(0.5 - d / edge, 0.0, 1.0) if edge > 0 else (d <= 0).astype(np.float64)
+    w = 0.5 - 0.5 * np.cos(np.pi * ramp)
+    floor = finger.air_gap_um + finger.height_um          # the valley floor's gap
+    gap = (1.0 - w) * finger.air_gap_um + w * (floor + depth)
+    fields = {name: getattr(finger, name) for name in finger.__dataclass_fields__}
+    fields.update(ridge=(1.0 - w) * finger.ridge - w, height_um=(1.0 - w) * finger.height_um,
+                  air_gap_um=gap, fluid_um=np.minimum(finger.fluid_um, gap))
+    return Finger(**fields)
 
 
 def texture_finger(image, *, pixel_um=25.4, valley_depth_um=50.0, pressure=0.5, highpass_px=16.0):
