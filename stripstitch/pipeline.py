@@ -379,9 +379,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                 positions = _across_drift_from(positions, placed[0], prep.contact, r_n)
     if delay_steps is not None:
         positions = _with_along_steps(positions, delay_steps)
-    positions, confidence, link_failed = _bridge_blank_runs(prep, chain, positions, confidence,
-                                                            link_failed, times, r_n)
+    positions, confidence, link_failed, blank_runs = _bridge_blank_runs(
+        prep, chain, positions, confidence, link_failed, times, r_n)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
+                   blank_runs=blank_runs,
                    dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
                    pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
                        "pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
@@ -555,12 +556,13 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     two velocities (exact for a constant acceleration); the frames after it keep their
     placement relative to each other, the links in it are no gap, and its frames get a low
     confidence (reported as low_confidence; still fused, since the band they show is real).
-    Returns positions, confidence, link_failed."""
+    Returns positions, confidence, link_failed and the bridged runs: (first frame, last
+    frame, travel px, uncertainty px) each."""
     if chain.size < 8:
-        return positions, confidence, link_failed
+        return positions, confidence, link_failed, []
     sig2, med = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
     if med <= 0.0:
-        return positions, confidence, link_failed
+        return positions, confidence, link_failed, []
     t_n = positions.shape[0]
     # per frame, over the finger's extent: faint (incl. not in contact) and blank
     faint = np.zeros(t_n, dtype=bool)
@@ -574,6 +576,7 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     positions = np.array(positions, dtype=np.float64, copy=True)
     confidence = np.array(confidence, dtype=np.float64, copy=True)
     link_failed = np.array(link_failed, dtype=bool, copy=True)
+    runs = []
     f = chain[0]
     while f <= chain[-1]:
         if not faint[f]:
@@ -638,12 +641,15 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         w = ((times[f0:f1 + 1] - times[f0]) / dt)[:, None]
         positions[f0:f1 + 1] = positions[f0] + w * (new_f1 - positions[f0])
         link_failed[f0:f1] = False
-        sigma = np.hypot(_BRIDGE_SIGMA_PX, 0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt)
+        travel = float(np.hypot(*(v * dt)))
+        sigma = float(np.sqrt(_BRIDGE_SIGMA_PX ** 2 + (0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt)
+                              ** 2 + (_BRIDGE_SPEED_FRAC * travel) ** 2))
         conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
-        run = np.arange(a, f1)
+        run = np.arange(f0 + 1, f1)
         run = run[prep.contact[run]]
         confidence[run] = np.minimum(confidence[run], conf)
-    return positions, confidence, link_failed
+        runs.append((int(f0 + 1), int(f1 - 1), travel, sigma))
+    return positions, confidence, link_failed, runs
 
 
 # A frame is faint when its texture power (above the noise) is under this share of the
@@ -652,6 +658,10 @@ _FAINT_FRAC = 0.25
 _BLANK_FRAC = 0.03
 # Placement error (px) assumed for frames carried across a blank run at the measured speed.
 _BRIDGE_SIGMA_PX = 0.5
+# ... plus this share of the travel across the run: the speed within it is not measured (on
+# bench_bands.py's human-profile swipes the speed dipped inside two bands, by a quarter of
+# the travel across them; constant and accelerating ones erred by under 2 %).
+_BRIDGE_SPEED_FRAC = 0.15
 # A blank run has at least this many frames (a too-fast jump blurs one or two).
 _BRIDGE_MIN_FRAMES = 3
 
@@ -1068,7 +1078,7 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
 
 
 def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, dt_frames, times,
-            frame_rate_hz, pitch_um, out_pitch_um, options):
+            frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=()):
     """Fusion, events and report."""
     r_n = prep.z.shape[1]
     # ---- fusion ----
@@ -1094,7 +1104,7 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
                                  confidence=confidence, contact=prep.contact,
                                  link_failed=link_failed, link_dt_frames=dt_frames,
                                  times_s=times, frame_rate_hz=frame_rate_hz, n_rows=r_n,
-                                 pitch_um=pitch_um)
+                                 pitch_um=pitch_um, blank_runs=blank_runs)
     rep = _report.make_report(events=events, positions=positions, angles_deg=angles_deg,
                               confidence=confidence, contact=prep.contact, times_s=times,
                               frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,

@@ -53,7 +53,7 @@ def _stall_rule(positions, times_s, frame_rate_hz, pitch_um, *, stall_speed_mm_s
 def find_events(*, positions, angles_deg, confidence, contact, link_failed, link_dt_frames,
                 times_s, frame_rate_hz, n_rows, pitch_um, stall_speed_mm_s=2.0,
                 min_stall_s=0.01, min_backtrack_px=1.0, skew_limit_deg=3.0,
-                rotation_limit_deg=1.0, low_confidence=0.5):
+                rotation_limit_deg=1.0, low_confidence=0.5, blank_runs=()):
     """Find the swipe's events from the solved trajectory.
 
     Parameters
@@ -71,6 +71,9 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     frame_rate_hz : float or None
     n_rows : int
     pitch_um : float
+    blank_runs : sequence of (first, last, travel_px, uncertainty_px), optional
+        Frames with no texture that were carried across at the measured speed (reported as
+        low_confidence with cause "no_texture"). Default none.
 
     Returns
     -------
@@ -130,8 +133,18 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
             events.append(Event("backtrack", a, b, {
                 "distance_px": round(dist, 2), "distance_mm": round(dist * pitch_um / 1000, 3),
                 "from_px": round(float(positions[a, 0]), 2)}))
-    # Low confidence over contact frames.
+    # Stretches with no texture at all (a crease or scar), crossed at the measured speed:
+    # low confidence with their cause, the travel and its uncertainty.
     low = (confidence < low_confidence) & contact
+    for a, b, travel_px, sigma_px in blank_runs:
+        events.append(Event("low_confidence", int(a), int(b), {
+            "frames": int(b - a + 1), "cause": "no_texture",
+            "min_confidence": round(float(confidence[a:b + 1].min()), 3),
+            "travel_px": round(float(travel_px), 2),
+            "travel_mm": round(float(travel_px) * pitch_um / 1000, 3),
+            "uncertainty_px": round(float(sigma_px), 2)}))
+        low[a:b + 1] = False
+    # Low confidence over contact frames.
     for a, b in _runs(low):
         if b - a + 1 >= 3:
             events.append(Event("low_confidence", a, b, {
@@ -217,7 +230,15 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
     if mean_conf < 0.5:
         verdict = "unusable"
         reasons.append(f"placement unreliable (mean confidence {mean_conf:.2f})")
-    n_low = counts.get("low_confidence", 0)
+    blank = [e for e in events if e.kind == "low_confidence"
+             and e.details.get("cause") == "no_texture"]
+    if blank:
+        mm = sum(e.details["travel_mm"] for e in blank)
+        unc = float(np.sqrt(sum(e.details["uncertainty_px"] ** 2 for e in blank))) * pitch_um / 1000
+        reasons.append(f"{len(blank)} stretch(es) with no ridges (a crease or scar?), {mm:.1f} mm "
+                       f"in all, crossed at the swipe's speed: length there uncertain by about "
+                       f"{unc:.2f} mm")
+    n_low = counts.get("low_confidence", 0) - len(blank)
     if n_low and mean_conf >= 0.5:
         reasons.append(f"{n_low} stretch(es) of low placement confidence (e.g. ridges parallel "
                        "to the swipe)")

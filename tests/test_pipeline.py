@@ -700,6 +700,14 @@ def test_simulated_crease_is_no_gap():
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.2 %.
     assert abs(d["span_error_pct"]) < 0.2
     assert d["along_rms_px"] < 0.3 and d["ncc"] > 0.95
+    # Reported with its cause, and the travel across it within its stated uncertainty of the
+    # simulator's (frame before the run to frame after it).
+    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
+    assert len(band) == 1
+    a, b = band[0].first_frame - 1, band[0].last_frame + 1
+    true_px = float(np.hypot(*(cap.positions[b] - cap.positions[a])))
+    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+    assert any("no ridges" in r for r in res.report.reasons)
 
 
 def test_six_row_strip_at_speed_is_tracked():
