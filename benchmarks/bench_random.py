@@ -8,9 +8,12 @@ accelerating-decelerating), 40 to 200 mm/s, 12 to 40 dB, a skew within 8 degrees
 up to 4 degrees in one swipe of three, a stall in about 30 % and a backtrack in about 30 %.
 Span, along, across and rotation errors against the simulator's truth, and every scored event
 (gap, stall, backtrack: stripstitch.evaluate) reported or missed, with reports where the truth
-has none; the streaming stitcher (fed frame by frame) beside the batch modes. Writes
-benchmarks/results/random[_quick].json/.md. Synthetic prints; speeds are an unsourced
-modelling assumption (REFERENCE-VALUES.md section 7).
+has none; the streaming stitcher (fed frame by frame) beside the batch modes. Fingers are
+12 x 10 mm (along x across) unless ``--finger-mm`` asks for others (e.g. 18 14, nearer an
+adult fingertip's pad, which adds the straight, nearly parallel ridges below the core and at
+the tip). Writes benchmarks/results/random[_quick].json/.md (random_finger<L>x<W>... with
+``--finger-mm``). Synthetic prints; speeds are an unsourced modelling assumption
+(REFERENCE-VALUES.md section 7).
 """
 
 from __future__ import annotations
@@ -46,9 +49,9 @@ def case(i, seed0):
 
 
 def run(args):
-    i, seed0 = args
+    i, seed0, finger_mm = args
     pattern, p, finger_seed, seed = case(i, seed0)
-    finger = simulate.make_finger(pattern, size_mm=(12.0, 10.0), rng=finger_seed)
+    finger = simulate.make_finger(pattern, size_mm=finger_mm, rng=finger_seed)
     cap = simulate.swipe(pattern, finger=finger, rng=seed, **p)
     desc = (f"{pattern} {p['n_rows']}x{p['n_cols']} {p['profile']} {p['speed_mm_s']:.0f} mm/s "
             f"{p['snr_db']:.0f} dB skew {p['skew_deg']:.1f} turn {p['rotation_deg']:.1f}"
@@ -76,10 +79,16 @@ def main(argv=None):
     ap.add_argument("--quick", action="store_true", help="eight swipes")
     ap.add_argument("--seed", type=int, default=7000)
     ap.add_argument("--workers", type=int, default=2, help="processes (default 2)")
+    ap.add_argument("--finger-mm", type=float, nargs=2, default=(12.0, 10.0),
+                    metavar=("ALONG", "ACROSS"), help="finger size in mm (default 12 10)")
     args = ap.parse_args(argv)
     n = 8 if args.quick else 64
+    finger_mm = tuple(float(v) for v in args.finger_mm)
+    if min(finger_mm) <= 0:
+        ap.error(f"--finger-mm must be two positive sizes in mm; got {args.finger_mm}")
     with ProcessPoolExecutor(args.workers) as ex:
-        rows = [r for rs in ex.map(run, [(i, args.seed) for i in range(n)]) for r in rs]
+        rows = [r for rs in ex.map(run, [(i, args.seed, finger_mm) for i in range(n)])
+                for r in rs]
     summary = {}
     for mode in MODES:
         mine = [r for r in rows if r["mode"] == mode]
@@ -109,13 +118,14 @@ def main(argv=None):
              "stalls found", "stalls", "backtracks found", "backtracks", "false stalls",
              "false backtracks", "false gaps"]
     md = (f"# Random swipes{' (quick)' if args.quick else ''}\n\n{n} swipes with random settings "
-          f"(seed {args.seed}; see case()), fast mode and the streaming stitcher ignore "
-          f"rotation:\n\n" + "\n".join(lines)
+          f"(seed {args.seed}; see case()), fingers {finger_mm[0]:g} x {finger_mm[1]:g} mm, "
+          f"fast mode and the streaming stitcher ignore rotation:\n\n" + "\n".join(lines)
           + "\n\n" + table(rows, cols, heads) + "\n")
     print(md)
-    paths = write("random_quick" if args.quick else "random",
-                  {"environment": environment(), "seed": args.seed, "rows": rows,
-                   "summary": summary}, md)
+    name = "random" if finger_mm == (12.0, 10.0) else f"random_finger{finger_mm[0]:g}x{finger_mm[1]:g}"
+    paths = write(name + ("_quick" if args.quick else ""),
+                  {"environment": environment(), "seed": args.seed, "finger_mm": list(finger_mm),
+                   "rows": rows, "summary": summary}, md)
     print("wrote", *paths)
     return 0
 
