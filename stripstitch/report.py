@@ -13,6 +13,15 @@ from ._types import Event, QualityReport
 __all__ = ["find_events", "make_report"]
 
 
+# Strips with fewer usable plates than these are unusable / less reliable. 24 simulated
+# swipes (2-8 rows x 16-128 columns, right loop and whorl, 30 dB, half a row per frame at
+# most): under 128 plates (2x16, 2x32, 3x32, 4x16, 6x16) every swipe erred by 0.9-92 % of its
+# span or 1-27 px across, most of them by several; 128-255 plates (2x64, 4x32, 8x16, 6x32,
+# 8x24) 0.2-9 % and 0.3-9 px across; 256 (2x128, 4x64) 0.04-0.6 %, 0.1-2.2 px across.
+MIN_PLATES = 128
+FEW_PLATES = 256
+
+
 def _runs(mask):
     """(start, stop_inclusive) of runs of True in a 1-D boolean array."""
     m = np.asarray(mask, dtype=bool)
@@ -161,8 +170,12 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
 
 
 def make_report(*, events, positions, angles_deg, confidence, contact, times_s, frame_rate_hz,
-                n_rows, pitch_um, image, min_length_mm=5.0):
-    """Summarise a reconstruction: figures, a verdict and reasons a driver could show a user."""
+                n_rows, pitch_um, image, min_length_mm=5.0, n_plates=None):
+    """Summarise a reconstruction: figures, a verdict and reasons a driver could show a user.
+
+    ``n_plates``: usable plates of the strip, if known. Under ``MIN_PLATES`` the verdict is
+    unusable, under ``FEW_PLATES`` a reason says the placement is less reliable.
+    """
     idx = np.flatnonzero(contact)
     counts = {}
     for e in events:
@@ -219,6 +232,13 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
         verdict = "unusable"
         reasons.append(f"{len(lost)} gap(s) after dropped frames with no overlap; an unknown "
                        "stretch of finger was not seen")
+    if n_plates is not None and n_plates < MIN_PLATES:
+        verdict = "unusable"
+        reasons.append(f"the strip has only {n_plates} usable plates: too little texture per "
+                       f"frame to place the frames reliably (fewer than {MIN_PLATES})")
+    elif n_plates is not None and n_plates < FEW_PLATES:
+        reasons.append(f"small strip ({n_plates} usable plates): placement less reliable, "
+                       "errors of several pixels and percent are possible")
     bridged = [e for e in gaps if e.details.get("bridged", False)]
     if bridged:
         reasons.append(f"{len(bridged)} run(s) of dropped frames bridged by overlap; placement "
