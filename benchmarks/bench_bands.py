@@ -126,7 +126,8 @@ def main(argv=None):
     lines = [f"- {m}: span error median {fmt(s.get('median_abs_span_error_pct'))} %, worst "
              f"{fmt(s.get('worst_abs_span_error_pct'))} % ({s.get('swipes_over_1pct')} over 1 %), "
              f"along / across RMS median {fmt(s.get('median_along_rms_px'))} / "
-             f"{fmt(s.get('median_across_rms_px'))} px, image NCC median {fmt(s.get('median_ncc'))}, "
+             f"{fmt(s.get('median_across_rms_px'))} px, image NCC median "
+             f"{fmt(s.get('median_ncc'))}, "
              f"false gap/stall/backtrack events {s['false_events']}, bands flagged "
              f"{s['bands_flagged']}" + (f", failed {s['failed']}" if s["failed"] else "")
              for m, s in summary.items()]

@@ -122,7 +122,8 @@ def main(argv=None):
           f"fast mode and the streaming stitcher ignore rotation:\n\n" + "\n".join(lines)
           + "\n\n" + table(rows, cols, heads) + "\n")
     print(md)
-    name = "random" if finger_mm == (12.0, 10.0) else f"random_finger{finger_mm[0]:g}x{finger_mm[1]:g}"
+    name = ("random" if finger_mm == (12.0, 10.0)
+            else f"random_finger{finger_mm[0]:g}x{finger_mm[1]:g}")
     paths = write(name + ("_quick" if args.quick else ""),
                   {"environment": environment(), "seed": args.seed, "finger_mm": list(finger_mm),
                    "rows": rows, "summary": summary}, md)

@@ -555,12 +555,12 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     length). A run of faint frames with blank ones among them (or frames where the finger
     was not seen at all), with clear texture on both sides and long enough that at the
     speed measured on both sides the finger travelled at least half a strip length in it
-    (a too-fast jump has a blurred frame or two, and slow frames around it), is carried at the mean of those
-    two velocities (exact for a constant acceleration); the frames after it keep their
-    placement relative to each other, the links in it are no gap, and its frames get a low
-    confidence (reported as low_confidence; still fused, since the band they show is real).
-    Returns positions, confidence, link_failed and the bridged runs: (first frame, last
-    frame, travel px, uncertainty px) each."""
+    (a too-fast jump has a blurred frame or two, and slow frames around it), is carried at
+    the mean of those two velocities (exact for a constant acceleration); the frames after
+    it keep their placement relative to each other, the links in it are no gap, and its
+    frames get a low confidence (reported as low_confidence; still fused, since the band
+    they show is real). Returns positions, confidence, link_failed and the bridged runs:
+    (first frame, last frame, travel px, uncertainty px) each."""
     if chain.size < 8:
         return positions, confidence, link_failed, []
     sig2, med = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
@@ -645,8 +645,9 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         positions[f0:f1 + 1] = positions[f0] + w * (new_f1 - positions[f0])
         link_failed[f0:f1] = False
         travel = float(np.hypot(*(v * dt)))
-        sigma = float(np.sqrt(_BRIDGE_SIGMA_PX ** 2 + (0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt)
-                              ** 2 + (_BRIDGE_SPEED_FRAC * travel) ** 2))
+        disagree = 0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt
+        sigma = float(np.sqrt(_BRIDGE_SIGMA_PX ** 2 + disagree ** 2
+                              + (_BRIDGE_SPEED_FRAC * travel) ** 2))
         conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
         run = np.arange(f0 + 1, f1)
         run = run[prep.contact[run]]
