@@ -553,9 +553,10 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     what they match is noise, no frame overlaps the texture on both sides, and the link
     across them used to be taken for a too-fast jump (a gap pushed to at least a strip
     length). A run of faint frames with blank ones among them (or frames where the finger
-    was not seen at all), with clear texture on both sides and long enough that at the
-    speed measured on both sides the finger travelled at least half a strip length in it
-    (a too-fast jump has a blurred frame or two, and slow frames around it), is carried at
+    was not seen at all), with clear texture on both sides, of at least _BRIDGE_MIN_FRAMES
+    frames or 3 with some out of contact (a too-fast jump blurs a few frames, in contact)
+    and long enough that at the speed measured on both
+    sides the finger travelled at least half a strip length in it, is carried at
     the mean of those two velocities (exact for a constant acceleration); the frames after
     it keep their placement relative to each other, the links in it are no gap, and its
     frames get a low confidence (reported as low_confidence; still fused, since the band
@@ -619,7 +620,10 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
             continue
         v = 0.5 * (vel[0] + vel[1])
         dt = times[f1] - times[f0]
-        if f1 - f0 - 1 < _BRIDGE_MIN_FRAMES or np.hypot(*(v * dt)) < 0.5 * r_n:
+        n_run = f1 - f0 - 1
+        unseen = n_run > int(np.count_nonzero(prep.contact[a:f1]))
+        if (n_run < _BRIDGE_MIN_FRAMES and not (unseen and n_run >= 3)) \
+                or np.hypot(*(v * dt)) < 0.5 * r_n:
             continue                                 # too short for a blank band: a jump
         # The first registrations after the band (and the last before it) are searches
         # that can land a ridge period off (a simulated whorl: a 7.7 px step between two
@@ -666,8 +670,13 @@ _BRIDGE_SIGMA_PX = 0.5
 # bench_bands.py's human-profile swipes the speed dipped inside two bands, by a quarter of
 # the travel across them; constant and accelerating ones erred by under 2 %).
 _BRIDGE_SPEED_FRAC = 0.15
-# A blank run has at least this many frames (a too-fast jump blurs one or two).
-_BRIDGE_MIN_FRAMES = 3
+# A blank run has at least this many frames, or at least 3 of which some show no finger at
+# all: a too-fast jump blurs a few frames to blank, but the finger is still seen on them (the
+# demo's 16x128 swipe jumping 24 px per frame for three frames; with 3 here it was bridged,
+# called usable and came out 34 px off), while a crease's skin does not touch the sensor and
+# a band of a photograph as wide as the strip lasts longer (10-50 frames on bench_bands.py's
+# swipes).
+_BRIDGE_MIN_FRAMES = 6
 
 
 def _strong_frames(prep, chain, noise, along):

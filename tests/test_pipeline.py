@@ -756,3 +756,22 @@ def test_verdict_follows_the_strip_size(tex, n_rows, n_cols, verdict, note):
         assert not hits
     else:
         assert len(hits) == 1 and note in hits[0]
+
+
+def test_demo_too_fast_swipe_stays_a_gap():
+    # The bundled demo swipe that jumps 24 px per frame for three frames on a 16-row strip
+    # (simulator truth: a gap): the jump blurs those frames to blank, which must not be taken
+    # for a ridge-free band (measured with three blank frames allowed for a band: bridged at
+    # the speed around it, called usable, 34 px RMS off along).
+    from pathlib import Path
+
+    from stripstitch import evaluate, simulate
+
+    cap = simulate.Capture.from_npz(Path(__file__).parents[1] / "demo_data"
+                                    / "fast_gap_16x128_2khz.npz")
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    assert res.report.verdict == "unusable"
+    assert [e for e in res.events_of("gap") if e.details["reason"] == "too_fast"]
+    assert not [e for e in res.events_of("low_confidence") if e.details.get("cause")]
+    d = evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()
+    assert d["along_rms_px"] < 3.0
