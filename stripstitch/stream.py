@@ -61,6 +61,13 @@ __all__ = ["StreamingStitcher", "StreamUpdate"]
 MODES = ("default", "fast")
 
 
+# Texture power (share of the typical frame's) under which a frame shows no texture at all
+# (pipeline._BLANK_FRAC: the batch path's blank frame).
+_BLANK_FRAC = 0.03
+# Clear frames whose mean step carries a blank run (see StreamingStitcher._carry_blank).
+_CARRY_FRAMES = 8
+
+
 @dataclass(frozen=True, eq=False)
 class StreamUpdate:
     """What one ``push`` (or ``finish``) made final.
@@ -309,6 +316,12 @@ class StreamingStitcher:
         self._tr_lead_done = False        # the arrival placed (tracked backwards)
         self._tr_off = np.zeros(2)        # the frame tracker's origin in the swipe's frame
         self._lead_in = w // 2            # frames of the arrival tracked backwards
+        # Blank runs (see _carry_blank): the last clear placed frames (time, position), and
+        # the run being carried (anchor time, anchor position, velocity) or None.
+        self._clear_hist = []
+        self._carry = None
+        self._after = None                # (frames left, velocity) checked after a run
+        self._last_out = None             # (time, position) of the last frame placed
         # Counters.
         self._n = 0                # frames pushed
         self._n_est = 0            # frames whose pairs are estimated
@@ -839,12 +852,12 @@ class StreamingStitcher:
         self._lead_fp = True
         return True
 
-    def _clear_texture(self, tex):
+    def _clear_texture(self, tex, frac=0.25):
         """Frames of clear texture: signal power above the quietest frame's (noise and fixed
-        pattern) at least a quarter of the typical frame's (the batch path's rule, with the
-        quietest frame so far for the noise)."""
+        pattern) at least a quarter (``frac``) of the typical frame's (the batch path's rule,
+        with the quietest frame so far for the noise)."""
         floor2 = self._tr_tex_min ** 2
-        return tex ** 2 - floor2 >= 0.25 * max(self._tex_hi ** 2 - floor2, 0.0)
+        return tex ** 2 - floor2 >= frac * max(self._tex_hi ** 2 - floor2, 0.0)
 
     def _tracker_input(self, sl, first):
         """Frames of ring slots ``sl`` as the tracker takes them (prepared now: those that
@@ -942,9 +955,85 @@ class StreamingStitcher:
             self._new_tracker()
         zt, tt = self._tracker_input(sl, a)
         out = self._tracker.push(zt, times=tt)
-        self._store_tracked(sl, out["positions"] + self._tr_off, out["link_ok"],
+        placed = out["reference"] >= 0
+        tex = self._tex[sl]
+        pos = self._carry_blank(out["positions"] + self._tr_off, self._clear_texture(tex),
+                                self._clear_texture(tex, _BLANK_FRAC), tt)
+        self._store_tracked(sl, pos, out["link_ok"],
                             _with_model_error(out["info"], out["displacement"]),
-                            (out["reference"] >= 0).astype(np.float64))
+                            placed.astype(np.float64))
+
+    def _carry_blank(self, pos, strong, textured, tt):
+        """A frame with no texture at all (``textured`` False: a band of the finger without
+        ridges, a crease or a scar) starts a run carried at the velocity of the last clear
+        frames before it (the mean step over up to 32 of them, without steps far from the
+        median), from the last clear frame, up to and including the next clear frame
+        (``strong``; its registration was against a blank frame): what such frames
+        register against is noise, and the faint frames at a band's edge had bent the
+        filter's velocity (exact-shift frames across a 16 px band at 0.5 px per frame:
+        carried at 1.0-1.2 px per frame, 14 px off after the band). For a strip's height
+        of frames after the run, a step that disagrees with that velocity by more than a
+        quarter strip is taken as the velocity's (the first registrations after a band can
+        land a ridge period off, as in the batch path). The frames after move with it (the
+        tracker's origin is shifted). Causal and frame by frame, so the result does not
+        depend on the batching."""
+        pos = np.array(pos, dtype=np.float64, copy=True)
+        if self._carry is None and self._after is None and np.all(textured):
+            # the usual batch: nothing to carry, only the history of clear frames to keep
+            for i in np.flatnonzero(strong)[-32:]:
+                self._clear_hist.append((float(tt[i]), pos[i].copy()))
+            del self._clear_hist[:-32]
+            if len(pos):
+                self._last_out = (float(tt[-1]), pos[-1].copy())
+            return pos
+        r_n = self._shape[0]
+        tol = max(1.0, 0.25 * r_n)
+
+        def move(i, want):
+            shift = want - pos[i]
+            pos[i:] += shift
+            self._tr_off = self._tr_off + shift
+
+        for i in range(len(pos)):
+            if self._carry is None and self._after is not None and self._last_out is not None:
+                left, v = self._after
+                t1, p1 = self._last_out
+                want = p1 + v * (tt[i] - t1)
+                if np.hypot(*(pos[i] - want)) > tol:
+                    move(i, want)
+                self._after = (left - 1, v) if left > 1 else None
+            if strong[i]:
+                if self._carry is not None:
+                    # the first clear frame after the run: its registration was against a
+                    # blank frame, so it too goes where the carried speed puts it
+                    t0, p0, v = self._carry
+                    move(i, p0 + v * (tt[i] - t0))
+                    self._after = (r_n, v)
+                self._carry = None
+            elif self._carry is None and not textured[i] and len(self._clear_hist) >= 4:
+                # the most recent clear frames (a human swipe speeds up and slows down:
+                # over 32 frames the speed lagged a slowing finger by a fifth)
+                t_h = np.array([h[0] for h in self._clear_hist[-_CARRY_FRAMES:]])
+                p_h = np.array([h[1] for h in self._clear_hist[-_CARRY_FRAMES:]])
+                dt_h = np.diff(t_h)
+                ok = dt_h > 0
+                st = np.diff(p_h, axis=0)[ok]
+                dk = dt_h[ok]
+                if dk.size >= 3:
+                    med = np.median(st / dk[:, None], axis=0)
+                    keep = np.hypot(*(st - med * dk[:, None]).T) <= 0.5
+                    if keep.sum() >= 3:
+                        self._carry = (t_h[-1], p_h[-1], st[keep].sum(axis=0) / dk[keep].sum())
+                        self._after = None
+            if self._carry is not None:
+                t0, p0, v = self._carry
+                move(i, p0 + v * (tt[i] - t0))
+            elif strong[i]:
+                self._clear_hist.append((float(tt[i]), pos[i].copy()))
+                if len(self._clear_hist) > 32:
+                    del self._clear_hist[0]
+            self._last_out = (float(tt[i]), pos[i].copy())
+        return pos
 
     def _recent_steps(self, lo, a):
         if a - lo < 2:
