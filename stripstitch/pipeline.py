@@ -547,6 +547,24 @@ def _texture_power(prep, chain, noise, along):
     return sig2, float(np.median(sig2))
 
 
+def _steady_velocity(times, positions, min_steps):
+    """Velocity (px per time unit) of frames at ``times``, ``positions``: the mean step
+    without the steps more than half a pixel from the median one (a registration that
+    landed a ridge period off; the median alone is biased where the steps alternate, as
+    pixel locking leaves them). None with fewer than ``min_steps`` steps kept."""
+    dt_k = np.diff(np.asarray(times, dtype=np.float64))
+    ok = dt_k > 0
+    st = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[ok]
+    dk = dt_k[ok]
+    if dk.size < min_steps:
+        return None
+    med_v = np.median(st / dk[:, None], axis=0)
+    keep = np.hypot(*(st - med_v * dk[:, None]).T) <= 0.5
+    if keep.sum() < min_steps:
+        return None
+    return st[keep].sum(axis=0) / dk[keep].sum()
+
+
 def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r_n):
     """Frames in the middle of the swipe that show no texture at all (a band of the finger
     without ridges, a crease or a scar, at least as wide as the strip) cannot be registered:
@@ -605,17 +623,9 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
                 m += 1
             lo, hi = sorted((edge, edge + side * (m - 1)))
             if hi - lo >= 2 and times[hi] > times[lo]:
-                # the mean step without the steps far from the median (the first
-                # registrations after a blank run can jump a ridge period; the median alone
-                # is biased where the steps alternate, as pixel locking leaves them)
-                dt_k = np.diff(times[lo:hi + 1])
-                ok = dt_k > 0
-                st = np.diff(positions[lo:hi + 1], axis=0)[ok]
-                dk = dt_k[ok]
-                med_v = np.median(st / dk[:, None], axis=0)
-                keep = np.hypot(*(st - med_v * dk[:, None]).T) <= 0.5
-                if keep.sum() >= 2:
-                    vel.append(st[keep].sum(axis=0) / dk[keep].sum())
+                v_side = _steady_velocity(times[lo:hi + 1], positions[lo:hi + 1], 2)
+                if v_side is not None:
+                    vel.append(v_side)
         if len(vel) < 2:
             continue
         v = 0.5 * (vel[0] + vel[1])

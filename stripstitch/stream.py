@@ -50,7 +50,7 @@ from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
 from . import mosaic as _mosaic
-from .pipeline import _TRACK_MIN_ROWS, _plate_line_sums, _with_model_error
+from .pipeline import _TRACK_MIN_ROWS, _plate_line_sums, _steady_velocity, _with_model_error
 from .pipeline import _confidence as _frame_confidence
 from ._jit import JIT
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
@@ -1015,16 +1015,10 @@ class StreamingStitcher:
                 # over 32 frames the speed lagged a slowing finger by a fifth)
                 t_h = np.array([h[0] for h in self._clear_hist[-_CARRY_FRAMES:]])
                 p_h = np.array([h[1] for h in self._clear_hist[-_CARRY_FRAMES:]])
-                dt_h = np.diff(t_h)
-                ok = dt_h > 0
-                st = np.diff(p_h, axis=0)[ok]
-                dk = dt_h[ok]
-                if dk.size >= 3:
-                    med = np.median(st / dk[:, None], axis=0)
-                    keep = np.hypot(*(st - med * dk[:, None]).T) <= 0.5
-                    if keep.sum() >= 3:
-                        self._carry = (t_h[-1], p_h[-1], st[keep].sum(axis=0) / dk[keep].sum())
-                        self._after = None
+                v = _steady_velocity(t_h, p_h, 3)
+                if v is not None:
+                    self._carry = (t_h[-1], p_h[-1], v)
+                    self._after = None
             if self._carry is not None:
                 t0, p0, v = self._carry
                 move(i, p0 + v * (tt[i] - t0))
