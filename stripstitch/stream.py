@@ -316,8 +316,8 @@ class StreamingStitcher:
         self._tr_lead_done = False        # the arrival placed (tracked backwards)
         self._tr_off = np.zeros(2)        # the frame tracker's origin in the swipe's frame
         self._lead_in = w // 2            # frames of the arrival tracked backwards
-        # Blank runs (see _carry_blank): the last clear placed frames (time, position), and
-        # the run being carried (anchor time, anchor position, velocity) or None.
+        # Blank runs (see _carry_blank): the last _CARRY_FRAMES clear placed frames (time,
+        # position), and the run being carried (anchor time, anchor position, velocity).
         self._clear_hist = []
         self._carry = None
         self._after = None                # (frames left, velocity) checked after a run
@@ -966,8 +966,8 @@ class StreamingStitcher:
     def _carry_blank(self, pos, strong, textured, tt):
         """A frame with no texture at all (``textured`` False: a band of the finger without
         ridges, a crease or a scar) starts a run carried at the velocity of the last clear
-        frames before it (the mean step over up to 32 of them, without steps far from the
-        median), from the last clear frame, up to and including the next clear frame
+        frames before it (the mean step over the last _CARRY_FRAMES of them, without steps
+        far from the median: pipeline._steady_velocity), from the last clear frame, up to and including the next clear frame
         (``strong``; its registration was against a blank frame): what such frames
         register against is noise, and the faint frames at a band's edge had bent the
         filter's velocity (exact-shift frames across a 16 px band at 0.5 px per frame:
@@ -980,9 +980,9 @@ class StreamingStitcher:
         pos = np.array(pos, dtype=np.float64, copy=True)
         if self._carry is None and self._after is None and np.all(textured):
             # the usual batch: nothing to carry, only the history of clear frames to keep
-            for i in np.flatnonzero(strong)[-32:]:
+            for i in np.flatnonzero(strong)[-_CARRY_FRAMES:]:
                 self._clear_hist.append((float(tt[i]), pos[i].copy()))
-            del self._clear_hist[:-32]
+            del self._clear_hist[:-_CARRY_FRAMES]
             if len(pos):
                 self._last_out = (float(tt[-1]), pos[-1].copy())
             return pos
@@ -1013,8 +1013,8 @@ class StreamingStitcher:
             elif self._carry is None and not textured[i] and len(self._clear_hist) >= 4:
                 # the most recent clear frames (a human swipe speeds up and slows down:
                 # over 32 frames the speed lagged a slowing finger by a fifth)
-                t_h = np.array([h[0] for h in self._clear_hist[-_CARRY_FRAMES:]])
-                p_h = np.array([h[1] for h in self._clear_hist[-_CARRY_FRAMES:]])
+                t_h = np.array([h[0] for h in self._clear_hist])
+                p_h = np.array([h[1] for h in self._clear_hist])
                 v = _steady_velocity(t_h, p_h, 3)
                 if v is not None:
                     self._carry = (t_h[-1], p_h[-1], v)
@@ -1024,8 +1024,7 @@ class StreamingStitcher:
                 move(i, p0 + v * (tt[i] - t0))
             elif strong[i]:
                 self._clear_hist.append((float(tt[i]), pos[i].copy()))
-                if len(self._clear_hist) > 32:
-                    del self._clear_hist[0]
+                del self._clear_hist[:-_CARRY_FRAMES]
             self._last_out = (float(tt[i]), pos[i].copy())
         return pos
 
