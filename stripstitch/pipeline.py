@@ -599,15 +599,11 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     confidence = np.array(confidence, dtype=np.float64, copy=True)
     link_failed = np.array(link_failed, dtype=bool, copy=True)
     runs = []
-    f = chain[0]
-    while f <= chain[-1]:
-        if not faint[f]:
-            f += 1
-            continue
-        a = f
-        while f <= chain[-1] and faint[f]:
-            f += 1
-        f0, f1 = a - 1, f                            # clear frames on either side
+    # runs of faint frames over the finger's extent: a..f-1 each
+    c0, c1 = int(chain[0]), int(chain[-1])
+    edges = np.diff(np.concatenate([[0], faint[c0:c1 + 1].astype(np.int8), [0]]))
+    for a, f in zip(np.flatnonzero(edges == 1) + c0, np.flatnonzero(edges == -1) + c0):
+        f0, f1 = int(a) - 1, int(f)                  # clear frames on either side
         if f0 < chain[0] or f1 > chain[-1] or not blank[a:f1].any():
             continue                                 # the finger's ends, or faint texture only
         vel = []
