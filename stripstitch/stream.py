@@ -884,14 +884,16 @@ class StreamingStitcher:
         self._tracker = _track.FrameTracker(self._plate_ok, max_across_px=self.max_across_px,
                                             sigma_acc_px=self.motion_prior_px)
 
-    def _store_tracked(self, sl, pos, ok, info, okf):
+    def _store_tracked(self, sl, pos, ok, info, okf, strong=None):
         """Placement of tracked frames into their slots, with the gap rule: a link with no
         overlap is a gap only between two frames of clear texture (faint frames at the
         fingertip and as the finger leaves fail to match without any gap). The motion
         carries the frames across it; unlike the batch path, nothing is pushed out by the
         strip's height: without the frames after it, a failed link at the finger's exit
-        cannot be told from a too-fast swipe."""
-        strong = self._clear_texture(self._tex[sl])
+        cannot be told from a too-fast swipe. ``strong``: the frames' clear-texture test, if
+        the caller has it."""
+        if strong is None:
+            strong = self._clear_texture(self._tex[sl])
         prev_strong = np.concatenate([[self._tr_prev_strong], strong[:-1]])
         self._pos[sl] = pos
         self._link_ok[sl] = ok | ~(strong & prev_strong)
@@ -957,11 +959,12 @@ class StreamingStitcher:
         out = self._tracker.push(zt, times=tt)
         placed = out["reference"] >= 0
         tex = self._tex[sl]
-        pos = self._carry_blank(out["positions"] + self._tr_off, self._clear_texture(tex),
+        strong = self._clear_texture(tex)
+        pos = self._carry_blank(out["positions"] + self._tr_off, strong,
                                 self._clear_texture(tex, _BLANK_FRAC), tt)
         self._store_tracked(sl, pos, out["link_ok"],
                             _with_model_error(out["info"], out["displacement"]),
-                            placed.astype(np.float64))
+                            placed.astype(np.float64), strong)
 
     def _carry_blank(self, pos, strong, textured, tt):
         """A frame with no texture at all (``textured`` False: a band of the finger without
