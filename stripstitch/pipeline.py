@@ -521,7 +521,8 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
 
 def _texture_power(prep, chain, noise, along):
     """Signal power of each chain frame: its texture's variance above the temporal noise
-    (std ``noise``), and the median of that over the chain.
+    (std ``noise``), the median of that over the chain, and the static pattern (R, C) it is
+    measured about.
 
     Texture here is what changes over the swipe: a blank frame shows the static (fixed)
     pattern left over after preparation, which the per-plate median over the swipe removes.
@@ -544,7 +545,7 @@ def _texture_power(prep, chain, noise, along):
     static = 0.5 * (srt[(len(sub) - 1) // 2] + srt[len(sub) // 2])
     tex = _texture_about(prep.z, chain, static.astype(np.float32), prep.plate_ok)
     sig2 = np.maximum(tex ** 2 - float(noise) ** 2, 0.0)
-    return sig2, float(np.median(sig2))
+    return sig2, float(np.median(sig2)), static
 
 
 def _steady_velocity(times, positions, min_steps):
@@ -582,7 +583,7 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     (first frame, last frame, travel px, uncertainty px) each."""
     if chain.size < 8:
         return positions, confidence, link_failed, []
-    sig2, med = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
+    sig2, med, static = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
     if med <= 0.0:
         return positions, confidence, link_failed, []
     t_n = positions.shape[0]
@@ -595,6 +596,13 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     blank[chain] = sig2 < _BLANK_FRAC * med
     clear = np.zeros(t_n, dtype=bool)
     clear[chain] = ~faint[chain]
+    # rows with texture on a typical clear frame (a dead or stuck row is blank on every frame)
+    typical = None
+    if link_failed.any():
+        sub = np.flatnonzero(clear)
+        sub = sub[np.linspace(0, sub.size - 1, min(sub.size, 40)).astype(int)] if sub.size else sub
+        typical = (np.median(_row_power(prep, sub, static), axis=0) >= _FAINT_FRAC * med
+                   if sub.size else np.zeros(prep.z.shape[1], dtype=bool))
     positions = np.array(positions, dtype=np.float64, copy=True)
     confidence = np.array(confidence, dtype=np.float64, copy=True)
     link_failed = np.array(link_failed, dtype=bool, copy=True)
@@ -604,8 +612,16 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     edges = np.diff(np.concatenate([[0], faint[c0:c1 + 1].astype(np.int8), [0]]))
     for a, f in zip(np.flatnonzero(edges == 1) + c0, np.flatnonzero(edges == -1) + c0):
         f0, f1 = int(a) - 1, int(f)                  # clear frames on either side
-        if f0 < chain[0] or f1 > chain[-1] or not blank[a:f1].any():
-            continue                                 # the finger's ends, or faint texture only
+        if f0 < chain[0] or f1 > chain[-1]:
+            continue                                 # the finger's ends
+        # A band narrower than the strip: the links across it failed (nothing but the band in
+        # their overlap) and a frame shows the band's edge passing through its rows. A too-fast
+        # jump blurs whole frames; it does not leave some rows textured and others blank.
+        band_edge = (link_failed[max(f0 - 1, 0):f1 + 1].any()
+                     and _shows_band_edge(prep, np.arange(f0, f1 + 1), static, med, typical,
+                                          r_n))
+        if not band_edge and not blank[a:f1].any():
+            continue                                 # faint texture only
         vel = []
         for edge, side in ((f0, -1), (f1, 1)):
             # clear frames next to the run over two strip lengths of travel (at least R
@@ -628,8 +644,8 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         dt = times[f1] - times[f0]
         n_run = f1 - f0 - 1
         unseen = n_run > int(np.count_nonzero(prep.contact[a:f1]))
-        if (n_run < _BRIDGE_MIN_FRAMES and not (unseen and n_run >= 3)) \
-                or np.hypot(*(v * dt)) < 0.5 * r_n:
+        if not band_edge and ((n_run < _BRIDGE_MIN_FRAMES and not (unseen and n_run >= 3))
+                              or np.hypot(*(v * dt)) < 0.5 * r_n):
             continue                                 # too short for a blank band: a jump
         # The first registrations after the band (and the last before it) are searches
         # that can land a ridge period off (a simulated whorl: a 7.7 px step between two
@@ -666,6 +682,43 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     return positions, confidence, link_failed, runs
 
 
+def _row_power(prep, frames, static):
+    """Texture power above the temporal noise of each row of ``frames`` (about ``static``,
+    less each frame's mean over the good plates, as _texture_power measures frames), shape
+    (len(frames), R); NaN for rows with fewer than an eighth of their plates good."""
+    ok = prep.plate_ok
+    d = prep.z[np.asarray(frames, dtype=np.intp)].astype(np.float64) - static
+    mu = np.where(ok, d, 0.0).sum(axis=(1, 2)) / max(int(ok.sum()), 1)
+    d = np.where(ok, d - mu[:, None, None], 0.0)
+    n_row = ok.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = (d * d).sum(axis=2) / n_row - float(prep.noise_sigma) ** 2
+    p[:, n_row < max(2, ok.shape[1] // 8)] = np.nan
+    return p
+
+
+def _shows_band_edge(prep, frames, static, med, typical, r_n):
+    """Whether one of ``frames`` shows the edge of a ridge-free band: at least
+    ``max(2, min(4, R // 4))`` successive rows blank (power under _BLANK_FRAC of the swipe's
+    median ``med``) that are textured on a typical frame (``typical``), and a clear row (at
+    least _FAINT_FRAC of it) elsewhere in the frame."""
+    if typical is None or not typical.any():
+        return False
+    p = _row_power(prep, frames, static)
+    blank = (p < _BLANK_FRAC * med) & typical[None, :]
+    clear = p >= _FAINT_FRAC * med
+    need = max(2, min(4, r_n // 4))
+    for k in range(len(frames)):
+        if not clear[k].any():
+            continue
+        run = 0
+        for b in blank[k]:
+            run = run + 1 if b else 0
+            if run >= need:
+                return True
+    return False
+
+
 # A frame is faint when its texture power (above the noise) is under this share of the
 # swipe's median, blank under the second (no texture left to register).
 _FAINT_FRAC = 0.25
@@ -689,7 +742,7 @@ def _strong_frames(prep, chain, noise, along):
     """Frames with clear texture (for telling a gap from faint frames at the finger's ends):
     signal power above the temporal noise (std ``noise``; at low SNR a blank frame's spread
     is the noise) at least a quarter of the swipe's median (see _texture_power)."""
-    sig2, med = _texture_power(prep, chain, noise, along)
+    sig2, med, _ = _texture_power(prep, chain, noise, along)
     return sig2 >= _FAINT_FRAC * med
 
 

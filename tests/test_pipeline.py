@@ -710,6 +710,57 @@ def test_simulated_crease_is_no_gap():
     assert any("no ridges" in r for r in res.report.reasons)
 
 
+def test_band_narrower_than_the_strip_is_no_gap():
+    # A ridge-free band 12 px wide (plus 2 px cosine edges) under a 16-row strip at 1.5 px
+    # per frame: no frame shows only the band, but at this noise the links across it fail
+    # (their overlap holds nothing but the band). Frames by exact Fourier shifts (the truth
+    # by construction). Measured before a band's edge in the frames' rows told it from a
+    # too-fast jump: a false gap pushed by a strip height, span +9.8 %, 29 px off along.
+    tex = band_texture((420, 128), seed=7)
+    y = np.arange(420, dtype=float)[:, None]
+    lo, hi, edge = 190.0, 202.0, 2.0
+    w = np.clip(np.maximum((lo - y) / edge, (y - hi) / edge), 0.0, 1.0)
+    tex = tex * (0.5 - 0.5 * np.cos(np.pi * w))
+    pos = np.vstack([[0.0, 0.0], np.cumsum(np.tile([1.5, 0.03], (199, 1)), 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=16, n_cols=96)
+    frames = frames + np.random.default_rng(2).normal(0.0, 0.2 * tex.std(), frames.shape)
+    res = stitch(frames)
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.2 %.
+    assert abs(_span_error(res, pos)) < 0.002
+    assert np.abs(res.positions[:, 0] - pos[:, 0]).max() < 0.5
+    assert not res.events_of("gap")
+    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
+    assert len(band) == 1
+    a, b = band[0].first_frame - 1, band[0].last_frame + 1
+    true_px = float(np.hypot(*(pos[b] - pos[a])))
+    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+
+
+def test_simulated_narrow_crease_at_low_snr_is_no_gap():
+    # An arch with a 0.7 mm crease (14 px, under the 16-row strip) at 16 dB, accelerating
+    # through it (simulator truth: no gap). Measured before a band's edge in the frames' rows
+    # told it from a too-fast jump (three seeds): a false gap, span +7.1 to +7.3 %, along RMS
+    # 9.3-9.5 px, image NCC 0.61-0.63; after: -0.02 to -0.07 %, 0.06-0.09 px, 0.98.
+    from stripstitch import evaluate, simulate
+
+    f = simulate.make_finger("arch", size_mm=(14.0, 12.0), rng=4413)
+    cap = simulate.swipe("arch", finger=simulate.with_crease(f, at_mm=7.7, width_mm=0.7), rng=1,
+                         n_rows=16, n_cols=128, frame_rate_hz=2000.0, profile="accel_decel",
+                         speed_mm_s=100.0, snr_db=16.0)
+    assert not cap.events_of("gap")
+    res = stitch(cap.frames, frame_rate_hz=2000.0, timestamps_s=cap.times_s)
+    assert not res.events_of("gap")
+    d = evaluate.evaluate(res, cap, distortion=False).to_dict()
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.3 %.
+    assert abs(d["span_error_pct"]) < 0.3
+    assert d["along_rms_px"] < 0.3 and d["ncc"] > 0.95
+    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
+    assert len(band) == 1
+    a, b = band[0].first_frame - 1, band[0].last_frame + 1
+    true_px = float(np.hypot(*(cap.positions[b] - cap.positions[a])))
+    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+
+
 def test_six_row_strip_at_speed_is_tracked():
     # A 6-row strip at 1.6 px per frame (a third of a 4-row overlap per frame): the pairwise
     # path drifted along (span +3.8 %, along RMS 2.0 px); the key-frame tracker, used from 6
