@@ -261,6 +261,9 @@ class StreamingStitcher:
         self._pos = np.zeros((w, 2))
         self._time = np.zeros(w)
         self._tex = np.zeros(w)
+        self._row_ms = np.zeros((w, r_n))         # each row's share of it (see _texture)
+        self._row_typ = np.zeros(r_n)             # summed over clear tracked frames ...
+        self._row_typ_n = 0                       # ... of which there were this many
         self._frame_info = np.zeros((w, 2, 2))
         self._okfrac = np.zeros(w)
         self._link_ok = np.ones(w, bool)          # link (t-1, t) held
@@ -310,6 +313,7 @@ class StreamingStitcher:
         self._tr_pos = np.zeros(2)        # position of the last placed frame
         self._tr_fr = None                # frame rate used for the tracker's times
         self._tr_prev_strong = False
+        self._tr_prev_edge = False
         self._tr_armed = False
         self._tr_tex_min = np.inf         # quietest frame so far (noise and fixed pattern)
         self._tr_next = 0                 # first frame not yet placed
@@ -371,7 +375,7 @@ class StreamingStitcher:
         if self._shape is None:
             raise RuntimeError("memory_layout() needs the geometry: push a frame first")
         arrays = (self._raw, self._z, self._zn, self._up, self._g0, self._g1, self._pos,
-                  self._time, self._tex, self._frame_info, self._okfrac, self._link_ok,
+                  self._time, self._tex, self._row_ms, self._row_typ, self._frame_info, self._okfrac, self._link_ok,
                   self._p_ij, self._p_shift, self._p_info, self._p_good, self._acc, self._wacc)
         return {"window_frames": self.window, "frame_shape": list(self._shape),
                 "accumulator_rows": self._acc_h, "accumulator_cols": self._acc_w,
@@ -545,17 +549,21 @@ class StreamingStitcher:
     def _slots(self, a, b):
         return np.arange(a, b) % self.window
 
-    def _texture(self, x):
-        """Spatial texture of frames (rms of the across-swipe high-pass), fixed pattern removed."""
+    def _texture(self, x, rows=False):
+        """Spatial texture of frames (rms of the across-swipe high-pass), fixed pattern removed;
+        with ``rows``, also each row's mean square (T, R) that it is the root mean of."""
         fp = self._blank_sum / self._blank_n if self._blank_n >= 8 else 0.0
         d = np.diff(x - fp, axis=-1)
-        return np.sqrt(np.mean(d * d, axis=(-2, -1)))
+        ms = np.mean(d * d, axis=-1)
+        tex = np.sqrt(np.mean(ms, axis=-1))
+        return (tex, ms) if rows else tex
 
     def _prepare_batch(self, a, b):
         """Fixed pattern, contact and prepared frames for frames a..b-1 (in their slots)."""
         sl = self._slots(a, b)
         x = self._raw[sl]
-        tex = self._texture(x)
+        tex, ms = self._texture(x, rows=True)
+        self._row_ms[sl] = ms
         # Reference texture: the largest of the first batch, then a running mean over frames
         # in contact (a running maximum would keep rising with the swipe's length).
         if self._n_est == 0 or not self._seen_contact:
@@ -574,8 +582,9 @@ class StreamingStitcher:
             if contact.any():
                 self._seen_contact = True
                 if self._blank_n >= 8:   # texture again, now against the blank mean
-                    tex = self._texture(x)
+                    tex, ms = self._texture(x, rows=True)
                     self._tex[sl] = tex
+                    self._row_ms[sl] = ms
                     contact = self._contact_of(tex)
         if self.calibration is not None:
             self._offset = np.full(self._shape, float(x.mean())) if self._offset is None \
@@ -765,12 +774,14 @@ class StreamingStitcher:
             held = min(b - a, self._lead_in)
             if held:
                 base, strong0 = self._tr_pos.copy(), self._tr_prev_strong
+                edge0, typ0 = self._tr_prev_edge, (self._row_typ.copy(), self._row_typ_n)
                 self._place_lead_in(a, a + held)
                 for _ in range(_LEAD_PASSES):
                     if not self._pattern_from_placed(a, a + held):
                         break
                     # placed again, with the fixed pattern its own travel revealed
                     self._tr_pos, self._tr_prev_strong = base, strong0
+                    self._tr_prev_edge, (self._row_typ, self._row_typ_n) = edge0, typ0
                     self._place_lead_in(a, a + held)
                 self._tr_lead_done = True
             if a + held < b:
@@ -895,12 +906,45 @@ class StreamingStitcher:
         if strong is None:
             strong = self._clear_texture(self._tex[sl])
         prev_strong = np.concatenate([[self._tr_prev_strong], strong[:-1]])
+        # nor where a frame of the link shows the edge of a ridge-free band in its rows (the
+        # link's overlap held only the band; see _band_edge)
+        edge = self._band_edge(sl, strong)
+        prev_edge = np.concatenate([[self._tr_prev_edge], edge[:-1]])
         self._pos[sl] = pos
-        self._link_ok[sl] = ok | ~(strong & prev_strong)
+        self._link_ok[sl] = ok | ~(strong & prev_strong) | edge | prev_edge
         self._frame_info[sl] = info
         self._okfrac[sl] = okf
         self._tr_pos = pos[-1].copy()
         self._tr_prev_strong = bool(strong[-1])
+        self._tr_prev_edge = bool(edge[-1])
+
+    def _band_edge(self, sl, strong):
+        """Frames (slots ``sl``) that show the edge of a ridge-free band passing through their
+        rows, as pipeline._shows_band_edge tells a narrow band from a too-fast jump (which
+        blurs whole frames): max(2, min(4, R // 4)) successive rows blank (texture power
+        under _BLANK_FRAC of the typical frame's, above the quietest frame's) that are
+        textured on the clear frames tracked so far (a dead or stuck row is blank on every
+        frame), and a clear row elsewhere. The clear frames (``strong``) join the rows'
+        typical level."""
+        ms = self._row_ms[sl]
+        if strong.any():
+            self._row_typ += ms[strong].sum(axis=0)
+            self._row_typ_n += int(strong.sum())
+        r_n = ms.shape[1]
+        need = max(2, min(4, r_n // 4))
+        if self._row_typ_n < 8 or r_n < need + 1:
+            return np.zeros(len(ms), dtype=bool)
+        floor2 = self._tr_tex_min ** 2
+        span = max(self._tex_hi ** 2 - floor2, 0.0)
+        # the spread of a noise-only row's mean square (C - 1 differences, each of two noisy
+        # readings: half as many independent terms)
+        sd = floor2 * np.sqrt(4.0 / max(self._shape[1] - 1, 1))
+        p = ms - floor2
+        typical = self._row_typ / self._row_typ_n - floor2 >= 0.25 * span + 3.0 * sd
+        blank = (p < _BLANK_FRAC * span + 2.0 * sd) & typical[None, :]
+        clear = p >= 0.25 * span + 3.0 * sd
+        runs = np.lib.stride_tricks.sliding_window_view(blank, need, axis=1).all(axis=-1)
+        return runs.any(axis=1) & clear.any(axis=1)
 
     def _place_lead_in(self, a, b):
         """Frames a..b-1, from the finger's arrival: backwards from the frame of strongest
