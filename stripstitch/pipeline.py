@@ -290,13 +290,13 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     placed = _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px,
                                 refit=not fast)
     if placed is not None:
-        positions, confidence, link_failed, prep_used, n_pairs, n_kept = placed
+        positions, confidence, link_failed, prep_used, n_pairs, n_kept, limit_runs = placed
         angles_deg = np.zeros(t_n)
         delay_steps = None
         placement = "key-frame tracker"
     else:
-        positions, angles_deg, confidence, link_failed, prep_used, n_pairs, n_kept, delay_steps = \
-            _full_placement(x, prep, chain, dt_frames, frame_rate_hz=frame_rate_hz,
+        (positions, angles_deg, confidence, link_failed, prep_used, n_pairs, n_kept, delay_steps,
+         limit_runs) = _full_placement(x, prep, chain, dt_frames, frame_rate_hz=frame_rate_hz,
                             max_across_px=max_across_px, motion_prior_px=motion_prior_px)
         placement = "multi-baseline pairs"
 
@@ -382,7 +382,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     positions, confidence, link_failed, blank_runs = _bridge_blank_runs(
         prep, chain, positions, confidence, link_failed, times, r_n)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
-                   blank_runs=blank_runs,
+                   blank_runs=blank_runs, limit_runs=limit_runs,
                    dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
                    pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
                        "pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
@@ -738,6 +738,82 @@ _BRIDGE_SPEED_FRAC = 0.15
 _BRIDGE_MIN_FRAMES = 6
 
 
+def _overlap_limit(link_gap, link_ok, along, times_ch, r_n):
+    """Gap runs that are the strip's own limit rather than a jump: where the links around
+    a run that held moved at least _LIMIT_FRAC of R - 1 rows per frame, successive frames
+    overlap by a row or less and fail to register from the speed alone (a 2-row strip at
+    1.0-1.1 px per frame: every row of the finger is seen, by frames that never share one).
+    Such a run is no gap: the placement's motion model carries it at the speed around it,
+    instead of pushing each link out to a strip height (that 2-row swipe: 11 false gaps,
+    span +23 %). ``link_gap``, ``link_ok``: per chain link; ``along``, ``times_ch``: the
+    chain frames' along positions (the links that held are read) and times. Returns the
+    new link_gap and the runs (first link, last link, speed px per frame) taken out."""
+    link_gap = np.array(link_gap, dtype=bool, copy=True)
+    link_ok = np.asarray(link_ok, dtype=bool)
+    n = link_gap.size
+    if not link_gap.any() or r_n < 2 or n < 4:
+        return link_gap, []
+    dt = np.diff(np.asarray(times_ch, dtype=np.float64))
+    speed = np.abs(np.diff(np.asarray(along, dtype=np.float64))) / np.where(dt > 0, dt, np.inf)
+    runs = []
+    k = 0
+    while k < n:
+        if not link_gap[k]:
+            k += 1
+            continue
+        e = k
+        while e + 1 < n and link_gap[e + 1]:
+            e += 1
+        lo, hi = max(0, k - _LIMIT_LINKS), min(n, e + 1 + _LIMIT_LINKS)
+        held = np.flatnonzero(link_ok[lo:hi]) + lo
+        if held.size >= 4:
+            v = float(np.median(speed[held]))
+            if v >= _LIMIT_FRAC * (r_n - 1):
+                link_gap[k:e + 1] = False
+                runs.append((k, e, v))
+        k = e + 1
+    return link_gap, runs
+
+
+def _push_limit(positions, chain, runs, dt_frames, r_n):
+    """Each failed link of a run at the strip's limit (see _overlap_limit) moved at least
+    R - 1 rows (it did not register): steps the motion model left shorter are lengthened to
+    that, in place (the links that held next to it, at the limit themselves, read short)."""
+    if not runs:
+        return
+    direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
+    for k, e, _ in runs:
+        for m in range(k, e + 1):
+            i, j = int(chain[m]), int(chain[m + 1])
+            if np.sum(dt_frames[i:j] - 1.0) >= 0.5:
+                continue
+            step = direction * (positions[j, 0] - positions[i, 0])
+            if step < r_n - 1:
+                positions[j:, 0] += direction * (r_n - 1 - step)
+
+
+def _limit_frames(runs, chain, confidence):
+    """Chain-link runs of _overlap_limit as frame runs (first frame, last frame, speed px per
+    frame, uncertainty px of the travel across them), their inner frames' confidence lowered
+    (in place) to that of a placement known to _BRIDGE_SIGMA_PX plus _BRIDGE_SPEED_FRAC of
+    the travel (as a blank run's: the speed within the run is not measured)."""
+    out = []
+    for k, e, v in runs:
+        a, b = int(chain[k]), int(chain[e + 1])
+        travel = v * (e - k + 1)
+        sigma = float(np.hypot(_BRIDGE_SIGMA_PX, _BRIDGE_SPEED_FRAC * travel))
+        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        confidence[a + 1:b] = np.minimum(confidence[a + 1:b], conf)
+        out.append((a, b, float(v), sigma))
+    return out
+
+
+# A run of failed links is the strip's limit (see _overlap_limit) when the links around it
+# (this many on either side) that held moved at least this share of R - 1 rows per frame.
+_LIMIT_FRAC = 0.75
+_LIMIT_LINKS = 16
+
+
 def _strong_frames(prep, chain, noise, along):
     """Frames with clear texture (for telling a gap from faint frames at the finger's ends):
     signal power above the temporal noise (std ``noise``; at low SNR a blank frame's spread
@@ -889,16 +965,20 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
             tr = run(prep)
     link_ok = tr.link_ok
     placed = tr.reference >= 0
+    limit_runs = []
     if link_ok.all():
         link_gap = np.zeros(len(link_ok), dtype=bool)
     else:
         noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
         strong = _strong_frames(prep, chain, noise, tr.positions[:, 0])
         link_gap = _gap_links(link_ok, strong)
+        link_gap, limit_runs = _overlap_limit(link_gap, link_ok, tr.positions[:, 0],
+                                              times[chain], r_n)
     # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
     positions = spread(tr)
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
     _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
+    _push_limit(positions, chain, limit_runs, dt_frames, r_n)
     # Confidence from each frame's registration (the frame tracking started from: its
     # neighbour's).
     info = _with_model_error(tr.info, tr.positions - tr.positions[np.maximum(tr.reference, 0)])
@@ -914,7 +994,9 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     ok_frac[chain] = placed
     confidence = _confidence(frame_info, prep.contact, ok_frac)
     link_failed = _failed_links(t_n, cpairs, link_gap)
-    return positions, confidence, link_failed, prep, int(len(chain) - 1), int(link_ok.sum())
+    limit_runs = _limit_frames(limit_runs, chain, confidence)
+    return (positions, confidence, link_failed, prep, int(len(chain) - 1), int(link_ok.sum()),
+            limit_runs)
 
 
 # Strips of at most this many rows take the along steps from the delay between their rows
@@ -1041,6 +1123,8 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     along = np.concatenate([[0.0], np.cumsum(np.where(link_ok, est_c.shift[:, 0], 0.0))])
     strong = _strong_frames(prep, chain, noise, along)
     link_gap = _gap_links(link_ok, strong)
+    times_ch = np.concatenate([[0.0], np.cumsum(dt_frames)])[chain]
+    link_gap, limit_runs = _overlap_limit(link_gap, link_ok, along, times_ch, r_n)
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
     # Coarse chain positions (failed links bridged by the neighbours' median step).
     fill = np.nanmedian(chain_steps, axis=0) if np.isfinite(chain_steps).any() else np.zeros(2)
@@ -1112,6 +1196,7 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     positions = tr.positions.copy()
     angles_deg = np.degrees(tr.angles_rad)
     _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
+    _push_limit(positions, chain, limit_runs, dt_frames, r_n)
     # Pairs kept per frame, for confidence.
     kept = np.zeros(t_n)
     total = np.zeros(t_n)
@@ -1145,12 +1230,13 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
         np.add.at(links, cpairs.ravel(), 1.0)
         ok_frac = np.where(on & (links > 0), held / np.maximum(links, 1.0), ok_frac)
     confidence = _confidence(frame_info, prep.contact, np.clip(ok_frac, 0, 1))
+    limit_runs = _limit_frames(limit_runs, chain, confidence)
     return (positions, angles_deg, confidence, link_failed, prep_used, len(pairs), int(good.sum()),
-            delay_steps)
+            delay_steps, limit_runs)
 
 
 def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, dt_frames, times,
-            frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=()):
+            frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=(), limit_runs=()):
     """Fusion, events and report."""
     r_n = prep.z.shape[1]
     # ---- fusion ----
@@ -1176,7 +1262,8 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
                                  confidence=confidence, contact=prep.contact,
                                  link_failed=link_failed, link_dt_frames=dt_frames,
                                  times_s=times, frame_rate_hz=frame_rate_hz, n_rows=r_n,
-                                 pitch_um=pitch_um, blank_runs=blank_runs)
+                                 pitch_um=pitch_um, blank_runs=blank_runs,
+                                 limit_runs=limit_runs)
     rep = _report.make_report(events=events, positions=positions, angles_deg=angles_deg,
                               confidence=confidence, contact=prep.contact, times_s=times,
                               frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,

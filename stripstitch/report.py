@@ -62,7 +62,7 @@ def _stall_rule(positions, times_s, frame_rate_hz, pitch_um, *, stall_speed_mm_s
 def find_events(*, positions, angles_deg, confidence, contact, link_failed, link_dt_frames,
                 times_s, frame_rate_hz, n_rows, pitch_um, stall_speed_mm_s=2.0,
                 min_stall_s=0.01, min_backtrack_px=1.0, skew_limit_deg=3.0,
-                rotation_limit_deg=1.0, low_confidence=0.5, blank_runs=()):
+                rotation_limit_deg=1.0, low_confidence=0.5, blank_runs=(), limit_runs=()):
     """Find the swipe's events from the solved trajectory.
 
     Parameters
@@ -83,6 +83,10 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     blank_runs : sequence of (first, last, travel_px, uncertainty_px), optional
         Frames with no texture that were carried across at the measured speed (reported as
         low_confidence with cause "no_texture"). Default none.
+    limit_runs : sequence of (first, last, speed_px_per_frame, uncertainty_px), optional
+        Frames whose links failed because the finger moved about a strip height per frame or
+        more (successive frames overlap by a row or less), carried at the speed around them
+        (reported as low_confidence with cause "overlap_limit"). Default none.
 
     Returns
     -------
@@ -151,6 +155,13 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
             "min_confidence": round(float(confidence[a:b + 1].min()), 3),
             "travel_px": round(float(travel_px), 2),
             "travel_mm": round(float(travel_px) * pitch_um / 1000, 3),
+            "uncertainty_px": round(float(sigma_px), 2)}))
+        low[a:b + 1] = False
+    for a, b, speed_px, sigma_px in limit_runs:
+        events.append(Event("low_confidence", int(a), int(b), {
+            "frames": int(b - a + 1), "cause": "overlap_limit",
+            "min_confidence": round(float(confidence[a:b + 1].min()), 3),
+            "speed_px_per_frame": round(float(speed_px), 3),
             "uncertainty_px": round(float(sigma_px), 2)}))
         low[a:b + 1] = False
     # Low confidence over contact frames.
@@ -258,7 +269,15 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
         reasons.append(f"{len(blank)} stretch(es) with no ridges (a crease or scar?), {mm:.1f} mm "
                        f"in all, crossed at the swipe's speed: length there uncertain by about "
                        f"{unc:.2f} mm")
-    n_low = counts.get("low_confidence", 0) - len(blank)
+    limit = [e for e in events if e.kind == "low_confidence"
+             and e.details.get("cause") == "overlap_limit"]
+    if limit:
+        v = max(e.details["speed_px_per_frame"] for e in limit)
+        reasons.append(f"{len(limit)} place(s) where the finger moved up to {v:.1f} px per frame "
+                       f"on a {n_rows}-row strip: successive frames barely overlap and were "
+                       "placed at the speed around them, so the length may be off by a few "
+                       "percent; swipe more slowly or raise the frame rate")
+    n_low = counts.get("low_confidence", 0) - len(blank) - len(limit)
     if n_low and mean_conf >= 0.5:
         reasons.append(f"{n_low} stretch(es) of low placement confidence (e.g. ridges parallel "
                        "to the swipe)")

@@ -761,6 +761,29 @@ def test_simulated_narrow_crease_at_low_snr_is_no_gap():
     assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
 
 
+def test_two_row_strip_at_its_overlap_limit_is_no_gap():
+    # A 2-row strip whose finger speeds up from 0.55 to 1.03 px per frame and back: above
+    # 1 px per frame successive frames share no row, so links fail, yet every row of the
+    # finger is seen (no gap in the truth: steps stay under the strip's 2 rows). Frames by
+    # exact Fourier shifts (the truth by construction). Measured before such runs were told
+    # from a jump (three seeds): 14-15 gaps each pushed out to a strip height, span +13 to
+    # +15 %, unusable; after: -0.6 to -0.7 %, no gap, the runs reported with their cause.
+    tex = band_texture((500, 160), seed=0)
+    u = np.linspace(0.0, np.pi, 329)
+    steps = np.stack([0.55 + 0.48 * np.sin(u), np.full(329, 0.04)], 1)
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=2, n_cols=128)
+    frames = frames + np.random.default_rng(0).normal(0.0, 0.02 * tex.std(), frames.shape)
+    res = stitch(frames)
+    assert not res.events_of("gap")
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 1 %.
+    assert abs(_span_error(res, pos)) < 0.01
+    limit = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "overlap_limit"]
+    assert limit and all(0.75 <= e.details["speed_px_per_frame"] <= 1.2 for e in limit)
+    assert all(steps[e.first_frame:e.last_frame, 0].max() > 0.9 for e in limit)
+    assert any("barely overlap" in r for r in res.report.reasons)
+
+
 def test_six_row_strip_at_speed_is_tracked():
     # A 6-row strip at 1.6 px per frame (a third of a 4-row overlap per frame): the pairwise
     # path drifted along (span +3.8 %, along RMS 2.0 px); the key-frame tracker, used from 6
