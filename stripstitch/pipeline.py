@@ -1267,7 +1267,8 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
     rep = _report.make_report(events=events, positions=positions, angles_deg=angles_deg,
                               confidence=confidence, contact=prep.contact, times_s=times,
                               frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,
-                              image=mos.image, n_plates=int(prep.plate_ok.sum()))
+                              image=mos.image, n_plates=int(prep.plate_ok.sum()),
+                              n_cols=int(prep.plate_ok.any(axis=0).sum()))
     return Reconstruction(image=mos.image, positions=positions, angles=angles_deg,
                           confidence=confidence, events=events, report=rep, weight=mos.weight,
                           origin_px=mos.origin_px, pitch_um=out_pitch_um,

@@ -20,6 +20,11 @@ __all__ = ["find_events", "make_report"]
 # 8x24) 0.2-9 % and 0.3-9 px across; 256 (2x128, 4x64) 0.04-0.6 %, 0.1-2.2 px across.
 MIN_PLATES = 128
 FEW_PLATES = 256
+# ... and strips narrower than this many columns of usable plates get a reason too, whatever
+# their plate count: 16 simulated swipes of 16 columns (8 to 32 rows, four finger classes,
+# 25 dB) erred by 0.06-11.7 px RMS along (median 2.5; ridge-period slips across so few
+# columns), and bench_geometry.py's 20x16 strip came out 7.9 % short, called usable.
+NARROW_COLS = 24
 
 
 def _runs(mask):
@@ -181,11 +186,12 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
 
 
 def make_report(*, events, positions, angles_deg, confidence, contact, times_s, frame_rate_hz,
-                n_rows, pitch_um, image, min_length_mm=5.0, n_plates=None):
+                n_rows, pitch_um, image, min_length_mm=5.0, n_plates=None, n_cols=None):
     """Summarise a reconstruction: figures, a verdict and reasons a driver could show a user.
 
     ``n_plates``: usable plates of the strip, if known. Under ``MIN_PLATES`` the verdict is
-    unusable, under ``FEW_PLATES`` a reason says the placement is less reliable.
+    unusable, under ``FEW_PLATES`` a reason says the placement is less reliable; so does one
+    for fewer than ``NARROW_COLS`` columns holding usable plates (``n_cols``, if known).
     """
     idx = np.flatnonzero(contact)
     counts = {}
@@ -250,6 +256,10 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
     elif n_plates is not None and n_plates < FEW_PLATES:
         reasons.append(f"small strip ({n_plates} usable plates): placement less reliable, "
                        "errors of several pixels and percent are possible")
+    elif n_cols is not None and n_cols < NARROW_COLS:
+        reasons.append(f"narrow strip ({n_cols} columns of usable plates): placement less "
+                       "reliable, slips of a ridge period (several pixels, several percent of "
+                       "the length) are possible")
     bridged = [e for e in gaps if e.details.get("bridged", False)]
     if bridged:
         reasons.append(f"{len(bridged)} run(s) of dropped frames bridged by overlap; placement "

@@ -504,7 +504,8 @@ class StreamingStitcher:
         rep = _report.make_report(events=events, positions=pos, angles_deg=angles,
                                   confidence=conf, contact=contact, times_s=times,
                                   frame_rate_hz=fr, n_rows=r_n, pitch_um=self.pitch_um,
-                                  image=image, n_plates=int(np.sum(self._plate_ok)))
+                                  image=image, n_plates=int(np.sum(self._plate_ok)),
+                                  n_cols=int(np.asarray(self._plate_ok).any(axis=0).sum()))
         options = {"pitch_um": self.pitch_um, "frame_rate_hz": fr, "mode": self.mode,
                    "output_pitch_um": self.out_pitch_um.tolist(), "estimate_rotation": False,
                    "motion_prior_px": self.motion_prior_px, "max_across_px": self.max_across_px,
