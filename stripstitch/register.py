@@ -19,7 +19,7 @@ import numpy as np
 from scipy import ndimage
 
 from ._jit import JIT
-from ._validate import check_array, check_int
+from ._validate import check_array, check_int, check_positive
 
 __all__ = ["Prepared", "PairEstimates", "RowDelay", "prepare", "coarse_shifts", "refine_shifts",
            "frame_turn", "row_delay"]
@@ -1040,7 +1040,8 @@ def _window_sums(c, width, t_n, pad):
 
 
 def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 128, 256),
-              min_ncc=0.5, min_gain=0.02, min_travel_px=4.0, max_drop=0.05, row_step=1):
+              min_ncc=0.5, min_gain=0.02, min_travel_px=4.0, max_drop=0.05, row_step=1,
+              min_delay=0.5):
     """Speed of the finger from the time one row takes to see what its neighbour saw.
 
     While the finger slides along the swipe by ``v`` pixels per frame, row ``r`` sees at time
@@ -1082,7 +1083,13 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     row_step : int
         Rows between the two rows compared (1: neighbours), 1 .. R - 1. Rows ``k`` apart see
         the same texture ``k / v`` frames apart: a longer delay reads faster swipes (the
-        delay must be at least a frame) and more finely, from fewer row pairs.
+        delay must be at least ``min_delay``) and more finely, from fewer row pairs.
+    min_delay : float
+        Shortest delay read, frames. Under a frame the peak lies between lags 0 and 1, and
+        the three-point fit around lag 1 still places it (lag 0 itself is never taken: it
+        must beat the correlation without delay by ``min_gain``); the texture is sampled
+        finely enough in time as long as a ridge period spans several frames. Default 0.5
+        (neighbouring rows read up to 2 px per frame).
 
     Returns
     -------
@@ -1104,6 +1111,7 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
     if ok.shape != (r_n, c_n):
         raise ValueError(f"plate_ok must have shape {(r_n, c_n)}; got {ok.shape}")
     k_r = check_int(row_step, name="row_step", lo=1, hi=r_n - 1)
+    min_delay = check_positive(min_delay, name="min_delay")
     zn = _row_normalise(z, ok).astype(np.float32)
     # rows r (earlier in the finger's path) and r + k_r; columns 1 .. C-2 so every across
     # offset of -1, 0, 1 has the same columns
@@ -1190,7 +1198,7 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
             full = (np.isfinite(lo3) & np.isfinite(mid3) & np.isfinite(hi3)).all(axis=0)
             good = (inner & full & np.isfinite(q) & (q >= min_ncc)
                     & (q - ncc[1, zero, tt] >= min_gain) & (q - mirror >= min_gain)
-                    & (np.abs(off_l) <= 0.5) & (np.abs(off_d) <= 1.0) & (np.abs(tau) >= 1.0)
+                    & (np.abs(off_l) <= 0.5) & (np.abs(off_d) <= 1.0) & (np.abs(tau) >= min_delay)
                     & (width * k_r >= min_travel_px * np.abs(tau)))
         # Each time takes the shortest window the finger travelled min_travel_px through: if
         # that one fails, so does the time (a longer window would only reach further into a

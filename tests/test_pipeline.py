@@ -767,7 +767,9 @@ def test_two_row_strip_at_its_overlap_limit_is_no_gap():
     # finger is seen (no gap in the truth: steps stay under the strip's 2 rows). Frames by
     # exact Fourier shifts (the truth by construction). Measured before such runs were told
     # from a jump (three seeds): 14-15 gaps each pushed out to a strip height, span +13 to
-    # +15 %, unusable; after: -0.6 to -0.7 %, no gap, the runs reported with their cause.
+    # +15 %, unusable; after: -0.6 to -0.7 %, no gap, the runs reported with their cause;
+    # with the row delay also read under a frame (register.row_delay's min_delay), -0.09 to
+    # +0.02 %.
     tex = band_texture((500, 160), seed=0)
     u = np.linspace(0.0, np.pi, 329)
     steps = np.stack([0.55 + 0.48 * np.sin(u), np.full(329, 0.04)], 1)
@@ -776,8 +778,8 @@ def test_two_row_strip_at_its_overlap_limit_is_no_gap():
     frames = frames + np.random.default_rng(0).normal(0.0, 0.02 * tex.std(), frames.shape)
     res = stitch(frames)
     assert not res.events_of("gap")
-    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 1 %.
-    assert abs(_span_error(res, pos)) < 0.01
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.3 %.
+    assert abs(_span_error(res, pos)) < 0.003
     limit = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "overlap_limit"]
     assert limit and all(0.75 <= e.details["speed_px_per_frame"] <= 1.2 for e in limit)
     assert all(steps[e.first_frame:e.last_frame, 0].max() > 0.9 for e in limit)
