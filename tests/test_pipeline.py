@@ -681,32 +681,46 @@ def test_ridge_free_band_is_crossed_at_the_measured_speed(seed):
     assert (res.confidence[inside] < 0.5).all()
 
 
+def _assert_one_band_within_its_uncertainty(res, true_positions):
+    """One ridge-free run reported, its travel (frame before it to frame after it) within
+    twice its stated uncertainty of the truth's."""
+    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
+    assert len(band) == 1
+    a, b = band[0].first_frame - 1, band[0].last_frame + 1
+    true_px = float(np.hypot(*(true_positions[b] - true_positions[a])))
+    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+
+
+def _crease_swipe_errors(cap, frame_rate_hz):
+    """Stitch a simulated swipe with no gap in its truth: no gap reported either; returns the
+    reconstruction and its errors against the truth."""
+    from stripstitch import evaluate
+
+    assert not cap.events_of("gap")
+    res = stitch(cap.frames, frame_rate_hz=frame_rate_hz, timestamps_s=cap.times_s)
+    assert not res.events_of("gap")
+    return res, evaluate.evaluate(res, cap, distortion=False).to_dict()
+
+
 def test_simulated_crease_is_no_gap():
     # A right loop with a 0.6 mm flexion crease (simulate.with_crease), an 8-row strip at
     # 100 mm/s: frames in the middle of the swipe with no texture, the finger moving at
     # 0.5 px per frame throughout (simulator truth: no gap). Measured before the band was
     # bridged: a false gap, span +6.2 %, along RMS 7.7 px, image NCC 0.69; after: +0.015 %,
     # 0.05 px, 0.98.
-    from stripstitch import evaluate, simulate
+    from stripstitch import simulate
 
     f = simulate.make_finger("right_loop", size_mm=(14.0, 12.0), rng=3)
     cap = simulate.swipe("right_loop", finger=simulate.with_crease(f, at_mm=7.0, width_mm=0.6),
                          rng=5, n_rows=8, n_cols=192, frame_rate_hz=4000.0, speed_mm_s=100.0,
                          snr_db=25.0)
-    assert not cap.events_of("gap")
-    res = stitch(cap.frames, frame_rate_hz=4000.0, timestamps_s=cap.times_s)
-    assert not res.events_of("gap")
-    d = evaluate.evaluate(res, cap, distortion=False).to_dict()
+    res, d = _crease_swipe_errors(cap, 4000.0)
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.2 %.
     assert abs(d["span_error_pct"]) < 0.2
     assert d["along_rms_px"] < 0.3 and d["ncc"] > 0.95
     # Reported with its cause, and the travel across it within its stated uncertainty of the
     # simulator's (frame before the run to frame after it).
-    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
-    assert len(band) == 1
-    a, b = band[0].first_frame - 1, band[0].last_frame + 1
-    true_px = float(np.hypot(*(cap.positions[b] - cap.positions[a])))
-    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+    _assert_one_band_within_its_uncertainty(res, cap.positions)
     assert any("no ridges" in r for r in res.report.reasons)
 
 
@@ -729,11 +743,7 @@ def test_band_narrower_than_the_strip_is_no_gap():
     assert abs(_span_error(res, pos)) < 0.002
     assert np.abs(res.positions[:, 0] - pos[:, 0]).max() < 0.5
     assert not res.events_of("gap")
-    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
-    assert len(band) == 1
-    a, b = band[0].first_frame - 1, band[0].last_frame + 1
-    true_px = float(np.hypot(*(pos[b] - pos[a])))
-    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+    _assert_one_band_within_its_uncertainty(res, pos)
 
 
 def test_simulated_narrow_crease_at_low_snr_is_no_gap():
@@ -741,24 +751,17 @@ def test_simulated_narrow_crease_at_low_snr_is_no_gap():
     # through it (simulator truth: no gap). Measured before a band's edge in the frames' rows
     # told it from a too-fast jump (three seeds): a false gap, span +7.1 to +7.3 %, along RMS
     # 9.3-9.5 px, image NCC 0.61-0.63; after: -0.02 to -0.07 %, 0.06-0.09 px, 0.98.
-    from stripstitch import evaluate, simulate
+    from stripstitch import simulate
 
     f = simulate.make_finger("arch", size_mm=(14.0, 12.0), rng=4413)
     cap = simulate.swipe("arch", finger=simulate.with_crease(f, at_mm=7.7, width_mm=0.7), rng=1,
                          n_rows=16, n_cols=128, frame_rate_hz=2000.0, profile="accel_decel",
                          speed_mm_s=100.0, snr_db=16.0)
-    assert not cap.events_of("gap")
-    res = stitch(cap.frames, frame_rate_hz=2000.0, timestamps_s=cap.times_s)
-    assert not res.events_of("gap")
-    d = evaluate.evaluate(res, cap, distortion=False).to_dict()
+    res, d = _crease_swipe_errors(cap, 2000.0)
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.3 %.
     assert abs(d["span_error_pct"]) < 0.3
     assert d["along_rms_px"] < 0.3 and d["ncc"] > 0.95
-    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
-    assert len(band) == 1
-    a, b = band[0].first_frame - 1, band[0].last_frame + 1
-    true_px = float(np.hypot(*(cap.positions[b] - cap.positions[a])))
-    assert abs(band[0].details["travel_px"] - true_px) < 2 * band[0].details["uncertainty_px"]
+    _assert_one_band_within_its_uncertainty(res, cap.positions)
 
 
 def test_two_row_strip_at_its_overlap_limit_is_no_gap():

@@ -317,6 +317,16 @@ def test_row_delay_speed_property(v, seed):
     assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.01
 
 
+def _delay_of_four_rows(v):
+    """Exact rows of a 4-row strip moving v px per frame for 300 frames, and the delay read
+    between its first and last rows (most of the times read)."""
+    t = np.arange(300)
+    z, ok = _rows_moving(v * t, 0.0 * t, n_rows=4)
+    rd = register.row_delay(z, ok, row_step=3)
+    assert rd.valid.mean() > 0.8
+    return z, ok, rd
+
+
 @pytest.mark.parametrize("v", [0.85, 1.2, -1.5])
 def test_row_delay_between_rows_further_apart(v):
     # Rows k apart see the same texture k / v frames apart: between the first and last rows
@@ -324,10 +334,7 @@ def test_row_delay_between_rows_further_apart(v):
     # rows see it under a frame apart from 1 px per frame: read between lags 0 and 1 by the
     # three-point fit (measured: median speed 0.4 % high at 1.2 px per frame, 1.4 % at 1.5),
     # and not at all when delays under a frame are refused (min_delay=1).
-    t = np.arange(300)
-    z, ok = _rows_moving(v * t, 0.0 * t, n_rows=4)
-    rd = register.row_delay(z, ok, row_step=3)
-    assert rd.valid.mean() > 0.8
+    z, ok, rd = _delay_of_four_rows(v)
     assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.005
     assert np.percentile(np.abs(rd.along_px[rd.valid] / v - 1.0), 90) < 0.02
     if abs(v) > 1.0:
@@ -343,10 +350,7 @@ def test_row_delay_of_a_fast_finger_takes_the_cosine_fit(v):
     # peak between the first and last rows of a 4-row strip is narrower than the lag
     # spacing; the three-point Gaussian fit read the speed 3.4 % low on these exact rows (the
     # speed they were cut at is the truth), the cosine fit (Cespedes et al. 1995) 1.3 % high.
-    t = np.arange(300)
-    z, ok = _rows_moving(v * t, 0.0 * t, n_rows=4)
-    rd = register.row_delay(z, ok, row_step=3)
-    assert rd.valid.mean() > 0.8
+    _, _, rd = _delay_of_four_rows(v)
     assert abs(np.median(rd.along_px[rd.valid]) / v - 1.0) < 0.02
 
 
