@@ -555,9 +555,8 @@ class StreamingStitcher:
         with ``rows``, also each row's mean square (T, R) that it is the root mean of."""
         fp = self._blank_sum / self._blank_n if self._blank_n >= 8 else 0.0
         d = np.diff(x - fp, axis=-1)
-        ms = np.mean(d * d, axis=-1)
-        tex = np.sqrt(np.mean(ms, axis=-1))
-        return (tex, ms) if rows else tex
+        tex = np.sqrt(np.mean(d * d, axis=(-2, -1)))
+        return (tex, np.mean(d * d, axis=-1)) if rows else tex
 
     def _prepare_batch(self, a, b):
         """Fixed pattern, contact and prepared frames for frames a..b-1 (in their slots)."""
@@ -1064,7 +1063,12 @@ class StreamingStitcher:
                 t_h = np.array([h[0] for h in self._clear_hist])
                 p_h = np.array([h[1] for h in self._clear_hist])
                 v = _steady_velocity(t_h, p_h, 3)
-                if v is not None:
+                # ... only if the last clear frame is at most a strip's height of travel back
+                # (a band's faint edge crosses the strip in that): after a longer faint stretch
+                # (the finger leaving) the carry would start from a stale frame and speed (a
+                # large finger's exit: 65 faint frames, then one blank, the next clear frame
+                # thrown 20 px ahead, span +8 %)
+                if v is not None and np.hypot(*v) * (tt[i] - t_h[-1]) <= r_n:
                     self._carry = (t_h[-1], p_h[-1], v)
                     self._after = None
             if self._carry is not None:
