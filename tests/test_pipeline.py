@@ -764,6 +764,21 @@ def test_simulated_narrow_crease_at_low_snr_is_no_gap():
     _assert_one_band_within_its_uncertainty(res, cap.positions)
 
 
+def _speeding_strip(n_rows, v0, v1, n_frames, *, texture_rows):
+    """Exact-shift frames of an n_rows x 128 strip whose finger speeds up from v0 to v1 px
+    per frame and back (a half sine), slightly slanted, with a little noise; stitched, with
+    no gap reported. Returns the steps, the true positions and the reconstruction."""
+    tex = band_texture((texture_rows, 160), seed=0)
+    u = np.linspace(0.0, np.pi, n_frames - 1)
+    steps = np.stack([v0 + (v1 - v0) * np.sin(u), np.full(n_frames - 1, 0.04)], 1)
+    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
+    frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=n_rows, n_cols=128)
+    frames = frames + np.random.default_rng(0).normal(0.0, 0.02 * tex.std(), frames.shape)
+    res = stitch(frames)
+    assert not res.events_of("gap")
+    return steps, pos, res
+
+
 def test_two_row_strip_at_its_overlap_limit_is_no_gap():
     # A 2-row strip whose finger speeds up from 0.55 to 1.03 px per frame and back: above
     # 1 px per frame successive frames share no row, so links fail, yet every row of the
@@ -773,14 +788,7 @@ def test_two_row_strip_at_its_overlap_limit_is_no_gap():
     # +15 %, unusable; after: -0.6 to -0.7 %, no gap, the runs reported with their cause;
     # with the row delay also read under a frame (register.row_delay's min_delay), -0.09 to
     # +0.02 %.
-    tex = band_texture((500, 160), seed=0)
-    u = np.linspace(0.0, np.pi, 329)
-    steps = np.stack([0.55 + 0.48 * np.sin(u), np.full(329, 0.04)], 1)
-    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
-    frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=2, n_cols=128)
-    frames = frames + np.random.default_rng(0).normal(0.0, 0.02 * tex.std(), frames.shape)
-    res = stitch(frames)
-    assert not res.events_of("gap")
+    steps, pos, res = _speeding_strip(2, 0.55, 1.03, 330, texture_rows=500)
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.3 %.
     assert abs(_span_error(res, pos)) < 0.003
     limit = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "overlap_limit"]
@@ -795,14 +803,7 @@ def test_three_row_strip_past_a_pixel_per_frame_keeps_its_length():
     # the texture under a frame apart, which the delay reads about 1.4 % fast; the first and
     # last rows, two apart, read it over a frame. Measured with neighbouring rows only:
     # +1.17 %; with the outer rows where they read 1 px per frame or more: -0.19 %.
-    tex = band_texture((700, 160), seed=0)
-    u = np.linspace(0.0, np.pi, 249)
-    steps = np.stack([0.8 + 0.7 * np.sin(u), np.full(249, 0.04)], 1)
-    pos = np.vstack([[0.0, 0.0], np.cumsum(steps, 0)])
-    frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=3, n_cols=128)
-    frames = frames + np.random.default_rng(0).normal(0.0, 0.02 * tex.std(), frames.shape)
-    res = stitch(frames)
-    assert not res.events_of("gap")
+    _, pos, res = _speeding_strip(3, 0.8, 1.5, 250, texture_rows=700)
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.5 %.
     assert abs(_span_error(res, pos)) < 0.005
 
