@@ -705,18 +705,19 @@ def _shows_band_edge(prep, frames, static, med, typical, r_n):
     if typical is None or not typical.any():
         return False
     p = _row_power(prep, frames, static)
-    blank = (p < _BLANK_FRAC * med) & typical[None, :]
-    clear = p >= _FAINT_FRAC * med
+    return bool(_band_edge_rows((p < _BLANK_FRAC * med) & typical[None, :],
+                                p >= _FAINT_FRAC * med).any())
+
+
+def _band_edge_rows(blank, clear):
+    """Per frame, from its rows' (F, R) blank and clear flags: at least max(2, min(4, R // 4))
+    successive blank rows and a clear row (the batch path's and the stream's test)."""
+    r_n = blank.shape[1]
     need = max(2, min(4, r_n // 4))
-    for k in range(len(frames)):
-        if not clear[k].any():
-            continue
-        run = 0
-        for b in blank[k]:
-            run = run + 1 if b else 0
-            if run >= need:
-                return True
-    return False
+    if r_n < need + 1:
+        return np.zeros(blank.shape[0], dtype=bool)
+    runs = np.lib.stride_tricks.sliding_window_view(blank, need, axis=1).all(axis=-1)
+    return runs.any(axis=1) & clear.any(axis=1)
 
 
 # A frame is faint when its texture power (above the noise) is under this share of the
@@ -775,21 +776,14 @@ def _overlap_limit(link_gap, link_ok, along, times_ch, r_n):
     return link_gap, runs
 
 
-def _push_limit(positions, chain, runs, dt_frames, r_n):
+def _push_limit(positions, chain, cpairs, runs, dt_frames, r_n):
     """Each failed link of a run at the strip's limit (see _overlap_limit) moved at least
     R - 1 rows (it did not register): steps the motion model left shorter are lengthened to
     that, in place (the links that held next to it, at the limit themselves, read short)."""
-    if not runs:
-        return
-    direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
+    links = np.zeros(len(cpairs), dtype=bool)
     for k, e, _ in runs:
-        for m in range(k, e + 1):
-            i, j = int(chain[m]), int(chain[m + 1])
-            if np.sum(dt_frames[i:j] - 1.0) >= 0.5:
-                continue
-            step = direction * (positions[j, 0] - positions[i, 0])
-            if step < r_n - 1:
-                positions[j:, 0] += direction * (r_n - 1 - step)
+        links[k:e + 1] = True
+    _push_gaps(positions, chain, cpairs, links, dt_frames, r_n - 1)
 
 
 def _limit_frames(runs, chain, confidence):
@@ -978,7 +972,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     positions = spread(tr)
     cpairs = np.stack([chain[:-1], chain[1:]], 1)
     _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
-    _push_limit(positions, chain, limit_runs, dt_frames, r_n)
+    _push_limit(positions, chain, cpairs, limit_runs, dt_frames, r_n)
     # Confidence from each frame's registration (the frame tracking started from: its
     # neighbour's).
     info = _with_model_error(tr.info, tr.positions - tr.positions[np.maximum(tr.reference, 0)])
@@ -1074,7 +1068,8 @@ def _delay_along(prep, positions, link_failed, dt_frames, row_step=1, min_speed=
 def _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n):
     """Across a link with no overlap (too fast, no dropped frame to explain it) the frames
     moved by at least the strip's height: the motion alone would place them too close and
-    overlay rows that were never seen together. Push what follows out to R rows (in place)."""
+    overlay rows that were never seen together. Push what follows out to ``r_n`` rows (in
+    place; the strip's height for a gap, R - 1 for a link at its limit, see _push_limit)."""
     if not np.any(link_gap):
         return
     direction = np.sign(np.nanmedian(np.diff(positions[chain, 0]))) or 1.0
@@ -1196,7 +1191,7 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     positions = tr.positions.copy()
     angles_deg = np.degrees(tr.angles_rad)
     _push_gaps(positions, chain, cpairs, link_gap, dt_frames, r_n)
-    _push_limit(positions, chain, limit_runs, dt_frames, r_n)
+    _push_limit(positions, chain, cpairs, limit_runs, dt_frames, r_n)
     # Pairs kept per frame, for confidence.
     kept = np.zeros(t_n)
     total = np.zeros(t_n)

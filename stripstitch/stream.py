@@ -50,7 +50,8 @@ from . import report as _report
 from . import track as _track
 from . import trajectory as _traj
 from . import mosaic as _mosaic
-from .pipeline import _TRACK_MIN_ROWS, _plate_line_sums, _steady_velocity, _with_model_error
+from .pipeline import (_TRACK_MIN_ROWS, _band_edge_rows, _plate_line_sums, _steady_velocity,
+                       _with_model_error)
 from .pipeline import _confidence as _frame_confidence
 from ._jit import JIT
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
@@ -555,8 +556,9 @@ class StreamingStitcher:
         with ``rows``, also each row's mean square (T, R) that it is the root mean of."""
         fp = self._blank_sum / self._blank_n if self._blank_n >= 8 else 0.0
         d = np.diff(x - fp, axis=-1)
-        tex = np.sqrt(np.mean(d * d, axis=(-2, -1)))
-        return (tex, np.mean(d * d, axis=-1)) if rows else tex
+        d *= d
+        tex = np.sqrt(np.mean(d, axis=(-2, -1)))
+        return (tex, np.mean(d, axis=-1)) if rows else tex
 
     def _prepare_batch(self, a, b):
         """Fixed pattern, contact and prepared frames for frames a..b-1 (in their slots)."""
@@ -930,9 +932,7 @@ class StreamingStitcher:
         if strong.any():
             self._row_typ += ms[strong].sum(axis=0)
             self._row_typ_n += int(strong.sum())
-        r_n = ms.shape[1]
-        need = max(2, min(4, r_n // 4))
-        if self._row_typ_n < 8 or r_n < need + 1:
+        if self._row_typ_n < 8:
             return np.zeros(len(ms), dtype=bool)
         floor2 = self._tr_tex_min ** 2
         span = max(self._tex_hi ** 2 - floor2, 0.0)
@@ -941,10 +941,8 @@ class StreamingStitcher:
         sd = floor2 * np.sqrt(4.0 / max(self._shape[1] - 1, 1))
         p = ms - floor2
         typical = self._row_typ / self._row_typ_n - floor2 >= 0.25 * span + 3.0 * sd
-        blank = (p < _BLANK_FRAC * span + 2.0 * sd) & typical[None, :]
-        clear = p >= 0.25 * span + 3.0 * sd
-        runs = np.lib.stride_tricks.sliding_window_view(blank, need, axis=1).all(axis=-1)
-        return runs.any(axis=1) & clear.any(axis=1)
+        return _band_edge_rows((p < _BLANK_FRAC * span + 2.0 * sd) & typical[None, :],
+                               p >= 0.25 * span + 3.0 * sd)
 
     def _place_lead_in(self, a, b):
         """Frames a..b-1, from the finger's arrival: backwards from the frame of strongest
