@@ -1402,7 +1402,7 @@ class StreamingStitcher:
             if abs(pos[k, 0]) > 2 * r_n and self._ev_dir == 0.0:
                 self._ev_dir = float(np.sign(pos[k, 0]))
             # stall
-            if contact[k] and t >= half and np.hypot(*v) < v_stall:
+            if contact[k] and t >= half and _report._still(v, v_stall):
                 if self._ev_stall_start is None:
                     self._ev_stall_start, self._ev_stall_sent = t, False
                 if not self._ev_stall_sent and t - self._ev_stall_start + 1 >= min_len:

@@ -326,6 +326,53 @@ def test_turn_made_while_stalled_is_found():
     assert d["stall_detected"] == 1
 
 
+def test_stall_of_a_turning_finger_is_reported():
+    # Simulator truth: a whorl turning by 3.9 degrees over the swipe, 1.3 of them during a
+    # 24 ms stall (frames 66-160) at 19 dB. The stalled frames all sample one phase, so the
+    # refinement cannot re-place them, and the placement without their turn drifts across by
+    # 0.015 px per frame (3 mm/s): the plain speed rule took that for motion and reported no
+    # stall; the finger makes no progress along the swipe, which is what a stall is.
+    from stripstitch import evaluate as ev
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("whorl", size_mm=(16.0, 12.0), rng=9644)
+    cap = simulate.swipe("whorl", finger=finger, rng=10044, n_rows=8, n_cols=192,
+                         frame_rate_hz=4000.0, profile="human", speed_mm_s=192.706,
+                         snr_db=19.478, skew_deg=2.419, rotation_deg=3.8846,
+                         stalls=((3.4417, 0.023869),))
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
+    assert d["stall_detected"] == 1 and d["stall_false"] == 0
+    stall = [e for e in res.events if e.kind == "stall"][0]
+    assert 60 <= stall.first_frame <= 90 and 140 <= stall.last_frame <= 165
+
+
+def test_stall_rule_is_along_the_swipe():
+    # A stall is no progress along the swipe: slower than the limit along, and slower than
+    # three times it across (the drift a turn on the spot leaves); a finger sliding sideways
+    # faster than that is moving. Trajectories by construction, 4 kHz, 50.8 um pitch: the
+    # limit of 2 mm/s is 0.00984 px per frame.
+    from stripstitch import report
+
+    t_n = 400
+    times = np.arange(t_n) / 4000.0
+
+    def stalls(across_px_per_frame):
+        v = np.where((np.arange(t_n) >= 150) & (np.arange(t_n) < 250), 0.0, 0.5)
+        pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]),
+                        across_px_per_frame * np.arange(t_n)], 1)
+        ev_ = report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
+                                 contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
+                                 link_dt_frames=np.ones(t_n - 1), times_s=times,
+                                 frame_rate_hz=4000.0, n_rows=8, pitch_um=50.8)
+        return [(e.first_frame, e.last_frame) for e in ev_ if e.kind == "stall"]
+
+    for across in (0.0, 0.015, 0.025):
+        (a, b), = stalls(across)
+        assert abs(a - 150) <= 10 and abs(b - 250) <= 10
+    assert stalls(0.04) == []
+
+
 def test_turn_read_short_at_first_gets_a_second_opinion():
     # Simulator truth: the finger turns by 3.6 degrees while it backs up once. The first
     # pass's twist read 1.4 degrees at 2.3 standard errors, under the significance test, so
