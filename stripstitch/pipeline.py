@@ -379,10 +379,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                 positions = _across_drift_from(positions, placed[0], prep.contact, r_n)
     if delay_steps is not None:
         positions = _with_along_steps(positions, delay_steps)
-    positions, confidence, link_failed, blank_runs = _bridge_blank_runs(
+    positions, confidence, link_failed, blank_runs, end_blank = _bridge_blank_runs(
         prep, chain, positions, confidence, link_failed, times, r_n)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
-                   blank_runs=blank_runs, limit_runs=limit_runs,
+                   blank_runs=blank_runs, limit_runs=limit_runs, end_blank=end_blank,
                    dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
                    pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
                        "pitch_um": pitch_um, "frame_rate_hz": frame_rate_hz, "mode": mode,
@@ -579,14 +579,25 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     the mean of those two velocities (exact for a constant acceleration); the frames after
     it keep their placement relative to each other, the links in it are no gap, and its
     frames get a low confidence (reported as low_confidence; still fused, since the band
-    they show is real). Returns positions, confidence, link_failed and the bridged runs:
-    (first frame, last frame, travel px, uncertainty px) each."""
+    they show is real). Returns positions, confidence, link_failed, the bridged runs:
+    (first frame, last frame, travel px, uncertainty px) each, and the blank frames at the
+    swipe's ends that the contact test let through (T,) bool: a low SNR leaves it no split
+    between blank and textured frames, and such frames, matching only noise and the fixed
+    pattern's remains, are placed as if still (the report does not count them as contact)."""
+    t_n = positions.shape[0]
+    end_blank = np.zeros(t_n, dtype=bool)
     if chain.size < 8:
-        return positions, confidence, link_failed, []
+        return positions, confidence, link_failed, [], end_blank
     sig2, med, static = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
     if med <= 0.0:
-        return positions, confidence, link_failed, []
-    t_n = positions.shape[0]
+        return positions, confidence, link_failed, [], end_blank
+    # the leading and trailing runs of blank chain frames
+    blank_c = sig2 < _END_BLANK_FRAC * med
+    if not blank_c.all():
+        k0 = int(np.argmin(blank_c))
+        k1 = chain.size - int(np.argmin(blank_c[::-1]))
+        end_blank[chain[:k0]] = True
+        end_blank[chain[k1:]] = True
     # per frame, over the finger's extent: faint (incl. not in contact) and blank
     faint = np.zeros(t_n, dtype=bool)
     blank = np.zeros(t_n, dtype=bool)
@@ -679,7 +690,7 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         run = run[prep.contact[run]]
         confidence[run] = np.minimum(confidence[run], conf)
         runs.append((int(f0 + 1), int(f1 - 1), travel, sigma))
-    return positions, confidence, link_failed, runs
+    return positions, confidence, link_failed, runs, end_blank
 
 
 def _row_power(prep, frames, static):
@@ -724,6 +735,9 @@ def _band_edge_rows(blank, clear):
 # swipe's median, blank under the second (no texture left to register).
 _FAINT_FRAC = 0.25
 _BLANK_FRAC = 0.03
+# Frames at the swipe's ends with less texture than this share of the median are not counted
+# as contact by the report (see _bridge_blank_runs).
+_END_BLANK_FRAC = 0.1
 # Placement error (px) assumed for frames carried across a blank run at the measured speed.
 _BRIDGE_SIGMA_PX = 0.5
 # ... plus this share of the travel across the run: the speed within it is not measured (on
@@ -1244,8 +1258,10 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
 
 
 def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, dt_frames, times,
-            frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=(), limit_runs=()):
-    """Fusion, events and report."""
+            frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=(), limit_runs=(),
+            end_blank=None):
+    """Fusion, events and report (``end_blank``: frames the report does not count as
+    contact, see _bridge_blank_runs)."""
     r_n = prep.z.shape[1]
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
@@ -1266,14 +1282,15 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
                          origin_px=mos.origin_px, pitch_px=mos.pitch_px)
 
     # ---- events and report ----
+    contact = prep.contact if end_blank is None else prep.contact & ~end_blank
     events = _report.find_events(positions=positions, angles_deg=angles_deg,
-                                 confidence=confidence, contact=prep.contact,
+                                 confidence=confidence, contact=contact,
                                  link_failed=link_failed, link_dt_frames=dt_frames,
                                  times_s=times, frame_rate_hz=frame_rate_hz, n_rows=r_n,
                                  pitch_um=pitch_um, blank_runs=blank_runs,
                                  limit_runs=limit_runs)
     rep = _report.make_report(events=events, positions=positions, angles_deg=angles_deg,
-                              confidence=confidence, contact=prep.contact, times_s=times,
+                              confidence=confidence, contact=contact, times_s=times,
                               frame_rate_hz=frame_rate_hz, n_rows=r_n, pitch_um=pitch_um,
                               image=mos.image, n_plates=int(prep.plate_ok.sum()),
                               n_cols=int(prep.plate_ok.any(axis=0).sum()))

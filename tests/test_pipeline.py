@@ -347,6 +347,28 @@ def test_stall_of_a_turning_finger_is_reported():
     assert 60 <= stall.first_frame <= 90 and 140 <= stall.last_frame <= 165
 
 
+def test_blank_frames_at_the_ends_are_no_contact_for_the_report():
+    # Simulator truth: a whorl arriving on an 8x192 strip at 12 dB; the first 12 frames see no
+    # finger and the next 20 only its edge (under 30 % of the plates). At that SNR the contact
+    # test finds no split between blank and textured frames and counts every frame; the
+    # blank ones match only noise, are placed as if still, and the step to the moving
+    # frames read as a 1.06 px backtrack. Frames at the ends with under a tenth of the
+    # typical texture are no contact for the report: no backtrack, a no_contact event there.
+    from stripstitch import evaluate as ev
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("whorl", size_mm=(16.0, 12.0), rng=9614)
+    cap = simulate.swipe("whorl", finger=finger, rng=10014, n_rows=8, n_cols=192,
+                         frame_rate_hz=4000.0, profile="human", speed_mm_s=109.009,
+                         snr_db=12.286, skew_deg=2.575, stalls=((7.2698, 0.07216),))
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz, timestamps_s=cap.times_s)
+    d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
+    assert d["backtrack_false"] == 0 and d["stall_detected"] == 1 and d["stall_false"] == 0
+    starts = [e for e in res.events if e.kind == "no_contact" and e.first_frame == 0]
+    assert starts and 8 <= starts[0].last_frame <= 40
+    assert abs(d["span_error_pct"]) < 0.5
+
+
 def test_stall_rule_is_along_the_swipe():
     # A stall is no progress along the swipe: slower than the limit along, and slower than
     # three times it across (the drift a turn on the spot leaves); a finger sliding sideways
