@@ -395,6 +395,36 @@ def test_stall_rule_is_along_the_swipe():
     assert stalls(0.04) == []
 
 
+def test_stall_broken_by_noise_is_one_stall():
+    # Trajectories by construction (4 kHz, 50.8 um pitch: the 2 mm/s limit is 0.0098 px per
+    # frame, 10 ms = 40 frames). A 200-frame stall whose placement jumps 0.2 px and back
+    # within 4 frames in its middle (noise crossing the speed limit) is one stall; a stall,
+    # 4 px of travel over 40 frames, and a second stall are two.
+    from stripstitch import report
+
+    def stalls(pos):
+        t_n = len(pos)
+        ev_ = report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
+                                 contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
+                                 link_dt_frames=np.ones(t_n - 1), times_s=np.arange(t_n) / 4000.0,
+                                 frame_rate_hz=4000.0, n_rows=8, pitch_um=50.8)
+        return [(e.first_frame, e.last_frame) for e in ev_ if e.kind == "stall"]
+
+    v = np.full(500, 0.5)
+    v[150:350] = 0.0
+    v[248:250] = 0.1                         # there ...
+    v[250:252] = -0.1                        # ... and back
+    pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]), np.zeros(500)], 1)
+    (a, b), = stalls(pos)
+    assert abs(a - 150) <= 10 and abs(b - 350) <= 10
+    v = np.full(500, 0.5)
+    v[100:200] = 0.0
+    v[200:240] = 0.1
+    v[240:340] = 0.0
+    pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]), np.zeros(500)], 1)
+    assert len(stalls(pos)) == 2
+
+
 def test_turn_read_short_at_first_gets_a_second_opinion():
     # Simulator truth: the finger turns by 3.6 degrees while it backs up once. The first
     # pass's twist read 1.4 degrees at 2.3 standard errors, under the significance test, so
