@@ -165,6 +165,28 @@ def test_fixed_pattern_removed_by_prepare():
     assert prep.contact.all()
 
 
+def test_prepare_keeps_the_plates_under_a_finger_narrower_than_the_strip():
+    # Exact-shift frames (scipy.ndimage.fourier_shift) of a texture moving 0.6 px per frame
+    # over the right half of a 64-column strip; the left half sees noise only (a finger
+    # narrower than the strip), 30 dB. The textured plates change from frame to frame by the
+    # texture's motion, far more than the bare noise the untouched majority shows: they are
+    # no "noisy plates". A really noisy plate among them (ten times the noise) still is.
+    rng = np.random.default_rng(5)
+    tex = band_texture((512, 96), seed=4)
+    pos = np.stack([np.arange(150) * 0.6, np.zeros(150)], 1)
+    frames = cut_frames(tex, pos)
+    sigma = float(frames.std()) / 10 ** (30 / 20)
+    frames[:, :, :36] = 0.0                     # untouched: no texture, noise only
+    frames = frames + sigma * rng.standard_normal(frames.shape)
+    frames[:, 3, 50] += 10.0 * float(frames[:, :, 40:].std()) * rng.standard_normal(150)
+    prep = register.prepare(frames + 100.0)
+    textured = np.zeros((8, 64), bool)
+    textured[:, 36:] = True
+    textured[3, 50] = False
+    assert prep.plate_ok[textured].all()
+    assert not prep.plate_ok[3, 50]
+
+
 def test_prepare_statistics_match_the_formulas():
     # The compiled per-frame and per-plate passes against the same statistics in numpy.
     from stripstitch import register as reg
