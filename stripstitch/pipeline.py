@@ -591,11 +591,16 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     sig2, med, static = _texture_power(prep, chain, prep.noise_sigma, positions[chain, 0])
     if med <= 0.0:
         return positions, confidence, link_failed, [], end_blank
-    # the leading and trailing runs of blank chain frames
+    # The leading and trailing runs of blank chain frames, only where the contact test let
+    # the swipe's first (last) frame through, i.e. found no blank frames there at all: where
+    # it did split, frames next to the split are the finger's soft edge, whose texture this
+    # measure (against a frame-to-frame noise estimate that a fast swipe's motion inflates)
+    # can read as nothing (a 16x128 demo swipe at 1 px per frame: a quarter of the strip
+    # touched, read 0).
     blank_c = sig2 < _END_BLANK_FRAC * med
     if not blank_c.all():
-        k0 = int(np.argmin(blank_c))
-        k1 = chain.size - int(np.argmin(blank_c[::-1]))
+        k0 = int(np.argmin(blank_c)) if chain[0] == 0 else 0
+        k1 = chain.size - int(np.argmin(blank_c[::-1])) if chain[-1] == t_n - 1 else chain.size
         end_blank[chain[:k0]] = True
         end_blank[chain[k1:]] = True
     # per frame, over the finger's extent: faint (incl. not in contact) and blank
