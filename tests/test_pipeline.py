@@ -409,25 +409,34 @@ def test_soft_finger_edge_of_a_fast_swipe_stays_in_contact():
     assert res.report.swipe_length_mm > 15.5
 
 
+def _events_of(pos, frame_rate_hz, n_rows=8):
+    """report.find_events on a trajectory (T, 2) known by construction: every frame in
+    contact, no failed link, no dropped frame, 50.8 um pitch."""
+    from stripstitch import report
+    t_n = len(pos)
+    return report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
+                              contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
+                              link_dt_frames=np.ones(t_n - 1),
+                              times_s=np.arange(t_n) / frame_rate_hz,
+                              frame_rate_hz=frame_rate_hz, n_rows=n_rows, pitch_um=50.8)
+
+
+def _stalls_of(pos):
+    """(first, last) of the stalls found on a 4 kHz trajectory (see _events_of)."""
+    return [(e.first_frame, e.last_frame) for e in _events_of(pos, 4000.0) if e.kind == "stall"]
+
+
 def test_stall_rule_is_along_the_swipe():
     # A stall is no progress along the swipe: slower than the limit along, and slower than
     # three times it across (the drift a turn on the spot leaves); a finger sliding sideways
     # faster than that is moving. Trajectories by construction, 4 kHz, 50.8 um pitch: the
     # limit of 2 mm/s is 0.00984 px per frame.
-    from stripstitch import report
-
     t_n = 400
-    times = np.arange(t_n) / 4000.0
 
     def stalls(across_px_per_frame):
         v = np.where((np.arange(t_n) >= 150) & (np.arange(t_n) < 250), 0.0, 0.5)
-        pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]),
-                        across_px_per_frame * np.arange(t_n)], 1)
-        ev_ = report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
-                                 contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
-                                 link_dt_frames=np.ones(t_n - 1), times_s=times,
-                                 frame_rate_hz=4000.0, n_rows=8, pitch_um=50.8)
-        return [(e.first_frame, e.last_frame) for e in ev_ if e.kind == "stall"]
+        return _stalls_of(np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]),
+                                    across_px_per_frame * np.arange(t_n)], 1))
 
     for across in (0.0, 0.015, 0.025):
         (a, b), = stalls(across)
@@ -440,29 +449,19 @@ def test_stall_broken_by_noise_is_one_stall():
     # frame, 10 ms = 40 frames). A 200-frame stall whose placement jumps 0.2 px and back
     # within 4 frames in its middle (noise crossing the speed limit) is one stall; a stall,
     # 4 px of travel over 40 frames, and a second stall are two.
-    from stripstitch import report
-
-    def stalls(pos):
-        t_n = len(pos)
-        ev_ = report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
-                                 contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
-                                 link_dt_frames=np.ones(t_n - 1), times_s=np.arange(t_n) / 4000.0,
-                                 frame_rate_hz=4000.0, n_rows=8, pitch_um=50.8)
-        return [(e.first_frame, e.last_frame) for e in ev_ if e.kind == "stall"]
-
     v = np.full(500, 0.5)
     v[150:350] = 0.0
     v[248:250] = 0.1                         # there ...
     v[250:252] = -0.1                        # ... and back
     pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]), np.zeros(500)], 1)
-    (a, b), = stalls(pos)
+    (a, b), = _stalls_of(pos)
     assert abs(a - 150) <= 10 and abs(b - 350) <= 10
     v = np.full(500, 0.5)
     v[100:200] = 0.0
     v[200:240] = 0.1
     v[240:340] = 0.0
     pos = np.stack([np.concatenate([[0.0], np.cumsum(v[:-1])]), np.zeros(500)], 1)
-    assert len(stalls(pos)) == 2
+    assert len(_stalls_of(pos)) == 2
 
 
 def test_turn_read_short_at_first_gets_a_second_opinion():
@@ -552,15 +551,8 @@ def test_quick_jerk_back_is_reported_and_noise_is_not():
     # frame backwards (0.4 mm in 2 ms, a jerk the smoothed velocity averages away), then on;
     # a second one that stalls 200 frames with 0.02 px of white jitter (common practice: a
     # placement's noise is no motion).
-    from stripstitch import report
-
     def events(along):
-        t_n = along.size
-        pos = np.stack([along, np.zeros(t_n)], 1)
-        return report.find_events(positions=pos, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
-                                  contact=np.ones(t_n, bool), link_failed=np.zeros(t_n - 1, bool),
-                                  link_dt_frames=np.ones(t_n - 1), times_s=np.arange(t_n) / 2000.0,
-                                  frame_rate_hz=2000.0, n_rows=16, pitch_um=50.8)
+        return _events_of(np.stack([along, np.zeros(along.size)], 1), 2000.0, n_rows=16)
 
     steps = np.r_[np.full(60, 4.0), np.full(4, -2.0), np.full(60, 4.0)]
     jerk = [e for e in events(np.r_[0.0, np.cumsum(steps)]) if e.kind == "backtrack"]
