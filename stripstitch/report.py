@@ -25,6 +25,15 @@ FEW_PLATES = 256
 # 25 dB) erred by 0.06-11.7 px RMS along (median 2.5; ridge-period slips across so few
 # columns), and bench_geometry.py's 20x16 strip came out 7.9 % short, called usable.
 NARROW_COLS = 24
+# ... and strips of this many rows or fewer get a reason too: they are placed by pairs that
+# overlap by a few rows, over which ridges running across the strip leave the motion along
+# them undetermined (the estimates slide along the ridges, and through the slant of the
+# ridges the length follows). Simulated swipes drawn at random (2-8 kHz, 96-256 columns,
+# 0.1-0.65 (R - 1) px per frame, 15-40 dB, six pattern classes, a quarter with a stall; 30
+# per row count): more than 1 % of span off in 12 / 13 / 11 / 12 of 30 with 2 / 3 / 4 / 5
+# rows (worst 14.5 / 31 / 12.5 / 24 %), all called usable; with 6 and 8 rows 5 of 30, at
+# the limits of speed and deceleration.
+FEW_ROWS = 5
 
 
 def _runs(mask):
@@ -95,6 +104,86 @@ def _stall_rule(positions, times_s, frame_rate_hz, pitch_um, *, stall_speed_mm_s
         return (vel, stall_speed_mm_s * 1e3 / pitch_um / frame_rate_hz,
                 max(8, int(round(min_stall_s * frame_rate_hz))))
     return vel, 0.01, 40
+
+
+# A swerve: the placement moving sideways, off the swipe's straight line, by at least
+# _SWERVE_PX within _SWERVE_TRAVEL_PX of travel along the swipe (14 degrees on average over
+# 1.6 mm). A finger guided over a strip does not do that; a placement does where ridges run
+# straight over the whole strip (the aperture problem) and the registrations slide along
+# them: a 16x32 strip under the straight ridges of a tented arch's flank ran off 1.4
+# px per frame sideways for 40 frames at each end (46 px, called usable; bench_geometry.py
+# --seed 301). Measured on 218 simulated swipes (the accuracy suite, random swipes of seeds
+# 7000 and 9100, the geometry sets of seeds 300 and 301): the truth never moves more than
+# 0.3 px off the line within that travel; the placements of the swipes that were right moved
+# up to 4 px (2-row strips 5); the four over 8 px were that 16x32 strip (46 px) and three
+# swipes already called unusable. Over twice the limit the image is too distorted to use.
+_SWERVE_TRAVEL_PX = 32.0
+_SWERVE_PX = 8.0
+_SWERVE_UNUSABLE_PX = 16.0
+
+
+def _window_extremes(e, end):
+    """Maximum and minimum of ``e[t:end[t]]`` for every t (end[t] > t), by a sparse table
+    of doubling windows (O(T log T))."""
+    n = len(e)
+    mx = [e.copy()]
+    mn = [e.copy()]
+    k = 1
+    while 2 * k <= n:
+        a, b = mx[-1], mn[-1]
+        mx.append(np.maximum(a[:n - 2 * k + 1], a[k:n - k + 1]))
+        mn.append(np.minimum(b[:n - 2 * k + 1], b[k:n - k + 1]))
+        k *= 2
+    t = np.arange(n)
+    length = np.maximum(end - t, 1)
+    lev = np.floor(np.log2(length)).astype(np.int64)
+    hi = np.empty(n)
+    lo = np.empty(n)
+    for j in np.unique(lev):
+        sel = lev == j
+        w = 1 << int(j)
+        ts = t[sel]
+        te = end[sel] - w
+        hi[sel] = np.maximum(mx[j][ts], mx[j][te])
+        lo[sel] = np.minimum(mn[j][ts], mn[j][te])
+    return hi, lo
+
+
+def find_swerves(positions, first, last, *, travel_px=_SWERVE_TRAVEL_PX, limit_px=_SWERVE_PX):
+    """Stretches where the placement leaves the swipe's straight line sideways.
+
+    Over the frames ``first..last``, the sideways offset from the line through the first and
+    last positions is compared over every window of ``travel_px`` of travel along the swipe
+    (absolute travel, so a backtrack or a stall does not end a window early); where it
+    changes by ``limit_px`` or more the stretch is returned.
+
+    Returns
+    -------
+    list of (first_frame, last_frame, excursion_px)
+    """
+    p = np.asarray(positions, dtype=np.float64)[first:last + 1]
+    n = len(p)
+    if n < 3:
+        return []
+    d = p[-1] - p[0]
+    slope = d[1] / d[0] if abs(d[0]) > 1e-9 else 0.0
+    off = p[:, 1] - slope * p[:, 0]
+    travel = np.concatenate([[0.0], np.cumsum(np.abs(np.diff(p[:, 0])))])
+    end = np.searchsorted(travel, travel + travel_px, side="right")
+    end = np.clip(np.maximum(end, np.arange(n) + 1), 1, n)
+    hi, lo = _window_extremes(off, end)
+    exc = np.maximum(hi - off, off - lo)
+    out = []
+    for a, b in _runs(exc >= limit_px):
+        out.append((int(a + first), int(min(end[b] - 1, n - 1) + first), float(exc[a:b + 1].max())))
+    # windows of neighbouring frames overlap: merge runs that touch
+    merged = []
+    for a, b, x in out:
+        if merged and a <= merged[-1][1] + 1:
+            merged[-1] = (merged[-1][0], max(b, merged[-1][1]), max(x, merged[-1][2]))
+        else:
+            merged.append((a, b, x))
+    return merged
 
 
 def find_events(*, positions, angles_deg, confidence, contact, link_failed, link_dt_frames,
@@ -201,6 +290,15 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
             "min_confidence": round(float(confidence[a:b + 1].min()), 3),
             "speed_px_per_frame": round(float(speed_px), 3),
             "uncertainty_px": round(float(sigma_px), 2)}))
+        low[a:b + 1] = False
+    # The placement swerving sideways (see find_swerves): the sideways placement there is
+    # a guess, whatever the registrations' stated confidence.
+    for a, b, exc in find_swerves(positions, first, last):
+        events.append(Event("low_confidence", a, b, {
+            "frames": int(b - a + 1), "cause": "swerve",
+            "min_confidence": round(float(confidence[a:b + 1].min()), 3),
+            "excursion_px": round(exc, 2), "excursion_mm": round(exc * pitch_um / 1000, 3),
+            "within_travel_px": _SWERVE_TRAVEL_PX}))
         low[a:b + 1] = False
     # Low confidence over contact frames.
     for a, b in _runs(low):
@@ -320,7 +418,23 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
                        f"on a {n_rows}-row strip: successive frames barely overlap and were "
                        "placed at the speed around them, so the length may be off by a few "
                        "percent; swipe more slowly or raise the frame rate")
-    n_low = counts.get("low_confidence", 0) - len(blank) - len(limit)
+    swerve = [e for e in events if e.kind == "low_confidence"
+              and e.details.get("cause") == "swerve"]
+    if swerve:
+        x = max(e.details["excursion_px"] for e in swerve)
+        reasons.append(f"{len(swerve)} place(s) where the placement swerves sideways by up to "
+                       f"{x:.0f} px ({x * pitch_um / 1000:.1f} mm) within "
+                       f"{_SWERVE_TRAVEL_PX * pitch_um / 1000:.1f} mm of travel, which a finger "
+                       "sliding over the sensor does not do: ridges running straight over the "
+                       "strip left the sideways placement undetermined there, and the image "
+                       "is distorted")
+        if x >= _SWERVE_UNUSABLE_PX:
+            verdict = "unusable"
+    if n_rows <= FEW_ROWS:
+        reasons.append(f"strip of only {n_rows} rows: placement less reliable, errors of "
+                       "several percent of the length are possible (over so few rows, ridges "
+                       "running across the strip leave the motion along them undetermined)")
+    n_low = counts.get("low_confidence", 0) - len(blank) - len(limit) - len(swerve)
     if n_low and mean_conf >= 0.5:
         reasons.append(f"{n_low} stretch(es) of low placement confidence (e.g. ridges parallel "
                        "to the swipe)")

@@ -426,6 +426,97 @@ def _stalls_of(pos):
     return [(e.first_frame, e.last_frame) for e in _events_of(pos, 4000.0) if e.kind == "stall"]
 
 
+def _swerve_reference(pos, travel_px=32.0):
+    """The swerve's definition evaluated directly (O(T^2)): per frame, the largest change of
+    the sideways offset from the line through the first and last positions over the frames
+    that follow within ``travel_px`` of absolute travel along the swipe."""
+    d = pos[-1] - pos[0]
+    off = pos[:, 1] - d[1] / d[0] * pos[:, 0]
+    travel = np.concatenate([[0.0], np.cumsum(np.abs(np.diff(pos[:, 0])))])
+    out = np.zeros(len(pos))
+    for t in range(len(pos)):
+        w = off[t:][travel[t:] - travel[t] <= travel_px]
+        out[t] = np.abs(w - off[t]).max()
+    return out
+
+
+def test_swerve_found_only_where_the_placement_leaves_its_line():
+    # Trajectories by construction, 4 kHz: a slanted swipe (5 degrees) at 0.5 px per frame
+    # that stalls, backs up 10 px and bends gently (its direction turning 10 degrees over
+    # the swipe, as a finger's path may) is not a swerve; the same swipe with a sideways run
+    # of v px per frame for 30 frames (15 px of travel) is one where 30 v reaches 8 px.
+    from stripstitch import report
+    t_n = 700
+    v = np.full(t_n - 1, 0.5)
+    v[200:300] = 0.0                                          # stall
+    v[400:420] = -0.5                                         # backtrack
+    along = np.concatenate([[0.0], np.cumsum(v)])
+    bend = np.radians(10.0) * along ** 2 / (2 * along.max())  # direction 5 -> 15 degrees
+    across = np.tan(np.radians(5.0)) * along + bend
+
+    def swerves(side_px_per_frame):
+        a = across.copy()
+        a[500:] += side_px_per_frame * np.minimum(np.arange(t_n - 500), 30)
+        pos = np.stack([along, a], 1)
+        ev = [e for e in _events_of(pos, 4000.0)
+              if e.kind == "low_confidence" and e.details.get("cause") == "swerve"]
+        return pos, ev, report.find_swerves(pos, 0, t_n - 1)
+
+    _, ev, _ = swerves(0.0)
+    assert ev == []
+    _, ev, _ = swerves(0.2)                                    # 6 px: under the limit
+    assert ev == []
+    pos, ev, found = swerves(0.4)                              # 12 px
+    assert len(ev) == 1 and ev[0].first_frame <= 500 <= 530 <= ev[0].last_frame
+    ref = _swerve_reference(pos)
+    assert found[0][2] == pytest.approx(ref.max(), abs=1e-9)   # the sparse-table extremes
+    assert 10.0 < found[0][2] < 12.0                           # the line's slope takes a little
+    # A report on it: a reason, and over 16 px the verdict unusable.
+    for side, verdict in ((0.4, "usable"), (0.7, "unusable")):
+        pos, ev, _ = swerves(side)
+        rep = report.make_report(events=ev, positions=pos, angles_deg=np.zeros(t_n),
+                                 confidence=np.ones(t_n), contact=np.ones(t_n, bool),
+                                 times_s=np.arange(t_n) / 4000.0, frame_rate_hz=4000.0, n_rows=8,
+                                 pitch_um=50.8, image=np.ones((10, 10)))
+        assert rep.verdict == verdict
+        assert any("swerves sideways" in r for r in rep.reasons)
+
+
+def test_strips_of_few_rows_get_a_reason():
+    # Up to 5 rows the report says placement is less reliable (random simulated swipes of 2-5
+    # rows: a third off by more than 1 % of span; see report.FEW_ROWS); from 6 rows it does not.
+    from stripstitch import report
+    t_n = 400
+    pos = np.stack([0.5 * np.arange(t_n), np.zeros(t_n)], 1)
+    for n_rows, said in ((2, True), (5, True), (6, False)):
+        ev = _events_of(pos, 4000.0, n_rows=n_rows)
+        rep = report.make_report(events=ev, positions=pos, angles_deg=np.zeros(t_n),
+                                 confidence=np.ones(t_n), contact=np.ones(t_n, bool),
+                                 times_s=np.arange(t_n) / 4000.0, frame_rate_hz=4000.0,
+                                 n_rows=n_rows, pitch_um=50.8, image=np.ones((10, 10)))
+        assert rep.verdict == "usable"
+        assert any(f"only {n_rows} rows" in r for r in rep.reasons) == said
+
+
+def test_runaway_across_on_a_narrow_strip_is_reported():
+    # A 16x32 strip (1.6 mm wide) under the straight flank ridges of a tented arch: nothing
+    # across the strip fixes the sideways placement there, and the key-frame tracker ran off
+    # sideways by about 1.4 px per frame at both ends (about 28 px RMS across against the
+    # simulator's truth). It used to be called usable; the swerve makes it unusable. The
+    # truth itself never swerves (simulated swipes move on a straight slanted line).
+    from stripstitch import report, simulate
+    finger = simulate.make_finger("tented_arch", size_mm=(14.0, 10.0), rng=811, skin="wet")
+    cap = simulate.swipe("tented_arch", finger=finger, rng=1211, n_rows=16, n_cols=32,
+                         frame_rate_hz=3000.0, profile="constant", speed_mm_s=126.0,
+                         snr_db=30.0, skew_deg=3.2, backtracks=((4.9, 0.23),))
+    res = stitch(cap.frames, frame_rate_hz=3000.0)
+    first, last = res.report.frames_in_contact
+    assert report.find_swerves(cap.positions, first, last) == []
+    sw = [e for e in res.events if e.kind == "low_confidence" and e.details.get("cause") == "swerve"]
+    assert sw and max(e.details["excursion_px"] for e in sw) > 16.0
+    assert res.report.verdict == "unusable"
+
+
 def test_stall_rule_is_along_the_swipe():
     # A stall is no progress along the swipe: slower than the limit along, and slower than
     # three times it across (the drift a turn on the spot leaves); a finger sliding sideways
