@@ -1053,9 +1053,28 @@ def _window_sums(c, width, t_n, pad):
 _NARROW_PEAK = 0.3
 
 
+# Penalty (correlation per px^2) on the across offset of the delay's peak away from the
+# swipe's line (row_delay's across_slope). Where ridges run straight over a strip of a few
+# rows, the correlation over (delay, across offset) is a valley along the ridges, flat to
+# within the noise, and its peak slid along it: an across offset of 0.3 px too many read
+# the speed 26 % too fast (a 3x192 strip at 6 kHz; bench_geometry.py --seed 301). The
+# penalty only decides between nearly equal peaks, as coarse_chain's does. Measured with the
+# line from a first, unguided reading (pipeline._delay_along) on simulated swipes drawn at
+# random (30 per row count, 2-8 kHz, 96-256 columns, 0.1-0.65 (R - 1) px per frame, 15-40
+# dB, six pattern classes, a quarter with a stall; span error median / mean / worst, %):
+# 2 rows 0.77 / 1.93 / 14.5 -> 0.69 / 1.53 / 10.2; 3 rows (with bench_rows.py's ten) 0.42
+# / 1.98 / 31.4 -> 0.41 / 0.94 / 5.8, another 40 1.03 / 3.94 / 36.3 -> 0.57 / 3.53 / 36.3;
+# 4 rows 0.63 / 1.74 / 12.5 -> 0.62 / 1.68 / 10.8; 5 rows 0.72 / 3.53 / 24.5 -> 0.65 /
+# 3.19 / 22.8 (at 0.0005 and 0.002 much the same). bench_rows.py within 0.01 % but three:
+# 2 rows at 150 mm/s and 4 kHz -2.97 -> -3.52 %, 2 rows turning 3 degrees -1.03 -> -0.78,
+# 3 rows human 0.31 -> 0.25; bench_geometry.py a 4x160 strip +0.07 -> -0.19 %, its seed
+# 301 the 3x192 strip above +7.66 -> +1.54 % and a 5x300 -0.52 -> -0.21 %.
+_DELAY_ACROSS_PENALTY = 0.001
+
+
 def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 128, 256),
               min_ncc=0.5, min_gain=0.02, min_travel_px=4.0, max_drop=0.05, row_step=1,
-              min_delay=0.5):
+              min_delay=0.5, across_slope=None, across_penalty=_DELAY_ACROSS_PENALTY):
     """Speed of the finger from the time one row takes to see what its neighbour saw.
 
     While the finger slides along the swipe by ``v`` pixels per frame, row ``r`` sees at time
@@ -1098,6 +1117,14 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         Rows between the two rows compared (1: neighbours), 1 .. R - 1. Rows ``k`` apart see
         the same texture ``k / v`` frames apart: a longer delay reads faster swipes (the
         delay must be at least ``min_delay``) and more finely, from fewer row pairs.
+    across_slope : float or None
+        The swipe's line: across travel per px along (e.g. from a first placement). Given,
+        the across offset of each delay's peak is drawn towards the line's by
+        ``across_penalty`` (correlation per px^2), so that along ridges running straight
+        over the strip, where the correlation is a flat valley, the peak is not placed
+        anywhere along it. None (default): each delay's best offset.
+    across_penalty : float
+        See ``across_slope``. Default 0.001.
     min_delay : float
         Shortest delay read, frames. Under a frame the peak lies between lags 0 and 1, and
         the three-point fit around lag 1 still places it (lag 0 itself is never taken: it
@@ -1129,6 +1156,13 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         raise ValueError(f"plate_ok must have shape {(r_n, c_n)}; got {ok.shape}")
     k_r = check_int(row_step, name="row_step", lo=1, hi=r_n - 1)
     min_delay = check_positive(min_delay, name="min_delay")
+    if across_slope is not None:
+        across_slope = float(across_slope)
+        if not np.isfinite(across_slope):
+            raise ValueError(f"across_slope must be a finite number or None; got {across_slope}")
+        pen = check_positive(across_penalty, name="across_penalty")
+        # rows k_r apart see the same texture k_r px further along and k_r * slope across
+        e_line = float(np.clip(across_slope * k_r, -1.0, 1.0))
     zn = _row_normalise(z, ok).astype(np.float32)
     # rows r (earlier in the finger's path) and r + k_r; columns 1 .. C-2 so every across
     # offset of -1, 0, 1 has the same columns
@@ -1197,8 +1231,19 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
             mid3 = np.stack([ncc[1, kl_c + j, tt] for j in (-1, 0, 1)])
             hi3 = np.stack([ncc[2, kl_c + j, tt] for j in (-1, 0, 1)])
             curv = lo3 - 2.0 * mid3 + hi3
-            vx3 = np.where(curv < 0, 0.5 * (lo3 - hi3) / curv, 0.0)
-            top3 = np.where(curv < 0, mid3 - 0.125 * (lo3 - hi3) ** 2 / curv, mid3)
+            if across_slope is None:
+                vx3 = np.where(curv < 0, 0.5 * (lo3 - hi3) / curv, 0.0)
+                top3 = np.where(curv < 0, mid3 - 0.125 * (lo3 - hi3) ** 2 / curv, mid3)
+            else:
+                # The parabola f(e) = mid + b e + a e^2 less the penalty lam (e - e_line)^2:
+                # its vertex and height (a flat valley's vertex goes to the line's offset).
+                a2 = 0.5 * curv
+                b1 = 0.5 * (hi3 - lo3)
+                den = 2.0 * pen - 2.0 * a2
+                ok_d = den > 0
+                vx3 = np.where(ok_d, (b1 + 2.0 * pen * e_line) / np.where(ok_d, den, 1.0), e_line)
+                vx3 = np.clip(vx3, -1.0, 1.0)
+                top3 = mid3 + b1 * vx3 + a2 * vx3 ** 2 - pen * (vx3 - e_line) ** 2
             g_m, g_0, g_p = np.log(np.maximum(top3, 1e-6))
             den_l = g_m - 2.0 * g_0 + g_p
             off_l = np.where(den_l < 0, 0.5 * (g_m - g_p) / den_l, np.nan)
