@@ -1118,6 +1118,11 @@ def _failed_links(t_n, cpairs, link_gap):
     return link_failed
 
 
+# Farthest (px, either axis) a long-baseline partner's coarse start may lie from the shift
+# the trajectory so far predicts (coarse_shifts' window of 1.5 px, and 1 px of slack).
+_PARTNER_REACH_PX = 2.5
+
+
 def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, motion_prior_px):
     """Multi-baseline pairwise registration, robust trajectory solve and model refinement."""
     t_n, r_n, c_n = x.shape
@@ -1177,6 +1182,17 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
             linit, _, _ = _reg.coarse_shifts(zn, lpairs, max_along=max_along,
                                              max_across=max_across_px + 4, prior=pred,
                                              prior_window_px=1.5)
+            # A partner whose coarse peak lies away from the prediction (coarse_shifts takes
+            # a clearly stronger peak anywhere) is dropped: on a narrow strip the long
+            # baselines' strongest peak is often a ridge period off, and many of them off
+            # alike outvote the robust weights. 20x16 strips (bench_geometry.py, seeds
+            # 300-303, five swipes): span -7.8 / -17.0 / -10.6 / -11.5 / -32.1 % -> +0.2 /
+            # -8.2 / -0.3 / +0.1 / -2.9 %, false backtracks 9 -> 1 (two then ran off across,
+            # 10 px RMS); bench_rows.py's 2-row 12 dB swipe -0.78 -> -0.16 %; random 2-5 row
+            # swipes (see register._DELAY_ACROSS_PENALTY) worst 10.2 / 5.8 / 10.8 / 22.8 ->
+            # 6.1 / 5.8 / 9.8 / 22.4 %, 8 better and 3 worse by more than 0.05 % of 120.
+            near = np.abs(linit - pred).max(axis=1) <= _PARTNER_REACH_PX
+            lpairs, linit = lpairs[near], linit[near]
             pairs = np.concatenate([pairs, lpairs])
             init = np.concatenate([init, linit])
         return pairs, init
