@@ -23,8 +23,12 @@ FEW_PLATES = 256
 # ... and strips narrower than this many columns of usable plates get a reason too, whatever
 # their plate count: 16 simulated swipes of 16 columns (8 to 32 rows, four finger classes,
 # 25 dB) erred by 0.06-11.7 px RMS along (median 2.5; ridge-period slips across so few
-# columns), and bench_geometry.py's 20x16 strip came out 7.9 % short, called usable.
-NARROW_COLS = 24
+# columns), and bench_geometry.py's 20x16 strip came out 7.9 % short, called usable. Up to
+# 48 columns the same: 80 simulated swipes of 24-48 columns (6-32 rows, 2-8 kHz, 0.05-0.5
+# (R - 1) px per frame, 15-40 dB, three skins, six pattern classes) erred by over 1 % of
+# span in 33 (median 0.17-0.78 % per width, worst 63 %), 23 of those called usable without
+# a word; drawn alike with 64-192 columns, 3 of 80 (64 columns: 0 of 24, worst 0.5 %).
+NARROW_COLS = 64
 # ... and strips of this many rows or fewer get a reason too: they are placed by pairs that
 # overlap by a few rows, over which ridges running across the strip leave the motion along
 # them undetermined (the estimates slide along the ridges, and through the slant of the

@@ -1113,12 +1113,13 @@ def test_slanted_swipe_keeps_the_trackers_long_range_across_path():
 
 @pytest.mark.parametrize("n_rows, n_cols, verdict, note", [
     (4, 16, "unusable", "usable plates"), (8, 24, "usable", "small strip"), (8, 64, "usable", None),
-    (20, 16, "usable", "narrow strip")])
+    (20, 16, "usable", "narrow strip"), (16, 48, "usable", "narrow strip")])
 def test_verdict_follows_the_strip_size(tex, n_rows, n_cols, verdict, note):
     # Under 128 usable plates simulated swipes erred by 1-92 % of their span (report.py's
     # MIN_PLATES, measured); the verdict must not call such a strip's image usable, and a
-    # strip of 128-255 plates gets a caution, as does one under 24 columns (NARROW_COLS:
-    # ridge-period slips). Frames by exact Fourier shifts, 0.4 px/frame.
+    # strip of 128-255 plates gets a caution, as does one under 64 columns (NARROW_COLS:
+    # ridge-period slips and sideways runs; 80 simulated swipes of 24-48 columns, a third
+    # over 1 % of span). Frames by exact Fourier shifts, 0.4 px/frame.
     pos = np.vstack([[0.0, 0.0], np.cumsum(np.tile([0.4, 0.0], (299, 1)), 0)])
     frames = cut_frames(tex, pos + [20.0, 0.0], n_rows=n_rows, n_cols=n_cols)
     res = stitch(frames)
