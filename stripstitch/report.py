@@ -320,6 +320,11 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     return tuple(sorted(events, key=lambda e: (e.first_frame, e.kind)))
 
 
+def _caused(events, cause):
+    """The low_confidence events of one cause."""
+    return [e for e in events if e.kind == "low_confidence" and e.details.get("cause") == cause]
+
+
 def make_report(*, events, positions, angles_deg, confidence, contact, times_s, frame_rate_hz,
                 n_rows, pitch_um, image, min_length_mm=5.0, n_plates=None, n_cols=None):
     """Summarise a reconstruction: figures, a verdict and reasons a driver could show a user.
@@ -406,24 +411,21 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
     if mean_conf < 0.5:
         verdict = "unusable"
         reasons.append(f"placement unreliable (mean confidence {mean_conf:.2f})")
-    blank = [e for e in events if e.kind == "low_confidence"
-             and e.details.get("cause") == "no_texture"]
+    blank = _caused(events, "no_texture")
     if blank:
         mm = sum(e.details["travel_mm"] for e in blank)
         unc = float(np.sqrt(sum(e.details["uncertainty_px"] ** 2 for e in blank))) * pitch_um / 1000
         reasons.append(f"{len(blank)} stretch(es) with no ridges (a crease or scar?), {mm:.1f} mm "
                        f"in all, crossed at the swipe's speed: length there uncertain by about "
                        f"{unc:.2f} mm")
-    limit = [e for e in events if e.kind == "low_confidence"
-             and e.details.get("cause") == "overlap_limit"]
+    limit = _caused(events, "overlap_limit")
     if limit:
         v = max(e.details["speed_px_per_frame"] for e in limit)
         reasons.append(f"{len(limit)} place(s) where the finger moved up to {v:.1f} px per frame "
                        f"on a {n_rows}-row strip: successive frames barely overlap and were "
                        "placed at the speed around them, so the length may be off by a few "
                        "percent; swipe more slowly or raise the frame rate")
-    swerve = [e for e in events if e.kind == "low_confidence"
-              and e.details.get("cause") == "swerve"]
+    swerve = _caused(events, "swerve")
     if swerve:
         x = max(e.details["excursion_px"] for e in swerve)
         reasons.append(f"{len(swerve)} place(s) where the placement swerves sideways by up to "

@@ -426,6 +426,16 @@ def _stalls_of(pos):
     return [(e.first_frame, e.last_frame) for e in _events_of(pos, 4000.0) if e.kind == "stall"]
 
 
+def _simulated(pattern, finger_rng, swipe_rng, *, size_mm=(14.0, 10.0), skin="normal", **swipe):
+    """A simulated swipe (bench_geometry.py's finger settings), stitched with defaults at its
+    frame rate, and its errors against the simulator's truth: (capture, result, figures)."""
+    from stripstitch import evaluate, simulate
+    finger = simulate.make_finger(pattern, size_mm=size_mm, rng=finger_rng, skin=skin)
+    cap = simulate.swipe(pattern, finger=finger, rng=swipe_rng, **swipe)
+    res = stitch(cap.frames, frame_rate_hz=swipe["frame_rate_hz"])
+    return cap, res, evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()
+
+
 def _swerve_reference(pos, travel_px=32.0):
     """The swerve's definition evaluated directly (O(T^2)): per frame, the largest change of
     the sideways offset from the line through the first and last positions over the frames
@@ -504,12 +514,10 @@ def test_runaway_across_on_a_narrow_strip_is_reported():
     # sideways by about 1.4 px per frame at both ends (about 28 px RMS across against the
     # simulator's truth). It used to be called usable; the swerve makes it unusable. The
     # truth itself never swerves (simulated swipes move on a straight slanted line).
-    from stripstitch import report, simulate
-    finger = simulate.make_finger("tented_arch", size_mm=(14.0, 10.0), rng=811, skin="wet")
-    cap = simulate.swipe("tented_arch", finger=finger, rng=1211, n_rows=16, n_cols=32,
-                         frame_rate_hz=3000.0, profile="constant", speed_mm_s=126.0,
-                         snr_db=30.0, skew_deg=3.2, backtracks=((4.9, 0.23),))
-    res = stitch(cap.frames, frame_rate_hz=3000.0)
+    from stripstitch import report
+    cap, res, _ = _simulated("tented_arch", 811, 1211, skin="wet", n_rows=16, n_cols=32,
+                             frame_rate_hz=3000.0, profile="constant", speed_mm_s=126.0,
+                             snr_db=30.0, skew_deg=3.2, backtracks=((4.9, 0.23),))
     first, last = res.report.frames_in_contact
     assert report.find_swerves(cap.positions, first, last) == []
     sw = [e for e in res.events if e.kind == "low_confidence" and e.details.get("cause") == "swerve"]
@@ -749,13 +757,9 @@ def test_fingertip_frames_outside_contact_do_not_shorten_the_swipe():
     # they took -0.82 % off the span; moving on at the tracked velocity, -0.23 %. Truth:
     # the simulator's positions; tolerance 0.5 %, inside the 1 % of the 500 ppi
     # geometric-accuracy requirement (EFTS Appendix F, REFERENCE-VALUES.md section 4).
-    from stripstitch import evaluate, simulate
-    finger = simulate.make_finger("left_loop", size_mm=(14.0, 10.0), rng=826, skin="dry")
-    cap = simulate.swipe("left_loop", finger=finger, rng=1226, n_rows=12, n_cols=96,
-                         frame_rate_hz=2000.0, profile="constant", speed_mm_s=119.7,
-                         snr_db=36.4, skew_deg=6.9, rotation_deg=-0.49)
-    res = stitch(cap.frames, frame_rate_hz=2000.0)
-    ev = evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()
+    _, _, ev = _simulated("left_loop", 826, 1226, skin="dry", n_rows=12, n_cols=96,
+                          frame_rate_hz=2000.0, profile="constant", speed_mm_s=119.7,
+                          snr_db=36.4, skew_deg=6.9, rotation_deg=-0.49)
     assert abs(ev["span_error_pct"]) < 0.5
 
 
@@ -766,14 +770,10 @@ def test_three_row_strip_under_oblique_straight_ridges():
     # the speed up to 26 % fast, span +8.0 % (bench_geometry.py --seed 301). Drawn towards
     # the swipe's line (register.row_delay's across_slope) it comes to +1.5 %. Against the
     # simulator's truth; tolerance 2.5 %, the strip of 3 rows said less reliable.
-    from stripstitch import evaluate, simulate
-    finger = simulate.make_finger("right_loop", size_mm=(14.0, 11.75), rng=802, skin="normal")
-    cap = simulate.swipe("right_loop", finger=finger, rng=1202, n_rows=3, n_cols=192,
-                         frame_rate_hz=6000.0, profile="accel_decel", speed_mm_s=150.0,
-                         snr_db=40.0, skew_deg=0.9)
-    res = stitch(cap.frames, frame_rate_hz=6000.0)
-    d = evaluate.evaluate(res, cap, image=False, distortion=False)
-    assert abs(d.to_dict()["span_error_pct"]) < 2.5
+    _, res, d = _simulated("right_loop", 802, 1202, size_mm=(14.0, 11.75), n_rows=3,
+                           n_cols=192, frame_rate_hz=6000.0, profile="accel_decel",
+                           speed_mm_s=150.0, snr_db=40.0, skew_deg=0.9)
+    assert abs(d["span_error_pct"]) < 2.5
     assert any("only 3 rows" in r for r in res.report.reasons)
 
 
@@ -782,13 +782,9 @@ def test_narrow_strip_long_baselines_do_not_slip_a_ridge_period():
     # strongest correlation peaks lay a ridge period or two off, alike over many pairs,
     # and the placement slipped by them (span -11.5 %, a false backtrack). Partners whose
     # peak leaves the prediction are dropped. Against the simulator's truth: within 1 %.
-    from stripstitch import evaluate, simulate
-    finger = simulate.make_finger("arch", size_mm=(14.0, 10.0), rng=820, skin="normal")
-    cap = simulate.swipe("arch", finger=finger, rng=1220, n_rows=20, n_cols=16,
-                         frame_rate_hz=2000.0, profile="accel_decel", speed_mm_s=149.0,
-                         snr_db=17.7, skew_deg=2.3, rotation_deg=-1.2)
-    res = stitch(cap.frames, frame_rate_hz=2000.0)
-    d = evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()
+    _, _, d = _simulated("arch", 820, 1220, n_rows=20, n_cols=16, frame_rate_hz=2000.0,
+                         profile="accel_decel", speed_mm_s=149.0, snr_db=17.7, skew_deg=2.3,
+                         rotation_deg=-1.2)
     assert abs(d["span_error_pct"]) < 1.0
     assert d["backtrack_false"] == 0
 
