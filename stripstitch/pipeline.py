@@ -1064,18 +1064,13 @@ def _delay_along(prep, positions, link_failed, dt_frames, row_step=1, min_speed=
     taken from the delay (NaN where not; None if there were none)."""
     t_n = positions.shape[0]
     link_failed = np.asarray(link_failed, dtype=bool)
-    rd = _reg.row_delay(prep.z, prep.plate_ok, dt_frames=dt_frames, row_step=row_step)
-    # Read again with each delay's across offset drawn towards the swipe's line, the median
-    # across-to-along ratio of the first reading: where ridges run straight over the strip
-    # its peak slid along them (see register._DELAY_ACROSS_PENALTY). The line from the
-    # pairs' placement instead did as well on 3-5 rows but worse on 2 (their across is
-    # poor over one row of overlap: bench_rows.py's 2-row swipes lost up to 0.3 px along).
-    ok0 = rd.valid & np.isfinite(rd.along_px) & np.isfinite(rd.across_px) \
-        & (np.abs(rd.along_px) > 0)
-    if ok0.sum() >= 8:
-        slope = float(np.median(rd.across_px[ok0] / rd.along_px[ok0]))
-        rd = _reg.row_delay(prep.z, prep.plate_ok, dt_frames=dt_frames, row_step=row_step,
-                            across_slope=slope)
+    # Each delay's across offset drawn towards the swipe's line, the median across-to-along
+    # ratio of a first reading: where ridges run straight over the strip its peak slid along
+    # them (see register._DELAY_ACROSS_PENALTY). The line from the pairs' placement instead
+    # did as well on 3-5 rows but worse on 2 (their across is poor over one row of overlap:
+    # bench_rows.py's 2-row swipes lost up to 0.3 px along).
+    rd = _reg.row_delay(prep.z, prep.plate_ok, dt_frames=dt_frames, row_step=row_step,
+                        across_slope="auto")
     steps = np.full(t_n - 1, np.nan)
     ok = rd.valid & np.isfinite(rd.along_px)
     if ok.sum() < 8:

@@ -1117,12 +1117,14 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         Rows between the two rows compared (1: neighbours), 1 .. R - 1. Rows ``k`` apart see
         the same texture ``k / v`` frames apart: a longer delay reads faster swipes (the
         delay must be at least ``min_delay``) and more finely, from fewer row pairs.
-    across_slope : float or None
+    across_slope : float, "auto" or None
         The swipe's line: across travel per px along (e.g. from a first placement). Given,
         the across offset of each delay's peak is drawn towards the line's by
         ``across_penalty`` (correlation per px^2), so that along ridges running straight
         over the strip, where the correlation is a flat valley, the peak is not placed
-        anywhere along it. None (default): each delay's best offset.
+        anywhere along it. "auto": the line is the median across-to-along ratio of a first
+        reading without one (from the same correlations; that reading is returned if it
+        has fewer than 8 estimates). None (default): each delay's best offset.
     across_penalty : float
         See ``across_slope``. Default 0.001.
     min_delay : float
@@ -1156,13 +1158,15 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         raise ValueError(f"plate_ok must have shape {(r_n, c_n)}; got {ok.shape}")
     k_r = check_int(row_step, name="row_step", lo=1, hi=r_n - 1)
     min_delay = check_positive(min_delay, name="min_delay")
-    if across_slope is not None:
+    auto = isinstance(across_slope, str)
+    if auto and across_slope != "auto":
+        raise ValueError(f'across_slope must be a number, "auto" or None; got {across_slope!r}')
+    if across_slope is not None and not auto:
         across_slope = float(across_slope)
         if not np.isfinite(across_slope):
             raise ValueError(f"across_slope must be a finite number or None; got {across_slope}")
+    if across_slope is not None:
         pen = check_positive(across_penalty, name="across_penalty")
-        # rows k_r apart see the same texture k_r px further along and k_r * slope across
-        e_line = float(np.clip(across_slope * k_r, -1.0, 1.0))
     zn = _row_normalise(z, ok).astype(np.float32)
     # rows r (earlier in the finger's path) and r + k_r; columns 1 .. C-2 so every across
     # offset of -1, 0, 1 has the same columns
@@ -1195,18 +1199,41 @@ def row_delay(z, plate_ok, *, dt_frames=None, max_lag=64, windows=(16, 32, 64, 1
         cnt[i, t0:t1] = (n_drop[hi] - n_drop[lo]) == 0
     prod *= cnt
     zero = lag_max
-    along = np.full(t_n, np.nan)
-    across = np.full(t_n, np.nan)
-    when = np.full(t_n, np.nan)
-    score = np.zeros(t_n)
-    done = np.zeros(t_n, dtype=bool)
-    decided = np.zeros(t_n, dtype=bool)
     widths = [w for w in sorted(int(w) for w in windows) if w <= t_n]
     pad = max(widths, default=0)
     c_n = _padded_cumsum(cnt, pad)
     c_ab = _padded_cumsum(prod, pad)
     c_aa = _padded_cumsum(ea * cnt, pad)
     c_bb = _padded_cumsum(eb[:, None, :] * cnt, pad)      # cnt is 0 where a lag has no product
+    kw = dict(t_n=t_n, n_l=n_l, k_r=k_r, lags=lags, zero=zero, widths=widths, pad=pad,
+              c_n=c_n, c_ab=c_ab, c_aa=c_aa, c_bb=c_bb, tt=tt, min_ncc=min_ncc,
+              min_gain=min_gain, min_travel_px=min_travel_px, min_delay=min_delay,
+              max_drop=max_drop, pen=pen if across_slope is not None else None)
+    if not auto:
+        return _read_delay(across_slope, **kw)
+    # "auto": the line is the median across-to-along ratio of a reading without one, from
+    # the same correlations (the products are most of the cost)
+    first = _read_delay(None, **kw)
+    ok0 = first.valid & np.isfinite(first.along_px) & np.isfinite(first.across_px) \
+        & (np.abs(first.along_px) > 0)
+    if ok0.sum() < 8:
+        return first
+    return _read_delay(float(np.median(first.across_px[ok0] / first.along_px[ok0])), **kw)
+
+
+def _read_delay(across_slope, *, t_n, n_l, k_r, lags, zero, widths, pad, c_n, c_ab, c_aa, c_bb,
+                tt, min_ncc, min_gain, min_travel_px, min_delay, max_drop, pen):
+    """The delay read from row_delay's windowed correlation sums, each delay's across offset
+    drawn towards ``across_slope`` (None: its own best)."""
+    if across_slope is not None:
+        # rows k_r apart see the same texture k_r px further along and k_r * slope across
+        e_line = float(np.clip(across_slope * k_r, -1.0, 1.0))
+    along = np.full(t_n, np.nan)
+    across = np.full(t_n, np.nan)
+    when = np.full(t_n, np.nan)
+    score = np.zeros(t_n)
+    done = np.zeros(t_n, dtype=bool)
+    decided = np.zeros(t_n, dtype=bool)
     for width in widths:
         n_w = _window_sums(c_n, width, t_n, pad)
         s_ab = _window_sums(c_ab, width, t_n, pad)

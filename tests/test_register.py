@@ -319,6 +319,8 @@ def test_row_delay_line_penalty_leaves_a_textured_reading_alone():
         register.row_delay(z, ok, across_slope=float("nan"))
     with pytest.raises(ValueError, match="across_penalty"):
         register.row_delay(z, ok, across_slope=0.1, across_penalty=0.0)
+    with pytest.raises(ValueError, match="across_slope"):
+        register.row_delay(z, ok, across_slope="median")
 
 
 def test_row_delay_reads_nothing_in_a_stall():
