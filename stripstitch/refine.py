@@ -1104,24 +1104,72 @@ def _smooth_weighted(values, var, travel_px, sigma_px):
     return q * np.where(den_t > 0, num_t / np.where(den_t > 0, den_t, 1.0), 0.0)
 
 
+def _end_rows(dt, sigma_acc, cut=None):
+    """The first and last rows of the acceleration prior in each stretch between cut links,
+    as (first, coeffs) (see :func:`_jerk_rows`): the pull's end condition."""
+    k, c = _traj._prior_coefficients(dt, sigma_acc, cut)
+    if not k.size:
+        return np.zeros(0, int), np.zeros((0, 3))
+    seg = np.concatenate([[0], np.cumsum(cut)]) if cut is not None else np.zeros(len(dt) + 1, int)
+    start = np.searchsorted(seg, seg, side="left")            # each frame's stretch: first,
+    end = np.searchsorted(seg, seg, side="right") - 1          # and last frame
+    ends = (k - 1 == start[k]) | (k + 1 == end[k])
+    return k[ends] - 1, c[ends]
+
+
+def _jerk_rows(dt, sigma_acc, cut=None):
+    """Third-difference rows for the pull in :func:`_solve_steps`: the difference of two
+    successive rows of the acceleration prior (each in its own allowance), as (first, coeffs):
+    row i weighs x[first[i] + j] by coeffs[i, j], j = 0..3. No row spans a cut link."""
+    k, c = _traj._prior_coefficients(dt, sigma_acc, cut)
+    if k.size < 2:
+        return np.zeros(0, int), np.zeros((0, 4))
+    nxt = np.flatnonzero(k[1:] == k[:-1] + 1)
+    coef = np.zeros((nxt.size, 4))
+    coef[:, :3] -= c[nxt]
+    coef[:, 1:] += c[nxt + 1]
+    return k[nxt] - 1, coef
+
+
+def _add_pull(ab, rhs, first, c, x, step):
+    """Add a Cauchy-weighted prior on the along positions x + u, rows c[i] on x[first[i] + j],
+    to the banded normal matrix ab (upper form, 7 rows, unknowns interleaved) and rhs."""
+    if not first.size:
+        return
+    t_n = len(x)
+    w = c.shape[1]
+    idx = first[:, None] + np.arange(w)
+    m = np.einsum("ij,ij->i", c, x[idx])
+    m_fit = np.einsum("ij,ij->i", c, (x + step)[idx])
+    wt = 1.0 / (1.0 + (np.maximum(np.abs(m), np.abs(m_fit)) / _PULL_SCALE) ** 2)
+    # D^T W D on the along unknowns (diagonal d of the along block is diagonal 2d of the
+    # interleaved matrix) and -D^T W D x on the right
+    for d in range(w):
+        band = np.bincount(idx[:, :w - d].ravel(),
+                           (wt[:, None] * c[:, :w - d] * c[:, d:]).ravel(), minlength=t_n)
+        ab[6 - 2 * d, 2 * d::2] += band[:t_n - d]
+    rhs[0::2] -= np.bincount(idx.ravel(), (c * (wt * m)[:, None]).ravel(), minlength=t_n)
+
+
 def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
     """Joint position update: each frame's step with its information, an acceleration prior
     on the update itself (the trajectory it corrects already carries the motion prior), and a
-    robust pull of the whole trajectory's acceleration along the swipe towards zero; neither
-    across ``cut`` links (gaps). Frames without information follow their neighbours'
-    correction.
+    robust pull of the whole trajectory's jerk along the swipe towards zero; neither across
+    ``cut`` links (gaps). Frames without information follow their neighbours' correction.
 
     The pull is a second prior on x + u along the swipe (x the current positions, u the
-    update), with half the allowance (``_PULL_ALLOWANCE``) and Cauchy weights
-    ``1 / (1 + (m / 2)^2)`` [1]_, m the larger of a row's acceleration in x and in x + delta
-    (where the frames' fits would put them) in the pull's allowances, taken at x (one
-    reweighting per pass): a smooth stretch loses the frame-to-frame jitter the fits leave,
-    while a stall's or a reversal's abrupt change of speed keeps its shape. See
-    ``_PULL_SCALE`` for what was measured.
+    update): its rows are differences of successive rows of the acceleration prior at half
+    the allowance (``_PULL_ALLOWANCE``), each stretch between cuts closed by its first and
+    last acceleration row at a quarter (``_END_ALLOWANCE``), all with Cauchy weights
+    ``1 / (1 + (m / 2)^2)`` [1]_, m the larger of a row's value in x and in x + delta (where
+    the frames' fits would put them), taken at x (one reweighting per pass). A smooth stretch
+    loses the frame-to-frame jitter the fits leave, a smooth change of speed is left alone,
+    and a stall's or a reversal's abrupt change keeps its shape. See ``_PULL_SCALE`` for what
+    was measured.
 
     The normal matrix, unknowns interleaved (along, across per frame), is banded: the 2 x 2
-    information blocks and the priors' pentadiagonal D^T D on each axis (band 4), so it is
-    solved by banded Cholesky (LAPACK pbsv) in O(T).
+    information blocks, the motion prior's pentadiagonal D^T D on each axis and the pull's
+    heptadiagonal one along (band 6), so it is solved by banded Cholesky (LAPACK pbsv) in O(T).
 
     References
     ----------
@@ -1130,36 +1178,19 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
     """
     t_n = len(positions)
     n = 2 * t_n
-    ab = np.zeros((5, n))                    # upper banded form: ab[4 - d, j] = A[j - d, j]
-    ab[4, 0::2] = info[:, 0, 0]
-    ab[4, 1::2] = info[:, 1, 1]
-    ab[3, 1::2] = info[:, 0, 1]              # A[2t, 2t + 1]
+    ab = np.zeros((7, n))                    # upper banded form: ab[6 - d, j] = A[j - d, j]
+    ab[6, 0::2] = info[:, 0, 0]
+    ab[6, 1::2] = info[:, 1, 1]
+    ab[5, 1::2] = info[:, 0, 1]              # A[2t, 2t + 1]
     bands = _traj._prior_gram_bands(dt, sigma_acc_px, cut)
-    ab[4] += np.repeat(bands[0], 2)
-    ab[2, 2:] += np.repeat(bands[1, :-1], 2)  # A[2t + a, 2t + 2 + a]
-    ab[0, 4:] += np.repeat(bands[2, :-2], 2)  # A[2t + a, 2t + 4 + a]
-    ab[4] += 1e-6
+    ab[6] += np.repeat(bands[0], 2)
+    ab[4, 2:] += np.repeat(bands[1, :-1], 2)  # A[2t + a, 2t + 2 + a]
+    ab[2, 4:] += np.repeat(bands[2, :-2], 2)  # A[2t + a, 2t + 4 + a]
+    ab[6] += 1e-6
     rhs = np.einsum("tab,tb->ta", info, delta).reshape(-1)
-    k, c = _traj._prior_coefficients(dt, _PULL_ALLOWANCE * sigma_acc_px, cut)
-    if k.size:
-        def accel(x):                        # second differences in the pull's allowances
-            return c[:, 0] * x[k - 1] + c[:, 1] * x[k] + c[:, 2] * x[k + 1]
-
-        x = positions[:, 0]
-        m = accel(x)
-        wt = 1.0 / (1.0 + (np.maximum(np.abs(m), np.abs(accel(x + delta[:, 0]))) / _PULL_SCALE) ** 2)
-        cw = c * np.sqrt(wt)[:, None]
-        sums = lambda v0, v1, v2: (np.bincount(k - 1, v0, minlength=t_n)
-                                   + np.bincount(k, v1, minlength=t_n)
-                                   + np.bincount(k + 1, v2, minlength=t_n))
-        # D^T W D on the along unknowns (diagonals 0, 1, 2) and -D^T W D x on the right
-        ab[4, 0::2] += sums(cw[:, 0] ** 2, cw[:, 1] ** 2, cw[:, 2] ** 2)
-        d1 = (np.bincount(k - 1, cw[:, 0] * cw[:, 1], minlength=t_n)
-              + np.bincount(k, cw[:, 1] * cw[:, 2], minlength=t_n))
-        ab[2, 2::2] += d1[:-1]
-        ab[0, 4::2] += np.bincount(k - 1, cw[:, 0] * cw[:, 2], minlength=t_n)[:-2]
-        wm = wt * m
-        rhs[0::2] -= sums(c[:, 0] * wm, c[:, 1] * wm, c[:, 2] * wm)
+    x = positions[:, 0]
+    _add_pull(ab, rhs, *_jerk_rows(dt, _PULL_ALLOWANCE * sigma_acc_px, cut), x, delta[:, 0])
+    _add_pull(ab, rhs, *_end_rows(dt, _END_ALLOWANCE * sigma_acc_px, cut), x, delta[:, 0])
     sol = linalg.solveh_banded(ab, rhs, check_finite=False)
     return sol.reshape(t_n, 2)
 
@@ -1184,8 +1215,25 @@ def _solve_steps(positions, delta, info, dt, sigma_acc_px, cut):
 #   no other figure's median moved by more than 0.002 px, no false event added. A smooth
 #   2 kHz reversal (0.2 px per frame^2, frames placed only weakly there) still comes out
 #   bent: 10 -> 25 times the bound on that swipe, its position RMS unchanged.
+# That pull was on the acceleration. Fast swipes whose speed changes smoothly by more than
+# the pull's allowance (which falls as 1 / f^2) were bent towards a constant speed:
+# bench_independent.py's default along RMS median 0.057 -> 0.087 px (a 16x128 at 2.1 px per
+# frame and 4 kHz 0.059 -> 0.317 px). On the jerk (differences of successive acceleration
+# rows, same allowance and weights), which leaves a smooth acceleration free and still damps
+# the two-phase jitter: independent 0.087 -> 0.067 px (that swipe 0.070 px), the suite's
+# median increment over the bound 1.469 -> 1.168 (bench_accuracy.py's prior study; 0.986 ->
+# 0.853 at 20 dB and less), its span error median 0.068 %, along 0.071 px (unchanged within 0.002);
+# bench_random.py's figures within 0.004 (across median 0.144 -> 0.140 px); bench_geometry.py
+# along median 0.092 -> 0.082 px, span median 0.047 -> 0.053 %, its 3- and 5-row strips
+# 0.1 px worse along; bench_few_rows.py 2-5 rows median span error 0.5-0.6 % as before.
+# Alone, the jerk pull lets a stretch's ends curve where the frames there read least (the
+# first frames after a gap: 0.07 px of step error instead of 0.03); a natural end condition,
+# each stretch's first and last acceleration rows at a quarter of the allowance, holds them
+# (0.044 px) while a swipe that really starts or ends accelerating keeps most of the gain
+# (two rows at each end, half the allowance: that 16x128 0.174 px).
 _PULL_ALLOWANCE = 0.5
 _PULL_SCALE = 2.0
+_END_ALLOWANCE = 0.25
 
 
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
