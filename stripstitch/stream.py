@@ -67,6 +67,15 @@ MODES = ("default", "fast")
 _BLANK_FRAC = 0.03
 # Clear frames whose mean step carries a blank run (see StreamingStitcher._carry_blank).
 _CARRY_FRAMES = 8
+# A frame the tracker registered at this normalised cross-correlation or above is not blank,
+# whatever its texture power: two noisy views of one texture correlate at s / (1 + s), s
+# their signal-to-noise power ratio (0.9 at 9.5 dB, 0.97 at 15 dB), while a frame without
+# texture matches noise (0.36-0.75 measured on bench_bands.py's band frames). The texture
+# test alone has no floor when every frame shows texture (a finger on the strip from the
+# first frame, its fixed pattern not seen alone): the quietest frame so far then reads blank
+# for being the quietest, and a carry started there took a stale speed through a backtrack's
+# turn (bench_independent.py's stream: -6.7 %, -2.4 %, +1.9 % of span).
+_BLANK_NCC = 0.9
 
 
 @dataclass(frozen=True, eq=False)
@@ -1002,8 +1011,10 @@ class StreamingStitcher:
         placed = out["reference"] >= 0
         tex = self._tex[sl]
         strong = self._clear_texture(tex)
-        pos = self._carry_blank(out["positions"] + self._tr_off, strong,
-                                self._clear_texture(tex, _BLANK_FRAC), tt)
+        # blank: no texture above the quietest frame's, and a registration that matched
+        # nothing (see _BLANK_NCC)
+        textured = self._clear_texture(tex, _BLANK_FRAC) | (out["ncc"] >= _BLANK_NCC)
+        pos = self._carry_blank(out["positions"] + self._tr_off, strong, textured, tt)
         self._store_tracked(sl, pos, out["link_ok"],
                             _with_model_error(out["info"], out["displacement"]),
                             placed.astype(np.float64), strong)
