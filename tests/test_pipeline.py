@@ -1145,3 +1145,28 @@ def test_demo_too_fast_swipe_stays_a_gap():
     assert not [e for e in res.events_of("low_confidence") if e.details.get("cause")]
     d = evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()
     assert d["along_rms_px"] < 3.0
+
+
+def test_fast_mode_takes_a_stall_out_of_the_fixed_pattern(monkeypatch):
+    # A simulated 8x192 swipe at 4 kHz and 14 dB (the simulator's truth) that stands still
+    # for a third of its frames: the contact test finds no blank frames at that SNR, and the
+    # frames' change during the stall is too close to the moving frames' for the stall rule of
+    # register.prepare, so the stalled stretch of finger stayed in the per-plate means, a
+    # static pattern pulling every shift towards zero: fast mode measured -5.6 % of span.
+    # Estimated again with the frames weighted by their tracked travel: -0.15 %.
+    from stripstitch import evaluate, pipeline, simulate
+    finger = simulate.make_finger("whorl", size_mm=(12.0, 10.0), rng=9700)
+    cap = simulate.swipe("whorl", finger=finger, rng=10100, n_rows=8, n_cols=192,
+                         frame_rate_hz=4000.0, profile="constant", speed_mm_s=121.978,
+                         snr_db=13.546, skew_deg=-1.146, rotation_deg=1.496,
+                         stalls=((3.0637, 0.049715),))
+
+    def span_pct():
+        res = stitch(cap.frames, pitch_um=float(cap.pitch_um), frame_rate_hz=4000.0,
+                     timestamps_s=np.asarray(cap.times_s, dtype=np.float64), mode="fast")
+        return evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()["span_error_pct"]
+
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.5 %.
+    assert abs(span_pct()) < 0.5
+    monkeypatch.setattr(pipeline, "_FAST_REFIT_STILL", 2.0)        # the rule off
+    assert span_pct() < -3.0
