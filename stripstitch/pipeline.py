@@ -1362,12 +1362,10 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
 
 def _travel_weights(positions, contact):
     """Per-frame weights for the per-plate statistics (register.prepare's ``frame_weights``):
-    each frame's travel since the previous one, over half the 90th percentile of the travel of
-    frames in contact, clipped to [0, 1]."""
+    each frame's travel since the previous one, weighed as prepare weighs the frames' change
+    (register._novelty_weights)."""
     step = np.hypot(*np.diff(positions, axis=0).T)
-    step = np.concatenate([step[:1], step])
-    ref = float(np.percentile(step[contact], 90)) if contact.any() else float(np.percentile(step, 90))
-    return np.clip(step / max(0.5 * ref, 1e-12), 0.0, 1.0)
+    return _reg._novelty_weights(np.concatenate([step[:1], step]), contact)
 
 
 def _refit_fixed_pattern(x, prep, positions, angles_deg):

@@ -80,6 +80,14 @@ def _blank_finger_split(log_texture):
     return None
 
 
+def _novelty_weights(change, contact):
+    """Per-frame weights in [0, 1] for the per-plate statistics: how much new finger a frame
+    shows (``change``, e.g. its change from the frame before, or its travel), over half the
+    90th percentile of that of the frames in ``contact`` (of all frames if none is)."""
+    ref = np.percentile(change[contact], 90) if contact.any() else np.percentile(change, 90)
+    return np.clip(change / max(0.5 * ref, 1e-12), 0.0, 1.0)
+
+
 def prepare(frames, *, frame_weights=None):
     """Remove the fixed pattern and find bad plates and frames in contact.
 
@@ -149,8 +157,7 @@ def prepare(frames, *, frame_weights=None):
         p2 = float(np.percentile(change, 2))
         if np.mean(change < 1.25 * p2) >= 0.2 and np.percentile(change, 90) >= 1.8 * p2:
             change = np.sqrt(np.maximum(change ** 2 - p2 ** 2, 0.0))
-        ref = np.percentile(change[contact], 90) if contact.any() else np.percentile(change, 90)
-        w = w * np.clip(change / max(0.5 * ref, 1e-12), 0.0, 1.0)
+        w = w * _novelty_weights(change, contact)
     elif frame_weights is not None:
         w = w * np.asarray(frame_weights, dtype=np.float64)
     w_sum = w.sum()
