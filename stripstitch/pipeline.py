@@ -290,7 +290,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     placed = _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px,
                                 refit="stalled" if fast else True)
     if placed is not None:
-        positions, confidence, link_failed, prep_used, n_pairs, n_kept, limit_runs = placed
+        positions, confidence, link_failed, prep_used, n_pairs, n_kept, limit_runs, keys = placed
         angles_deg = np.zeros(t_n)
         delay_steps = None
         placement = "key-frame tracker"
@@ -376,7 +376,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                     positions = ref2.positions.copy()
                     angles_deg = np.degrees(ref2.angles_rad)
             if placed is not None and np.ptp(angles_deg[prep.contact]) < 1.0:
-                positions = _across_drift_from(positions, placed[0], prep.contact, r_n)
+                positions = _across_slope_from(positions, keys)
     if delay_steps is not None:
         positions = _with_along_steps(positions, delay_steps)
     positions, confidence, link_failed, blank_runs, end_blank = _bridge_blank_runs(
@@ -428,39 +428,84 @@ def _central_turn_deg(positions, angles_rad, contact, frac=0.1):
     return float(np.degrees(np.ptp(angles_rad[mid]))) if mid.any() else 0.0
 
 
-# The across path's drift over more than this many strip heights of travel (Gaussian sigma)
-# is the tracker's, on swipes that kept no turn: see _across_drift_from.
-_ACROSS_DRIFT_STRIPS = 8.0
+# The refinement's across path, corrected by the slope the tracker's key links read against
+# it (see _across_slope_from). The prior's standard deviation of that slope (px per px of
+# along travel): _ACROSS_SLOPE_PRIOR on a slanted swipe, falling to _ACROSS_SLOPE_FLOOR
+# below a slant of _ACROSS_SLOPE_FULL_SLANT (px across per px along).
+_ACROSS_SLOPE_PRIOR = 2e-3
+_ACROSS_SLOPE_FLOOR = 3e-4
+_ACROSS_SLOPE_FULL_SLANT = 0.01
 
 
-def _across_drift_from(positions, tracked, contact, r_n):
-    """Refined positions whose across drift over long travel is the tracker's.
+def _across_slope_from(positions, keys):
+    """Refined positions with the across slope the tracker's key links read against them removed.
 
     The refinement's shear correction integrates a reading that is biased on slanted swipes
-    (see refine's notes), so its error grows with the travel, while the tracker's key links
-    see the across shift unbiased, only more noisily. The difference of the two across paths,
-    smoothed over ``_ACROSS_DRIFT_STRIPS`` strip heights of travel, is removed: the refinement
-    keeps the detail, the tracker the long-range drift. Measured (across RMS, default mode):
-    64 random swipes (bench_random.py) median 0.158 -> 0.145 px, mean 0.205 -> 0.191 (8
-    better, 4 worse by more than 0.05 px, the worst a turn of 0.9 degrees left uncorrected:
-    0.32 -> 0.50); the independent generator's 72 swipes of three seeds median 0.111 ->
-    0.108, mean 0.487 -> 0.404 (22 better, 3 worse by more than 0.05 px); the accuracy
-    suite median 0.056 -> 0.055, mean 0.320 -> 0.325 (slanted 0.22 -> 0.18, accelerating
-    0.43 -> 0.52). Over two strip heights instead the random swipes' median rose (0.167 ->
-    0.169 px, before the evaluation's re-referencing was corrected): arches, whose weak
-    across texture lets the tracker wander, lost up to 0.4 px. Not on turning swipes: the
-    tracker does not model the turn.
+    (see refine's notes): its across error is mostly a constant slope, an across offset
+    growing with the along position (64 random swipes of bench_random.py, seed 7000: across
+    RMS median 0.141 px, 0.045 once the best line in the along position is taken out). The
+    tracker's key links measure the across step between frames a few rows apart directly,
+    without that bias but with noise. Each link's step against the refinement's step over
+    the same frames (its across with the along held at the refinement's, through the link's
+    own information) reads the slope: a weighted line through the origin (weights the links'
+    across information, Cauchy weights for the outliers a link registered a ridge off gives),
+    its standard error from the scatter. The slope is then shrunk towards zero by a Gaussian
+    prior and removed. The prior's standard deviation is the spread of the refinement's own
+    slope error on the random swipes (2.2e-3 RMS; ``_ACROSS_SLOPE_PRIOR``), falling to a floor
+    (``_ACROSS_SLOPE_FLOOR``) on swipes that are not slanted, where the shear reading has no
+    bias (noise-free frames read at the true placement: none at skew 0; see DEVELOPERS.md).
+    Where the links are precise (loops and whorls, 16-row strips) the tracker's slope stands;
+    where they are noisy (arches, whose ridges across the swipe leave little across texture)
+    the refinement's. Against the tracker's across path over 8 strip heights of travel
+    (measured, default mode across RMS; before -> after): bench_random.py seeds 7000 / 8000 /
+    9200 median 0.140 / 0.175 / 0.155 -> 0.132 / 0.145 / 0.116 px, mean 0.179 / 0.237 /
+    0.268 -> 0.164 / 0.219 / 0.260 (11 / 12 / 10 swipes better by more than 0.05 px, 5 / 7 /
+    5 worse: there the links read the slope wrong by more than their standard error, arches
+    and tented arches of 8 rows mostly); bench_independent.py median 0.097 -> 0.085, mean
+    0.201 -> 0.178 (5 better, none worse); the accuracy suite median 0.056 -> 0.055, mean
+    0.310 -> 0.306 (steady 8x192 0.028 -> 0.054: its first frames' offset, which the
+    tracker's path over 8 strip heights had taken out). Tried: one prior for every swipe
+    (2e-3: suite median 0.063, the steady 8x192 0.104, random medians 0.132 / 0.147 / 0.110),
+    and one growing with the slant (4 % of it, floor 3e-4: suite 0.058, random 0.129 / 0.141
+    / 0.125, a whorl slanted by 1.3 degrees whose refinement's slope error is 7.6e-3 then
+    kept most of it).
+
+    Not on turning swipes: the tracker does not model the turn.
     """
-    diff = positions[:, 1] - tracked[:, 1]
-    if contact.sum() < 2:
+    a, b, step, info = keys
+    if a.size < 3:
         return positions
-    travel = _refine._travel_px(positions)
-    drift = _refine._smooth_weighted(diff, np.where(contact, 1.0, np.inf), travel,
-                                     _ACROSS_DRIFT_STRIPS * r_n)
-    # frames without finger (no weight in the image) follow the nearest frames with it
-    drift = np.where(contact, drift, np.interp(travel, travel[contact], drift[contact]))
+    i11 = info[:, 1, 1]
+    use = i11 > 0
+    a, b, step, info, i11 = a[use], b[use], step[use], info[use], i11[use]
+    if a.size < 3:
+        return positions
+    ref_step = positions[a] - positions[b]
+    # the link's across step had its along been the refinement's
+    across = step[:, 1] - info[:, 0, 1] / i11 * (ref_step[:, 0] - step[:, 0])
+    diff = ref_step[:, 1] - across
+    dy = ref_step[:, 0]
+    var = 1.0 / i11
+    w = np.ones_like(diff)
+    slope = 0.0
+    for _ in range(6):
+        den = float(np.sum(w * dy * dy / var))
+        if den <= 0.0:
+            return positions
+        slope = float(np.sum(w * dy * diff / var)) / den
+        u = (diff - slope * dy) / np.sqrt(var)
+        scale = 1.4826 * float(np.median(np.abs(u))) + 1e-12
+        # Cauchy weights at 2.385 scales (95 % efficiency at the normal; common practice)
+        w = 1.0 / (1.0 + (u / (2.385 * scale)) ** 2)
+    u = (diff - slope * dy) / np.sqrt(var)
+    s2 = float(np.sum(w * u * u)) / max(float(np.sum(w)) - 1.0, 1.0)
+    se2 = s2 / float(np.sum(w * dy * dy / var))
+    slant = float(np.sum(dy * ref_step[:, 1])) / max(float(np.sum(dy * dy)), 1e-12)
+    tau2 = _ACROSS_SLOPE_FLOOR ** 2 \
+        + (_ACROSS_SLOPE_PRIOR * min(1.0, abs(slant) / _ACROSS_SLOPE_FULL_SLANT)) ** 2
+    gain = tau2 / (tau2 + se2)
     out = positions.copy()
-    out[:, 1] -= drift - drift[0]
+    out[:, 1] -= gain * slope * (positions[:, 0] - positions[0, 0])
     return out
 
 
@@ -956,7 +1001,9 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     refit the fixed pattern against the fused image where there are no blank frames;
     "stalled" (fast mode) to estimate it again, the frames weighted by their tracked travel,
     only where there are none and the finger stood still for at least ``_FAST_REFIT_STILL``
-    of the tracked links."""
+    of the tracked links. Returns positions, confidence, failed links, the prepared frames
+    used, the numbers of links and links kept, the overlap-limit runs, and the key links
+    (frame, key frame, measured step, its information; see _across_slope_from)."""
     t_n, r_n, c_n = prep.z.shape
     if r_n < _TRACK_MIN_ROWS or c_n < _TRACK_MIN_COLS:
         return None
@@ -1022,8 +1069,13 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     confidence = _confidence(frame_info, prep.contact, ok_frac)
     link_failed = _failed_links(t_n, cpairs, link_gap)
     limit_runs = _limit_frames(limit_runs, chain, confidence)
+    # Key links (frame, its key, the measured step, its information) for the refinement's
+    # long-range across path (see _across_slope_from).
+    kk = np.flatnonzero(np.isin(np.arange(len(chain)), tr.reference) & (tr.reference >= 0))
+    keys = (chain[kk], chain[tr.reference[kk]], tr.positions[kk] - tr.positions[tr.reference[kk]],
+            tr.info[kk])
     return (positions, confidence, link_failed, prep, int(len(chain) - 1), int(link_ok.sum()),
-            limit_runs)
+            limit_runs, keys)
 
 
 # Strips of at most this many rows take the along steps from the delay between their rows
