@@ -376,7 +376,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                     positions = ref2.positions.copy()
                     angles_deg = np.degrees(ref2.angles_rad)
             if placed is not None and np.ptp(angles_deg[prep.contact]) < 1.0:
-                positions = _across_slope_from(positions, keys)
+                positions = _across_slope_from(positions, keys, r_n)
     if delay_steps is not None:
         positions = _with_along_steps(positions, delay_steps)
     positions, confidence, link_failed, blank_runs, end_blank = _bridge_blank_runs(
@@ -431,13 +431,16 @@ def _central_turn_deg(positions, angles_rad, contact, frac=0.1):
 # The refinement's across path, corrected by the slope the tracker's key links read against
 # it (see _across_slope_from). The prior's standard deviation of that slope (px per px of
 # along travel): _ACROSS_SLOPE_PRIOR on a slanted swipe, falling to _ACROSS_SLOPE_FLOOR
-# below a slant of _ACROSS_SLOPE_FULL_SLANT (px across per px along).
+# below a slant of _ACROSS_SLOPE_FULL_SLANT (px across per px along)...
 _ACROSS_SLOPE_PRIOR = 2e-3
 _ACROSS_SLOPE_FLOOR = 3e-4
 _ACROSS_SLOPE_FULL_SLANT = 0.01
+# ... and falling to the floor again as the across phases the frames that saw a row sample
+# spread from one pixel to two (slant times rows, px).
+_ACROSS_SLOPE_SPREAD_PX = (1.0, 2.0)
 
 
-def _across_slope_from(positions, keys):
+def _across_slope_from(positions, keys, n_rows=None):
     """Refined positions with the across slope the tracker's key links read against them removed.
 
     The refinement's shear correction integrates a reading that is biased on slanted swipes
@@ -453,22 +456,33 @@ def _across_slope_from(positions, keys):
     prior and removed. The prior's standard deviation is the spread of the refinement's own
     slope error on the random swipes (2.2e-3 RMS; ``_ACROSS_SLOPE_PRIOR``), falling to a floor
     (``_ACROSS_SLOPE_FLOOR``) on swipes that are not slanted, where the shear reading has no
-    bias (noise-free frames read at the true placement: none at skew 0; see DEVELOPERS.md).
+    bias (noise-free frames read at the true placement: none at skew 0; see DEVELOPERS.md),
+    and on swipes slanted so much that the frames which saw a row sampled it at across phases
+    spread over two pixels or more (slant times ``n_rows``): the bias comes from a model
+    interpolated between one-sided, concentrated across phases and is small once they span a
+    pixel (seed 7000's 16-row swipes at 1.6-2.2 px of spread: refined slope errors within
+    1.3e-3, against up to 7.6e-3 under a pixel).
     Where the links are precise (loops and whorls, 16-row strips) the tracker's slope stands;
     where they are noisy (arches, whose ridges across the swipe leave little across texture)
     the refinement's. Against the tracker's across path over 8 strip heights of travel
     (measured, default mode across RMS; before -> after): bench_random.py seeds 7000 / 8000 /
-    9200 median 0.140 / 0.175 / 0.155 -> 0.132 / 0.145 / 0.116 px, mean 0.179 / 0.237 /
-    0.268 -> 0.164 / 0.219 / 0.260 (11 / 12 / 10 swipes better by more than 0.05 px, 5 / 7 /
-    5 worse: there the links read the slope wrong by more than their standard error, arches
+    9200 median 0.140 / 0.175 / 0.155 -> 0.131 / 0.145 / 0.115 px, mean 0.179 / 0.237 /
+    0.268 -> 0.164 / 0.217 / 0.260 (11 / 11 / 9 swipes better by more than 0.05 px, 5 / 4 /
+    4 worse: there the links read the slope wrong by more than their standard error, arches
     and tented arches of 8 rows mostly); bench_independent.py median 0.097 -> 0.085, mean
-    0.201 -> 0.178 (5 better, none worse); the accuracy suite median 0.056 -> 0.055, mean
-    0.310 -> 0.306 (steady 8x192 0.028 -> 0.054: its first frames' offset, which the
+    0.201 -> 0.178 (5 better, none worse); bench_geometry.py median 0.136 -> 0.146, mean
+    1.608 -> 1.579 (5 better, none worse); the accuracy suite median 0.056 -> 0.055, mean
+    0.310 -> 0.307 (steady 8x192 0.028 -> 0.054: its first frames' offset, which the
     tracker's path over 8 strip heights had taken out). Tried: one prior for every swipe
-    (2e-3: suite median 0.063, the steady 8x192 0.104, random medians 0.132 / 0.147 / 0.110),
-    and one growing with the slant (4 % of it, floor 3e-4: suite 0.058, random 0.129 / 0.141
-    / 0.125, a whorl slanted by 1.3 degrees whose refinement's slope error is 7.6e-3 then
-    kept most of it).
+    (2e-3: suite median 0.063, the steady 8x192 0.104, random medians 0.132 / 0.147 /
+    0.110), one growing with the slant (4 % of it, floor 3e-4: suite 0.058, random 0.129 /
+    0.141 / 0.125, a whorl slanted by 1.3 degrees whose refinement's slope error is 7.6e-3
+    then kept most of it), no fall at a wide spread of phases (a 24x128 strip slanted by 7.7
+    degrees, 3.2 px of spread: 0.060 -> 0.308 px; geometry median 0.193).
+
+    ``keys``: (frame, its key frame, the measured step, its information), as
+    _tracked_placement returns them; ``n_rows``: the strip's rows (None: no fall with the
+    spread).
 
     Not on turning swipes: the tracker does not model the turn.
     """
@@ -501,8 +515,11 @@ def _across_slope_from(positions, keys):
     s2 = float(np.sum(w * u * u)) / max(float(np.sum(w)) - 1.0, 1.0)
     se2 = s2 / float(np.sum(w * dy * dy / var))
     slant = float(np.sum(dy * ref_step[:, 1])) / max(float(np.sum(dy * dy)), 1e-12)
-    tau2 = _ACROSS_SLOPE_FLOOR ** 2 \
-        + (_ACROSS_SLOPE_PRIOR * min(1.0, abs(slant) / _ACROSS_SLOPE_FULL_SLANT)) ** 2
+    share = min(1.0, abs(slant) / _ACROSS_SLOPE_FULL_SLANT)
+    if n_rows is not None:
+        lo, hi = _ACROSS_SLOPE_SPREAD_PX
+        share *= float(np.clip((hi - abs(slant) * n_rows) / (hi - lo), 0.0, 1.0))
+    tau2 = _ACROSS_SLOPE_FLOOR ** 2 + (_ACROSS_SLOPE_PRIOR * share) ** 2
     gain = tau2 / (tau2 + se2)
     out = positions.copy()
     out[:, 1] -= gain * slope * (positions[:, 0] - positions[0, 0])
