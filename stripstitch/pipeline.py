@@ -485,6 +485,16 @@ def _across_slope_from(positions, keys, n_rows=None):
     spread).
 
     Not on turning swipes: the tracker does not model the turn.
+
+    References
+    ----------
+    .. [1] P. W. Holland and R. E. Welsch, "Robust regression using iteratively reweighted
+           least-squares", Communications in Statistics - Theory and Methods 6(9), 813-827
+           (1977). doi:10.1080/03610927708827533
+    .. [2] A. Gelman, J. B. Carlin, H. S. Stern, D. B. Dunson, A. Vehtari and D. B. Rubin,
+           Bayesian Data Analysis, 3rd ed., CRC Press (2013), section 2.5 (a normal mean
+           with known variance: the posterior mean shrinks the estimate by
+           prior variance / (prior variance + its variance)).
     """
     a, b, step, info = keys
     if a.size < 3:
