@@ -3,6 +3,8 @@ solve, fusion and the report into one :class:`~stripstitch.Reconstruction`."""
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numba
 import numpy as np
 from scipy.special import erf
@@ -444,7 +446,7 @@ def _turned_links_across(prep, positions, angles_deg, trk_out):
     0.05 px, 3 / 2 / 2 worse; medians of all 64 swipes 0.131 / 0.145 / 0.115 -> 0.127 /
     0.139 / 0.115); bench_rotation.py median 0.142 -> 0.139, mean 0.263 -> 0.196;
     bench_independent.py median 0.085 -> 0.078; bench_geometry.py 0.146 -> 0.131; spans
-    within 0.01 % in median. The cost: a turning 8x192 swipe at 4 kHz 0.177 -> 0.211 s.
+    within 0.01 % in median. The cost: a turning 8x192 swipe at 4 kHz 0.177 -> 0.190 s.
     Every frame's link registered again instead of the keys' gained a little more (random
     turning means 0.175 / 0.244 / 0.455 px) at twice the cost (0.256 s); rebuilding the along
     path too made spans worse (rotation benchmark median 0.062 -> 0.083 %, two false events
@@ -466,7 +468,10 @@ def _turned_links_across(prep, positions, angles_deg, trk_out):
     d0 = positions[fa] - positions[fb]
     c, s_ = np.cos(th[fb]), np.sin(th[fb])
     init = np.stack([c * d0[:, 0] + s_ * d0[:, 1], -s_ * d0[:, 0] + c * d0[:, 1]], 1)
-    est = _reg.refine_shifts(prep, np.stack([fb, fa], 1), init, init_angle=th[fa] - th[fb],
+    # only the frames the links use (the registration prepares every frame it is given)
+    used, local = np.unique(np.concatenate([fb, fa]), return_inverse=True)
+    sub = SimpleNamespace(z=prep.z[used], plate_ok=prep.plate_ok)
+    est = _reg.refine_shifts(sub, local.reshape(2, -1).T, init, init_angle=th[fa] - th[fb],
                              estimate_rotation=False, iterations=4)
     step = np.where(est.ok[:, None], est.shift, init)
     across = s_ * step[:, 0] + c * step[:, 1]
