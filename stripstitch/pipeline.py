@@ -544,10 +544,11 @@ def _across_slope_from(positions, keys, n_rows=None):
     spread over two pixels or more (slant times ``n_rows``): the bias comes from a model
     interpolated between one-sided, concentrated across phases and is small once they span a
     pixel (seed 7000's 16-row swipes at 1.6-2.2 px of spread: refined slope errors within
-    1.3e-3, against up to 7.6e-3 under a pixel).
-    Where the links are precise (loops and whorls, 16-row strips) the tracker's slope stands;
-    where they are noisy (arches, whose ridges across the swipe leave little across texture)
-    the refinement's. Against the tracker's across path over 8 strip heights of travel
+    1.3e-3, against up to 7.6e-3 under a pixel). Where the links are precise (loops and
+    whorls, 16-row strips) the tracker's slope stands; where they are noisy (arches, whose
+    ridges across the swipe leave little across texture) the refinement's.
+
+    Against the tracker's across path over 8 strip heights of travel
     (measured, default mode across RMS; before -> after): bench_random.py seeds 7000 / 8000 /
     9200 median 0.140 / 0.175 / 0.155 -> 0.131 / 0.145 / 0.115 px, mean 0.179 / 0.237 /
     0.268 -> 0.164 / 0.217 / 0.260 (11 / 11 / 9 swipes better by more than 0.05 px, 5 / 4 /
@@ -565,9 +566,8 @@ def _across_slope_from(positions, keys, n_rows=None):
 
     ``keys``: (frame, its key frame, the measured step, its information), as
     _tracked_placement returns them; ``n_rows``: the strip's rows (None: no fall with the
-    spread).
-
-    Not on turning swipes: the tracker does not model the turn.
+    spread). Not used on turning swipes (see _turned_links_across: their links read a slope
+    that is not the refinement's error).
 
     References
     ----------
