@@ -452,13 +452,13 @@ def _turned_links_across(prep, positions, angles_deg, trk_out):
     path too made spans worse (rotation benchmark median 0.062 -> 0.083 %, two false events
     on bench_random.py's seed 8000).
 
-    ``trk_out``: (chain, the tracker's result, frame times) from _tracked_placement.
+    ``trk_out``: (chain, the tracker's result, frame times, which chain frames are keys)
+    from _tracked_placement.
     """
-    chain, tr, times = trk_out
+    chain, tr, times, keys = trk_out
     ref = tr.reference
     # the key frames' links only: they carry the path; a frame between keys errs by at most
     # one link's share, and follows its keys' correction in time
-    keys = np.isin(np.arange(len(chain)), ref)
     k = np.flatnonzero(keys & (ref >= 0))
     if k.size < 2:
         return positions
@@ -1114,7 +1114,7 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     of the tracked links. Returns positions, confidence, failed links, the prepared frames
     used, the numbers of links and links kept, the overlap-limit runs, the key links (frame,
     key frame, measured step, its information; see _across_slope_from), and (chain, the
-    tracker's result, frame times) for _turned_links_across."""
+    tracker's result, frame times, which chain frames are keys) for _turned_links_across."""
     t_n, r_n, c_n = prep.z.shape
     if r_n < _TRACK_MIN_ROWS or c_n < _TRACK_MIN_COLS:
         return None
@@ -1183,11 +1183,12 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     # Key links (frame, its key, the measured step, its information) for the refinement's
     # long-range across path (see _across_slope_from); the chain, the tracker's result and
     # the frame times for a turning swipe's (see _turned_links_across).
-    kk = np.flatnonzero(np.isin(np.arange(len(chain)), tr.reference) & (tr.reference >= 0))
+    is_key = np.isin(np.arange(len(chain)), tr.reference)
+    kk = np.flatnonzero(is_key & (tr.reference >= 0))
     keys = (chain[kk], chain[tr.reference[kk]], tr.positions[kk] - tr.positions[tr.reference[kk]],
             tr.info[kk])
     return (positions, confidence, link_failed, prep, int(len(chain) - 1), int(link_ok.sum()),
-            limit_runs, keys, (chain, tr, times))
+            limit_runs, keys, (chain, tr, times, is_key))
 
 
 # Strips of at most this many rows take the along steps from the delay between their rows
