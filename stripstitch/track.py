@@ -20,9 +20,14 @@ The filter is a constant-velocity Kalman filter whose state also holds the posit
 current and the previous key frame (stochastic cloning [3]_): every registration measures a
 position relative to a key, and the correlation this creates is kept instead of ignored. Each
 frame is registered against both keys while they overlap it, so a key's error is averaged
-over the frames that see both instead of being handed on. Tracking starts at the best-seen
-frame in the middle of the swipe and runs forwards and backwards from it, so the partial
-contact at the ends is met with a velocity the well-seen frames set.
+over the frames that see both instead of being handed on. Its acceleration allowance is
+split along and across the current direction of travel [4]_ (the across share a fifth of it,
+``sideways_acc``): a finger changes speed freely but hardly its direction, and where the
+ridges run nearly straight over the strip, the registrations read the shift along them weakly
+and biased; the path then keeps the direction the well-seen frames set instead of walking off
+along the ridges. Tracking starts at the best-seen frame in the middle of the swipe and runs
+forwards and backwards from it, so the partial contact at the ends is met with a velocity the
+well-seen frames set.
 
 References
 ----------
@@ -33,6 +38,8 @@ References
 .. [3] S. I. Roumeliotis and J. W. Burdick, "Stochastic cloning: a generalized framework for
        processing relative state measurements", Proc. IEEE ICRA 2002, 1788-1795.
        doi:10.1109/ROBOT.2002.1014801
+.. [4] Y. Bar-Shalom, X. R. Li and T. Kirubarajan, "Estimation with Applications to Tracking
+       and Navigation", Wiley 2001, sec. 6.3.3 (discrete white-noise acceleration model).
 """
 
 from __future__ import annotations
@@ -44,7 +51,7 @@ import numba
 import numpy as np
 
 from ._jit import JIT
-from ._validate import check_array, check_frames, check_int, check_positive
+from ._validate import check_array, check_frames, check_in_range, check_int, check_positive
 
 __all__ = ["TrackResult", "track", "FrameTracker"]
 
@@ -664,11 +671,33 @@ def _coarse(a, b, m, max_along, max_across, p0, p1, use_prior, res):
 # all frames measured against the same key, so the motion model and the frames that see both
 # keys correct a key's error instead of passing it on unchanged.
 _NS = 8
+# The filter's white acceleration across the finger's current direction of travel, as a
+# fraction of q_acc (along it, q_acc): a finger speeds up and slows down freely but hardly
+# changes direction, and on a slanted swipe its across speed follows its along speed. Where
+# the ridges run nearly straight over a stretch (the lower finger, the fingertip arriving),
+# a registration reads the shift along the ridges only weakly, and biased by tenths of a
+# pixel by the interpolation's phase error (noise-free 16x128 frames at 1.5-1.8 px per frame:
+# single links 0.3-0.6 px off along the ridges from the true start, while frames with rows
+# aligned read the true across shift within 0.08 px); with the same allowance in every
+# direction, such links walked the path 5 px off across within 40 frames, which no later
+# model pass can see (the data do not change along the ridges). Held to its direction, the
+# path crosses such stretches at the direction the well-seen frames set. Measured (default
+# mode, across RMS median; bench_random.py's generator, 64 swipes each, seeds 7000 / 8000 /
+# 9200): 18 x 14 mm fingers (wider than the strip, so no pad edge in view across) 0.274 /
+# 0.315 / 0.278 -> 0.222 / 0.255 / 0.220 px; 12 x 10 mm fingers 0.127 / 0.139 / 0.115 ->
+# 0.125 / 0.129 / 0.114 px, worst span error 0.64 -> 0.40 % (seed 7000). Fractions of 0.05
+# to 0.35 all helped (18 x 14 seed 7000: 0.225 / 0.237 / 0.220 / 0.222 / 0.243 at 0.05 / 0.1
+# / 0.15 / 0.2 / 0.35).
+_ACC_SIDE = 0.2
+# Speed (px per frame) under which the direction of travel is not trusted (a stall, a
+# reversal): the allowance is then q_acc in every direction.
+_STILL_PX = 0.05
 
 
 @numba.njit(**JIT)
-def _kalman_predict(x, P, dt, q_acc):
-    """Constant-velocity prediction over dt frames with white acceleration (px/frame^2)."""
+def _kalman_predict(x, P, dt, q_acc, side):
+    """Constant-velocity prediction over dt frames with white acceleration (px/frame^2),
+    ``q_acc`` along the current direction of travel and ``side * q_acc`` across it."""
     for k in range(2):
         x[k] += x[k + 2] * dt
     # P <- F P F^T + Q, F = identity with dt at (k, k + 2)
@@ -678,12 +707,27 @@ def _kalman_predict(x, P, dt, q_acc):
     for j in range(_NS):
         for k in range(2):
             P[k, j] += dt * P[k + 2, j]
+    # Q: white acceleration, a2 = q_acc^2 along the current velocity and side^2 a2 across it
+    # (the finger changes speed freely but keeps its direction; see _ACC_SIDE), the same in
+    # every direction while the finger is (nearly) still.
     a2 = q_acc * q_acc
+    vn = np.sqrt(x[2] * x[2] + x[3] * x[3])
+    if vn > _STILL_PX:
+        u0 = x[2] / vn
+        u1 = x[3] / vn
+        s2 = side * side
+    else:
+        u0 = 1.0
+        u1 = 0.0
+        s2 = 1.0
     for k in range(2):
-        P[k, k] += 0.25 * dt ** 4 * a2
-        P[k, k + 2] += 0.5 * dt ** 3 * a2
-        P[k + 2, k] += 0.5 * dt ** 3 * a2
-        P[k + 2, k + 2] += dt * dt * a2
+        for m in range(2):
+            uu = (u0 if k == 0 else u1) * (u0 if m == 0 else u1)
+            a = a2 * (uu + s2 * ((1.0 if k == m else 0.0) - uu))
+            P[k, m] += 0.25 * dt ** 4 * a
+            P[k, m + 2] += 0.5 * dt ** 3 * a
+            P[k + 2, m] += 0.5 * dt ** 3 * a
+            P[k + 2, m + 2] += dt * dt * a
 
 
 @numba.njit(**JIT)
@@ -779,8 +823,8 @@ _NCC_DROP_SLID = 0.05
 
 @numba.njit(**JIT)
 def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, iters, lam,
-           min_ncc, q_acc, model_px, use_old, up_key, up_old, st_f, st_i, ref_base, pos, info,
-           ref, ncc, sig, link_ok, pvar):
+           min_ncc, q_acc, q_side, model_px, use_old, up_key, up_old, st_f, st_i, ref_base, pos,
+           info, ref, ncc, sig, link_ok, pvar):
     """Place chain[1:] (chain[0] is placed: at ``pos[0]``). The filter lives in ``st_f``
     (running NCC, state, covariance) and ``st_i`` (started, have_v, have_old, key relative to
     chain[0], keys so far) and the key frames in ``up_key``/``up_old``, so a swipe can be fed
@@ -833,7 +877,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         if full:
             _template_sums(b, g0, g1, pre)
         dt = tchain[j] - tchain[j - 1]
-        _kalman_predict(x, P, dt, q_acc)
+        _kalman_predict(x, P, dt, q_acc, q_side)
         placed = False
         fresh = False
         if have_v:
@@ -1043,7 +1087,7 @@ def _lagrange_taps(n):
 
 
 def _settings(shape, plate_mask, max_along_px, max_across_px, reach_px, iterations, prior_px,
-              min_ncc, sigma_acc_px, model_px, second_key):
+              min_ncc, sigma_acc_px, sideways_acc, model_px, second_key):
     """Checked options of :func:`track` as the arguments of :func:`_track` that follow the
     chain's times; the plate mask as float, and the band of rows and columns that holds
     usable plates (None: all of them)."""
@@ -1074,6 +1118,7 @@ def _settings(shape, plate_mask, max_along_px, max_across_px, reach_px, iteratio
     iterations = check_int(iterations, name="iterations", lo=1, hi=50)
     prior_px = check_positive(prior_px, name="prior_px")
     sigma_acc_px = check_positive(sigma_acc_px, name="sigma_acc_px")
+    sideways_acc = check_in_range(sideways_acc, 0.0, 1.0, name="sideways_acc")
     model_px = check_positive(model_px, name="model_px")
     # The prior's weight in units of the residual variance: lam * sigma^2 = sigma^2 / prior^2.
     lam = 1.0 / prior_px ** 2
@@ -1081,12 +1126,12 @@ def _settings(shape, plate_mask, max_along_px, max_across_px, reach_px, iteratio
     loc, wc = _lagrange_taps(int(b_c))
     return m, band, (lor, wr, loc, wc, int(min(max_along, b_r - 1)), int(min(max_across, b_c - 4)),
                      float(reach_px), int(iterations), lam, float(min_ncc), float(sigma_acc_px),
-                     float(model_px), bool(second_key))
+                     float(sideways_acc), float(model_px), bool(second_key))
 
 
 def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_across_px=None,
           reach_px=None, iterations=3, prior_px=0.5, min_ncc=0.5, sigma_acc_px=0.05,
-          model_px=0.02, start=None, second_key=True):
+          sideways_acc=_ACC_SIDE, model_px=0.02, start=None, second_key=True):
     """Place frames by registering each against a key frame (see the module notes).
 
     Parameters
@@ -1118,6 +1163,12 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
         Standard deviation of the acceleration (px per frame squared) of the constant-velocity
         Kalman filter that predicts each frame and carries the directions a registration
         leaves undetermined. Default 0.05.
+    sideways_acc : float
+        The filter's acceleration across the current direction of travel as a fraction of
+        ``sigma_acc_px`` (along it, ``sigma_acc_px``), in [0, 1]: a finger changes speed
+        freely but hardly its direction, so a stretch whose ridges leave the shift along them
+        undetermined is crossed in the direction the well-seen frames set. 1: the same in
+        every direction. Default 0.2.
     model_px : float
         Error (px) allowed for in every registration besides the noise (edge aliasing,
         interpolation). Default 0.02.
@@ -1147,7 +1198,8 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     t_n, r_n, c_n = z.shape
     z = np.ascontiguousarray(z, dtype=np.float32)
     m, band, kw = _settings((r_n, c_n), plate_mask, max_along_px, max_across_px, reach_px,
-                            iterations, prior_px, min_ncc, sigma_acc_px, model_px, second_key)
+                            iterations, prior_px, min_ncc, sigma_acc_px, sideways_acc, model_px,
+                            second_key)
     if band is not None:
         z_run = np.ascontiguousarray(z[:, band[0], band[1]])
         m_run = np.ascontiguousarray(m[band])
@@ -1212,7 +1264,7 @@ class FrameTracker:
     plate_mask : (R, C) array_like of bool
         Plates to use (fixed for the swipe).
     max_along_px, max_across_px, reach_px, iterations, prior_px, min_ncc, sigma_acc_px, \
-model_px, second_key
+sideways_acc, model_px, second_key
         As :func:`track`.
 
     Examples
@@ -1229,8 +1281,8 @@ model_px, second_key
     """
 
     def __init__(self, plate_mask, *, max_along_px=None, max_across_px=None, reach_px=None,
-                 iterations=3, prior_px=0.5, min_ncc=0.5, sigma_acc_px=0.05, model_px=0.02,
-                 second_key=True):
+                 iterations=3, prior_px=0.5, min_ncc=0.5, sigma_acc_px=0.05,
+                 sideways_acc=_ACC_SIDE, model_px=0.02, second_key=True):
         shape = np.shape(plate_mask)
         if len(shape) != 2 or shape[0] < 2 or shape[1] < 8:
             raise ValueError(f"plate_mask must have shape (R, C) with R >= 2 and C >= 8; got "
@@ -1238,7 +1290,7 @@ model_px, second_key
         self.shape = (int(shape[0]), int(shape[1]))
         m, self._band, self._kw = _settings(self.shape, plate_mask, max_along_px, max_across_px,
                                             reach_px, iterations, prior_px, min_ncc,
-                                            sigma_acc_px, model_px, second_key)
+                                            sigma_acc_px, sideways_acc, model_px, second_key)
         self._m = np.ascontiguousarray(m[self._band]) if self._band is not None else m
         self._state = _fresh_state(self._m.shape)
         self._n = 0                       # frames pushed
