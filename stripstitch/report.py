@@ -434,7 +434,13 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
                        "sliding over the sensor does not do: ridges running straight over the "
                        "strip left the sideways placement undetermined there, and the image "
                        "is distorted")
-        if x >= _SWERVE_UNUSABLE_PX:
+        # ... and on a small or narrow strip at the limit already: a strip of few plates
+        # or columns has no well-placed stretch that could outweigh the swerve (bench_geometry.py:
+        # a 20x16 strip 10.8 px across RMS and an 8x24 one 22 % long, both swerving by 10 px
+        # and both called usable).
+        small = ((n_plates is not None and n_plates < FEW_PLATES)
+                 or (n_cols is not None and n_cols < NARROW_COLS))
+        if x >= _SWERVE_UNUSABLE_PX or small:
             verdict = "unusable"
     if n_rows <= FEW_ROWS:
         reasons.append(f"strip of only {n_rows} rows: placement less reliable, errors of "

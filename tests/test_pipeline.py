@@ -490,6 +490,16 @@ def test_swerve_found_only_where_the_placement_leaves_its_line():
                                  pitch_um=50.8, image=np.ones((10, 10)))
         assert rep.verdict == verdict
         assert any("swerves sideways" in r for r in rep.reasons)
+    # On a small or narrow strip a swerve at the limit already makes it unusable.
+    pos, ev, _ = swerves(0.4)
+    for kw, verdict in ((dict(n_plates=8 * 192, n_cols=192), "usable"),
+                        (dict(n_plates=8 * 24, n_cols=24), "unusable"),
+                        (dict(n_plates=20 * 16, n_cols=16), "unusable")):
+        rep = report.make_report(events=ev, positions=pos, angles_deg=np.zeros(t_n),
+                                 confidence=np.ones(t_n), contact=np.ones(t_n, bool),
+                                 times_s=np.arange(t_n) / 4000.0, frame_rate_hz=4000.0, n_rows=8,
+                                 pitch_um=50.8, image=np.ones((10, 10)), **kw)
+        assert rep.verdict == verdict, kw
 
 
 def test_strips_of_few_rows_get_a_reason():
