@@ -518,21 +518,25 @@ def test_strips_of_few_rows_get_a_reason():
         assert any(f"only {n_rows} rows" in r for r in rep.reasons) == said
 
 
-def test_runaway_across_on_a_narrow_strip_is_reported():
+def test_straight_flank_ridges_on_a_narrow_strip():
     # A 16x32 strip (1.6 mm wide) under the straight flank ridges of a tented arch: nothing
-    # across the strip fixes the sideways placement there, and the key-frame tracker ran off
-    # sideways by about 1.4 px per frame at both ends (about 28 px RMS across against the
-    # simulator's truth). It used to be called usable; the swerve makes it unusable. The
-    # truth itself never swerves (simulated swipes move on a straight slanted line).
+    # across the strip fixes the sideways placement there. With the tracker's acceleration
+    # allowance the same in every direction it ran off sideways by about 1.4 px per frame at
+    # both ends (about 28 px RMS across against the simulator's truth; a swerve of over
+    # 16 px, called unusable). Held to the finger's direction of travel it no longer runs
+    # off: 5.4 px RMS, a 6 px slip while the fingertip arrives and flat after, no swerve;
+    # the narrow strip's caution stays. The truth itself never swerves (simulated swipes
+    # move on a straight slanted line).
     from stripstitch import report
-    cap, res, _ = _simulated("tented_arch", 811, 1211, skin="wet", n_rows=16, n_cols=32,
+    cap, res, d = _simulated("tented_arch", 811, 1211, skin="wet", n_rows=16, n_cols=32,
                              frame_rate_hz=3000.0, profile="constant", speed_mm_s=126.0,
                              snr_db=30.0, skew_deg=3.2, backtracks=((4.9, 0.23),))
     first, last = res.report.frames_in_contact
     assert report.find_swerves(cap.positions, first, last) == []
     sw = [e for e in res.events if e.kind == "low_confidence" and e.details.get("cause") == "swerve"]
-    assert sw and max(e.details["excursion_px"] for e in sw) > 16.0
-    assert res.report.verdict == "unusable"
+    assert not sw or max(e.details["excursion_px"] for e in sw) < 16.0
+    assert d["across_rms_px"] < 10.0
+    assert any("narrow strip" in r for r in res.report.reasons)
 
 
 def test_stall_rule_is_along_the_swipe():
