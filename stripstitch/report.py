@@ -261,6 +261,8 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
             events.append(Event("stall", a, b, {
                 "frames": b - a + 1, "duration_s": None if dur is None else round(float(dur), 4),
                 "position_px": [round(float(positions[a, 0]), 2), round(float(positions[a, 1]), 2)]}))
+    # Low confidence over contact frames (the runs are reported last, less those of a cause).
+    low = (confidence < low_confidence) & contact
     # Backtrack: along-swipe motion against the swipe's overall direction.
     direction = np.sign(positions[last, 0] - positions[first, 0]) or 1.0
     back = (direction * v_along < -v_stall) & in_c
@@ -273,13 +275,33 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     for a, b in _runs(back):
         seg = direction * positions[max(a - 1, 0):min(b + 2, t_n), 0]
         dist = float(seg[0] - seg.min())
-        if dist >= min_backtrack_px:
+        # A lone step back into the first or the last frame in contact, the step beyond it
+        # not undoing it (else the frame next to it is the odd one): that end frame has
+        # neighbours on one side only, and a single misregistration of it cannot be told
+        # from a reversal; its placement is doubtful, not the motion. (The 12 dB brick
+        # texture of bench_accuracy.py: the first frame, 1/7 of the swipe's texture power,
+        # matched its neighbour 1.4 px back with NCC 0.52-0.54 against 0.50-0.51 at the true
+        # shift, and the frames 2-10 on agreed with either; it was read as a 1.04 px
+        # backtrack.)
+        lone_end = False
+        if dist >= min_backtrack_px and a == b:
+            if a == first + 1 and a + 1 <= last:
+                lone_end = step[a + 1] < dist
+            elif a == last and a - 1 > first:
+                lone_end = step[a - 1] < dist
+        if lone_end:
+            f = first if a == first + 1 else last
+            events.append(Event("low_confidence", f, f, {
+                "frames": 1, "cause": "end_step",
+                "min_confidence": round(float(confidence[f]), 3),
+                "step_px": round(float(direction * (positions[a, 0] - positions[a - 1, 0])), 2)}))
+            low[f] = False
+        elif dist >= min_backtrack_px:
             events.append(Event("backtrack", a, b, {
                 "distance_px": round(dist, 2), "distance_mm": round(dist * pitch_um / 1000, 3),
                 "from_px": round(float(positions[a, 0]), 2)}))
     # Stretches with no texture at all (a crease or scar), crossed at the measured speed:
     # low confidence with their cause, the travel and its uncertainty.
-    low = (confidence < low_confidence) & contact
     for a, b, travel_px, sigma_px in blank_runs:
         events.append(Event("low_confidence", int(a), int(b), {
             "frames": int(b - a + 1), "cause": "no_texture",
@@ -446,7 +468,14 @@ def make_report(*, events, positions, angles_deg, confidence, contact, times_s, 
         reasons.append(f"strip of only {n_rows} rows: placement less reliable, errors of "
                        "several percent of the length are possible (over so few rows, ridges "
                        "running across the strip leave the motion along them undetermined)")
-    n_low = counts.get("low_confidence", 0) - len(blank) - len(limit) - len(swerve)
+    end = _caused(events, "end_step")
+    if end:
+        v = max(abs(e.details["step_px"]) for e in end)
+        reasons.append(f"{len(end)} frame(s) at the swipe's ends placed up to {v:.1f} px against "
+                       "the swipe's direction from their neighbour: a doubtful placement of a "
+                       "frame seen from one side only, not counted as the finger moving back")
+    n_low = (counts.get("low_confidence", 0) - len(blank) - len(limit) - len(swerve)
+             - len(end))
     if n_low and mean_conf >= 0.5:
         reasons.append(f"{n_low} stretch(es) of low placement confidence (e.g. ridges parallel "
                        "to the swipe)")

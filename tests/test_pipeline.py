@@ -518,6 +518,46 @@ def test_strips_of_few_rows_get_a_reason():
         assert any(f"only {n_rows} rows" in r for r in rep.reasons) == said
 
 
+def test_a_lone_step_back_into_an_end_frame_is_no_backtrack():
+    # Trajectories by construction, 4 kHz, 0.4 px per frame. The first (or last) frame in
+    # contact placed 1.4 px back against its neighbour is a doubtful end frame, seen from
+    # one side only: a low_confidence event of cause "end_step" and a reason, not a
+    # backtrack (a 1.8 px per frame change of speed in one frame period, 1.2 km/s^2 at
+    # 50.8 um and 4 kHz). The same step back one frame inside the swipe, or a reversal over
+    # several frames at the start, stays a backtrack.
+    from stripstitch import report
+    t_n = 400
+    base = np.stack([0.4 * np.arange(t_n), np.zeros(t_n)], 1)
+
+    def kinds(pos):
+        ev = _events_of(pos, 4000.0)
+        return ev, [(e.kind, e.first_frame, e.last_frame, e.details.get("cause")) for e in ev]
+
+    assert kinds(base)[1] == []
+    for frame in (0, t_n - 1):
+        pos = base.copy()
+        pos[frame, 0] += 1.8 if frame == 0 else -1.8     # 1.4 px back from its neighbour
+        ev, k = kinds(pos)
+        assert k == [("low_confidence", frame, frame, "end_step")]
+        assert ev[0].details["step_px"] == pytest.approx(-1.4, abs=1e-9)
+        rep = report.make_report(events=ev, positions=pos, angles_deg=np.zeros(t_n),
+                                 confidence=np.ones(t_n), contact=np.ones(t_n, bool),
+                                 times_s=np.arange(t_n) / 4000.0, frame_rate_hz=4000.0, n_rows=8,
+                                 pitch_um=50.8, image=np.ones((10, 10)))
+        assert rep.verdict == "usable"
+        assert any("swipe's ends" in r for r in rep.reasons)
+        assert not any("backwards" in r or "low placement" in r for r in rep.reasons)
+    # One frame inside: frame 1 placed 1.8 px back, so the finger went back and forth.
+    pos = base.copy()
+    pos[1, 0] -= 1.8
+    assert [x[0] for x in kinds(pos)[1]] == ["backtrack"]
+    # The finger backing up over its first five frames (a reversal, not a lone frame).
+    pos = base.copy()
+    pos[:6, 0] = 0.4 * (5 - np.arange(6)) - 2.0
+    pos[6:, 0] += 0.0
+    assert [x[0] for x in kinds(pos)[1]] == ["backtrack"]
+
+
 def test_straight_flank_ridges_on_a_narrow_strip():
     # A 16x32 strip (1.6 mm wide) under the straight flank ridges of a tented arch: nothing
     # across the strip fixes the sideways placement there. With the tracker's acceleration
