@@ -1120,9 +1120,12 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         return None
     times = np.concatenate([[0.0], np.cumsum(dt_frames)])
 
+    # Default mode registers smoothed frames (see _TRACK_PREFILTER_PX); fast mode does not.
+    pre = _TRACK_PREFILTER_PX if (refit is True and r_n >= _PREFILTER_MIN_ROWS) else 0.0
+
     def run(p):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
-                            sigma_acc_px=motion_prior_px)
+                            sigma_acc_px=motion_prior_px, prefilter_px=pre)
 
     def spread(tr):
         return _spread(times, chain, tr.positions)
@@ -1213,6 +1216,35 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
 # |span error| 0.64 -> 0.35 %, worst 24 -> 11 %, the slow ones unchanged).
 # Model passes after the tracker placed the frames (see stitch).
 _TRACKED_PASSES = 2
+# Default mode's tracker registers frames smoothed by a Gaussian of this many px (track.track's
+# prefilter_px) on strips of at least _PREFILTER_MIN_ROWS rows. The plates alias the
+# flat-topped ridges' harmonics, which makes registrations lock towards whole pixels; where
+# the finger moves a near-constant fraction of a pixel per frame every link locks the same
+# way and the model passes cannot take it out (all frames sample one sub-pixel phase): a
+# steady 100 mm/s swipe on 16x128 at 2 kHz (0.984 px per frame) came out +0.12 to +0.38 %
+# long, 0.11-0.31 px along RMS (three fingers), now -0.03 to +0.06 %, 0.01-0.06 px; 200 mm/s
+# (1.97 px per frame) +0.09 to +0.21 % -> -0.10 to +0.03 %. Measured besides (default mode,
+# before -> after): bench_random.py across median 0.125 -> 0.108 px, along 0.052 -> 0.048;
+# 18 x 14 mm fingers across mean 0.319 -> 0.289 px; the accuracy suite along median 0.070 ->
+# 0.036 px, span median 0.064 -> 0.046 %; bench_rotation.py along 0.049 -> 0.038. Worse: the
+# photographed brick and gravel textures of bench_independent.py at 1.9 px per frame on
+# 16x128 (along 0.23 -> 0.56 and 0.07 -> 0.12 px; their fine detail is what the smoothing
+# takes, and the left-out edge rows shorten the overlaps), bench_bands.py's span median
+# 0.095 -> 0.105 %, the suite's too-fast 16x128 swipe across its gap -1.6 -> -2.3 %, and
+# turning swipes at whole-pixel speed, where the lock had hidden half of the along bias of
+# the tracker's translation-only links of turned frames (16x128 at 0.98 px per frame turning
+# 2-3 degrees, three fingers: -0.32 / -0.08 / +0.55 -> -0.78 / -0.31 / +0.27 %). Not on
+# strips of fewer rows (8x192, whose 200 mm/s swipes at 4 kHz are as whole-pixel and still
+# come out 0.16-0.45 % long: the two left-out rows are a quarter of the overlap; with the
+# reach shortened to keep it, the whole-pixel swipes came out within 0.06 %, but the suite's
+# 12 dB brick texture -0.4 -> -2.3 %, its steady 8x192 0.017 -> 0.050 px along) nor in fast
+# mode (the tracker's placement is final there; bench_independent.py's fast along median
+# 0.125 -> 0.219 px).
+# sigma 0.5 took out half as much of the locking (noise-free frames, partial contact: link
+# bias 0.035 -> 0.015 px against 0.001 at 0.7) and left the photographs as they were at 0.7.
+# Cost: 16x128 at 2 kHz 2.47x -> 2.27x real time on one core (bench_throughput.py).
+_TRACK_PREFILTER_PX = 0.7
+_PREFILTER_MIN_ROWS = 12
 # Fast mode estimates the fixed pattern again (see _tracked_placement) only where the tracker
 # found the finger still for at least this share of its links and there are no blank frames:
 # a stall's frames repeat one stretch of finger, and where the contact test finds no blank

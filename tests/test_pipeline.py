@@ -518,6 +518,25 @@ def test_strips_of_few_rows_get_a_reason():
         assert any(f"only {n_rows} rows" in r for r in rep.reasons) == said
 
 
+@pytest.mark.parametrize("pattern, seed", [("left_loop", 21), ("tented_arch", 23)])
+def test_whole_pixel_steps_do_not_stretch_the_swipe(pattern, seed):
+    # A steady 100 mm/s swipe over the 16x128 strip at 2 kHz moves 0.984 px per frame: every
+    # frame pair sits at about the same fraction of a pixel, the registrations' lock towards
+    # whole pixels adds up instead of averaging out, and the model passes cannot take it out
+    # (all frames sample one sub-pixel phase). Against the simulator's truth, these two came
+    # out +0.30 % and +0.15 % long, 0.19 and 0.12 px along RMS; with the tracker registering
+    # frames smoothed by 0.7 px (track.track's prefilter_px), -0.02 % and +0.04 %, 0.02 and
+    # 0.01 px.
+    from stripstitch import evaluate, simulate
+    finger = simulate.make_finger(pattern, size_mm=(12.0, 10.0), rng=seed)
+    cap = simulate.swipe(pattern, finger=finger, rng=seed + 1, n_rows=16, n_cols=128,
+                         frame_rate_hz=2000.0, speed_mm_s=100.0, snr_db=30.0, profile="constant")
+    res = stitch(cap.frames, frame_rate_hz=2000.0)
+    d = evaluate.evaluate(res, cap, image=False, distortion=False, crb=False).to_dict()
+    assert abs(d["span_error_pct"]) < 0.08
+    assert d["along_rms_px"] < 0.05
+
+
 def test_a_lone_step_back_into_an_end_frame_is_no_backtrack():
     # Trajectories by construction, 4 kHz, 0.4 px per frame. The first (or last) frame in
     # contact placed 1.4 px back against its neighbour is a doubtful end frame, seen from
@@ -1194,7 +1213,11 @@ def test_turning_strip_at_a_pixel_per_frame_keeps_its_across_path():
     # the tracker's across path there, and the tracker registers turned frames by translation
     # alone (biased across by the turn). Its key links registered again with the refined
     # relative turn held: across RMS 1.25 px before, 0.31 px now (1.18 with the relative turn
-    # left out, 2.14 with it of the wrong sign).
+    # left out, 2.14 with it of the wrong sign). Along, the tracker's translation-only links
+    # of turned frames read about 0.6 % short here; the whole-pixel lock of unsmoothed frames
+    # (+0.3 % on this finger unturned) had hidden half of that: with the tracker's smoothing
+    # (pipeline._TRACK_PREFILTER_PX) along RMS 0.36 -> 0.64 px, span -0.32 -> -0.78 %, the
+    # across path 0.29 -> 0.25 px (two more fingers: -0.08 -> -0.31 % and +0.55 -> +0.27 %).
     from stripstitch import evaluate, simulate
     finger = simulate.make_finger("right_loop", size_mm=(12.0, 10.0), rng=5)
     cap = simulate.swipe(finger=finger, rng=1, n_rows=16, n_cols=128, frame_rate_hz=2000.0,
@@ -1202,9 +1225,9 @@ def test_turning_strip_at_a_pixel_per_frame_keeps_its_across_path():
     res = stitch(cap.frames, frame_rate_hz=2000.0)
     err = evaluate.evaluate(res, cap, image=False, distortion=False).trajectory
     assert err.across_rms_px < 0.6
-    assert err.along_rms_px < 0.5
+    assert err.along_rms_px < 0.8
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4), with room
-    assert abs(err.span_error_pct) < 0.5
+    assert abs(err.span_error_pct) < 1.0
 
 
 def _key_links(truth, rng, sigma_px, n_rows=8):
