@@ -1120,17 +1120,24 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         return None
     times = np.concatenate([[0.0], np.cumsum(dt_frames)])
 
-    # Default mode registers smoothed frames (see _TRACK_PREFILTER_PX); fast mode does not.
+    # Default mode registers smoothed frames (see _TRACK_PREFILTER_PX) where the first,
+    # unsmoothed tracking found the overlaps wide enough; fast mode does not.
     pre = _TRACK_PREFILTER_PX if (refit is True and r_n >= _PREFILTER_MIN_ROWS) else 0.0
 
-    def run(p):
+    def run(p, smooth=0.0):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
-                            sigma_acc_px=motion_prior_px, prefilter_px=pre)
+                            sigma_acc_px=motion_prior_px, prefilter_px=smooth)
 
     def spread(tr):
         return _spread(times, chain, tr.positions)
 
     tr = run(prep)
+    if pre:
+        dt_ch = np.diff(times[chain])
+        step = np.abs(np.diff(tr.positions[:, 0]))[tr.link_ok] / np.maximum(dt_ch[tr.link_ok], 1.0)
+        if step.size == 0 or float(np.percentile(step, 95)) > _PREFILTER_MAX_STEP * r_n:
+            pre = 0.0
+    smoothed = False
     if refit == "stalled":
         still = np.abs(np.diff(tr.positions[:, 0])) < 0.02
         refit = False
@@ -1150,7 +1157,10 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         prep2 = _refit_fixed_pattern(x, prep, spread(tr), np.zeros(t_n))
         if prep2 is not None:
             prep = prep2
-            tr = run(prep)
+            tr = run(prep, pre)
+            smoothed = True
+    if pre and not smoothed:
+        tr = run(prep, pre)
     link_ok = tr.link_ok
     placed = tr.reference >= 0
     limit_runs = []
@@ -1224,13 +1234,13 @@ _TRACKED_PASSES = 2
 # steady 100 mm/s swipe on 16x128 at 2 kHz (0.984 px per frame) came out +0.12 to +0.38 %
 # long, 0.11-0.31 px along RMS (three fingers), now -0.03 to +0.06 %, 0.01-0.06 px; 200 mm/s
 # (1.97 px per frame) +0.09 to +0.21 % -> -0.10 to +0.03 %. Measured besides (default mode,
-# before -> after): bench_random.py across median 0.125 -> 0.108 px, along 0.052 -> 0.048;
-# 18 x 14 mm fingers across mean 0.319 -> 0.289 px; the accuracy suite along median 0.070 ->
+# before -> after): bench_random.py across median 0.125 -> 0.107 px, along 0.052 -> 0.046;
+# 18 x 14 mm fingers across mean 0.319 -> 0.288 px; the accuracy suite along median 0.070 ->
 # 0.036 px, span median 0.064 -> 0.046 %; bench_rotation.py along 0.049 -> 0.038. Worse: the
 # photographed brick and gravel textures of bench_independent.py at 1.9 px per frame on
 # 16x128 (along 0.23 -> 0.56 and 0.07 -> 0.12 px; their fine detail is what the smoothing
 # takes, and the left-out edge rows shorten the overlaps), bench_bands.py's span median
-# 0.095 -> 0.105 %, the suite's too-fast 16x128 swipe across its gap -1.6 -> -2.3 %, and
+# 0.095 -> 0.098 %, the suite's too-fast 16x128 swipe across its gap -1.6 -> -2.3 %, and
 # turning swipes at whole-pixel speed, where the lock had hidden half of the along bias of
 # the tracker's translation-only links of turned frames (16x128 at 0.98 px per frame turning
 # 2-3 degrees, three fingers: -0.32 / -0.08 / +0.55 -> -0.78 / -0.31 / +0.27 %). Not on
@@ -1242,9 +1252,15 @@ _TRACKED_PASSES = 2
 # 0.125 -> 0.219 px).
 # sigma 0.5 took out half as much of the locking (noise-free frames, partial contact: link
 # bias 0.035 -> 0.015 px against 0.001 at 0.7) and left the photographs as they were at 0.7.
-# Cost: 16x128 at 2 kHz 2.47x -> 2.27x real time on one core (bench_throughput.py).
+# Cost (a second tracking where the fixed pattern is not refitted): 16x128 at 2 kHz 2.47x ->
+# 2.20x real time on one core (bench_throughput.py).
+# ... and only where the unsmoothed tracking's along steps stay within this share of the
+# strip's rows (95th percentile): the two rows left out are then a small part of every
+# overlap. (A 32x384 swipe at 1 kHz with steps of up to 27 px: its smoothed links locked a
+# ridge period short, span +2.0 -> -33.9 %.)
 _TRACK_PREFILTER_PX = 0.7
 _PREFILTER_MIN_ROWS = 12
+_PREFILTER_MAX_STEP = 0.5
 # Fast mode estimates the fixed pattern again (see _tracked_placement) only where the tracker
 # found the finger still for at least this share of its links and there are no blank frames:
 # a stall's frames repeat one stretch of finger, and where the contact test finds no blank
