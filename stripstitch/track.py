@@ -1135,17 +1135,22 @@ def _lagrange_taps(n):
     return lo, w
 
 
+def _checked_mask(plate_mask, shape):
+    """The plate mask as a boolean array of ``shape``, or a ValueError naming it."""
+    m = np.asarray(plate_mask)
+    if m.shape != tuple(shape) or m.dtype.kind not in "biuf":
+        raise ValueError(f"plate_mask must be a boolean array of shape {tuple(shape)}; got "
+                         f"dtype {m.dtype}, shape {m.shape}")
+    return m != 0
+
+
 def _settings(shape, plate_mask, max_along_px, max_across_px, reach_px, iterations, prior_px,
               min_ncc, sigma_acc_px, sideways_acc, model_px, second_key, info_scale=1.0):
     """Checked options of :func:`track` as the arguments of :func:`_track` that follow the
     chain's times; the plate mask as float, and the band of rows and columns that holds
     usable plates (None: all of them)."""
     r_n, c_n = shape
-    m = np.asarray(plate_mask)
-    if m.shape != (r_n, c_n) or m.dtype.kind not in "biuf":
-        raise ValueError(f"plate_mask must be a boolean array of shape {(r_n, c_n)}; got "
-                         f"dtype {m.dtype}, shape {m.shape}")
-    m = np.ascontiguousarray(m != 0, dtype=np.float32)
+    m = np.ascontiguousarray(_checked_mask(plate_mask, shape), dtype=np.float32)
     # Only the band of rows and columns that holds usable plates is registered (a finger
     # narrower than the strip leaves whole columns unused): less work, and the key frame's
     # boundary extension then starts at the band's edge instead of interpolating across
@@ -1259,11 +1264,7 @@ def track(z, plate_mask, chain=None, *, times=None, max_along_px=None, max_acros
     prefilter_px = check_in_range(prefilter_px, 0.0, 3.0, name="prefilter_px")
     info_scale = 1.0
     if prefilter_px > 0.0:
-        mask = np.asarray(plate_mask)
-        if mask.shape != (r_n, c_n) or mask.dtype.kind not in "biuf":
-            raise ValueError(f"plate_mask must be a boolean array of shape {(r_n, c_n)}; got "
-                             f"dtype {mask.dtype}, shape {mask.shape}")
-        z, plate_mask = _prefiltered(z, mask != 0, prefilter_px)
+        z, plate_mask = _prefiltered(z, _checked_mask(plate_mask, (r_n, c_n)), prefilter_px)
         info_scale = min(1.0, 1.0 / (4.0 * np.pi * prefilter_px ** 2))
     m, band, kw = _settings((r_n, c_n), plate_mask, max_along_px, max_across_px, reach_px,
                             iterations, prior_px, min_ncc, sigma_acc_px, sideways_acc, model_px,
