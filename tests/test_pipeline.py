@@ -1362,3 +1362,44 @@ def test_fast_mode_takes_a_stall_out_of_the_fixed_pattern(monkeypatch):
     assert abs(span_pct()) < 0.5
     monkeypatch.setattr(pipeline, "_FAST_REFIT_STILL", 2.0)        # the rule off
     assert span_pct() < -3.0
+
+
+def _concentric_ridges(skew_deg, n_frames=400, n_rows=8, n_cols=192, step_px=0.44, seed=0):
+    """8-bit frames of circular ridges (9 px period, cosine) around a core the strip passes
+    over, each plate the mean of 4 x 4 point samples over its square, Gaussian noise (3 % of
+    the ridge amplitude), the finger sliding along and tan(skew) times as much across."""
+    t = np.arange(n_frames, dtype=np.float64)
+    pos = np.stack([step_px * t, step_px * np.tan(np.radians(skew_deg)) * t], axis=1)
+    rr, cc = np.mgrid[0:n_rows, 0:n_cols].astype(np.float64)
+    z = 0.0
+    for a in (-0.375, -0.125, 0.125, 0.375):
+        for b in (-0.375, -0.125, 0.125, 0.375):
+            y = pos[:, 0, None, None] + rr[None] + a
+            x = pos[:, 1, None, None] + cc[None] + b
+            z = z + np.cos(2 * np.pi * np.hypot(y - 300.0, x - 90.0) / 9.0) / 16.0
+    z = z + 0.03 * np.random.default_rng(seed).standard_normal(z.shape)
+    return np.clip(np.round(100.0 + 60.0 * z), 0, 255).astype(np.uint8), pos
+
+
+def _across_rms(res, pos):
+    e = res.positions[:, 1] - pos[:, 1]
+    return float(np.sqrt(np.mean((e - e[0]) ** 2)))
+
+
+def test_fast_mode_keeps_regular_ridges_straight_on_a_slanted_8_row_strip():
+    # Truth: the generator's placement. Measured: 0.045 px across RMS, no turn.
+    frames, pos = _concentric_ridges(3.0)
+    res = stitch(frames, frame_rate_hz=4000.0, mode="fast")
+    assert _across_rms(res, pos) < 0.2
+    assert np.ptp(res.angles) == 0.0
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "known failure, open: regular circular ridges on a slanted 8-row strip read a false "
+    "shear and a false turn (0.7 degrees kept) in the model passes; default mode comes out "
+    "1.55 px across RMS where the tracker alone (fast mode) is within 0.05 px; see "
+    "DEVELOPERS.md, 'Slanted narrow strips'"))
+def test_default_mode_keeps_regular_ridges_straight_on_a_slanted_8_row_strip():
+    frames, pos = _concentric_ridges(3.0)
+    res = stitch(frames, frame_rate_hz=4000.0)
+    assert _across_rms(res, pos) < 0.2
