@@ -89,6 +89,20 @@ def write(name, payload, markdown):
     return jp, mp
 
 
+def stitch_mode(frames, frame_rate_hz, mode):
+    """Reconstruction of raw frames in one mode: stripstitch.stitch for "default" and "fast",
+    the StreamingStitcher fed frame by frame (as a capture driver would) for "stream"."""
+    from stripstitch import stitch
+    from stripstitch.stream import StreamingStitcher
+
+    if mode == "stream":
+        st = StreamingStitcher(frame_rate_hz=frame_rate_hz)
+        for f in frames:
+            st.push(f)
+        return st.finish()
+    return stitch(frames, frame_rate_hz=frame_rate_hz, mode=mode)
+
+
 def best_time(fn, *, repeat=3, min_time=0.0):
     """Best wall time of ``repeat`` calls (seconds) and the last result."""
     best, out = np.inf, None

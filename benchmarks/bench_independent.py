@@ -28,10 +28,8 @@ from concurrent.futures import ProcessPoolExecutor
 import numpy as np
 from scipy import ndimage
 
-from _common import environment, fmt, span_summary, table, write
+from _common import environment, fmt, span_summary, stitch_mode, table, write
 
-from stripstitch import stitch
-from stripstitch.stream import StreamingStitcher
 
 GEOMETRIES = ((8, 192), (16, 128), (12, 160), (10, 256), (24, 96), (6, 144))
 MODES = ("default", "fast", "stream")
@@ -145,13 +143,7 @@ def run(args):
     frames, truth, ang, rate, turn, desc = make(i, seed0)
     out = []
     for mode in MODES:
-        if mode == "stream":
-            st = StreamingStitcher(frame_rate_hz=rate)
-            for f in frames:
-                st.push(f)
-            res = st.finish()
-        else:
-            res = stitch(frames, frame_rate_hz=rate, mode=mode)
+        res = stitch_mode(frames, rate, mode)
         e = res.positions - truth
         span = 100.0 * ((res.positions[-1, 0] - res.positions[0, 0]) / (truth[-1, 0] - truth[0, 0]) - 1)
         # (the generator injects no gap: span_summary counts every swipe)

@@ -28,10 +28,8 @@ from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 
-from _common import environment, fmt, table, write
+from _common import environment, fmt, stitch_mode, table, write
 
-from stripstitch import stitch
-from stripstitch.stream import StreamingStitcher
 
 GEOMETRIES = ((8, 192, 0.44), (12, 160, 0.9), (16, 128, 0.9))
 TEXTURES = ("rings", "arcs", "grating")
@@ -72,13 +70,7 @@ def run(args):
     desc = f"{name} {n_rows}x{n_cols} {step:.2f} px/frame skew {skew:.0f}"
     out = []
     for mode in MODES:
-        if mode == "stream":
-            st = StreamingStitcher(frame_rate_hz=rate)
-            for f in frames:
-                st.push(f)
-            res = st.finish()
-        else:
-            res = stitch(frames, frame_rate_hz=rate, mode=mode)
+        res = stitch_mode(frames, rate, mode)
         e = res.positions - truth
         e -= e[0]
         span = 100.0 * ((res.positions[-1, 0] - res.positions[0, 0]) / (truth[-1, 0] - truth[0, 0]) - 1)
