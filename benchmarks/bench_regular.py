@@ -135,7 +135,8 @@ def main(argv=None):
     md = (f"# Regular textures on slanted strips{' (quick)' if args.quick else ''}\n\n"
           f"{len(cases)} swipes (see the module notes); nothing turns, so any turn read is "
           "false. Figures over the rings and arcs (the gratings' placement along their ridges "
-          "is not in the data; only their verdict counts):\n\n" + "\n".join(lines) + "\n\n" + table(rows, cols, heads) + "\n")
+          "is not in the data; only their verdict counts):\n\n" + "\n".join(lines) + "\n\n"
+          + table(rows, cols, heads) + "\n")
     print(md)
     paths = write("regular_quick" if args.quick else "regular",
                   {"environment": environment(), "rows": rows, "summary": summary}, md)
