@@ -1154,7 +1154,16 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         # a static pattern that pulls every registration towards zero shift. Refitted
         # against the fused image, then tracked again. (With blank frames the refit did not
         # help: 13-swipe suite, median span error 0.031 % without, 0.070 % with.)
-        prep2 = _refit_fixed_pattern(x, prep, spread(tr), np.zeros(t_n))
+        # The refit's rows keep the first estimate's mean gain: its line fits read the rows'
+        # mean gains 0.5-4.5 % apart on swipes whose sensor has none (stalls, photographs;
+        # with the true positions too), a static profile that shortened fast swipes
+        # (bench_independent.py, 72 swipes of seeds 7000 / 7100 / 7200: mean span error
+        # 0.086 -> 0.075 %, along RMS mean 0.209 -> 0.182 px, across median 0.070 -> 0.069;
+        # of 48, 0.082 -> 0.062 % with the worst 0.549 -> 0.381 %; the accuracy suite's
+        # 12 dB brick photograph -0.395 -> -0.264 %, across median 0.063 -> 0.054 px). Only
+        # here: on strips of 2-5 rows (the pairs' refit) it moved single swipes by up to
+        # 1.4 % of span either way (bench_few_rows.py, 10 per row count).
+        prep2 = _refit_fixed_pattern(x, prep, spread(tr), np.zeros(t_n), row_gains=False)
         if prep2 is not None:
             prep = prep2
             tr = run(prep, pre)
@@ -1581,13 +1590,19 @@ def _travel_weights(positions, contact):
     return _reg._novelty_weights(np.concatenate([step[:1], step]), contact)
 
 
-def _refit_fixed_pattern(x, prep, positions, angles_deg):
+def _refit_fixed_pattern(x, prep, positions, angles_deg, *, row_gains=True):
     """Per-plate offset and gain re-estimated against the fused image.
 
     The first estimate (per-plate mean over contact frames) also holds the mean of the finger
     texture each plate saw, a static pattern that pulls shifts towards zero. With positions
     known, each plate's offset and gain follow from a line fit of its readings against the
     fused image sampled where the plate was.
+
+    ``row_gains`` False: the fitted gains keep their pattern within each row, but every
+    row's mean gain is the first estimate's. Every row sees the same finger, so what the fit
+    reads from row to row is mostly its own error, and a static gain pattern along the swipe
+    (it multiplies the texture by the same profile in every frame) pulls the along shifts
+    towards zero like an offset pattern does (see the caller).
     """
     scale = float(np.median(prep.gain))
     level = float(np.mean(prep.offset))
@@ -1618,6 +1633,18 @@ def _refit_fixed_pattern(x, prep, positions, angles_deg):
     gain = cov_rx / np.maximum(var_r, 1e-12)                   # reading = g * ref + o
     gain = np.where(prep.plate_ok, np.clip(gain, 0.5, 2.0), 1.0)
     offset = xx - gain * rx
+    if not row_gains:
+        # row means over the usable plates of the fitted gains (in input units: gain *
+        # scale) set to the first estimate's, each plate's line turned about its reading at
+        # the reference level (that reading kept: measured slightly better on
+        # bench_independent.py's swipes than the line refitted through the means)
+        ok = prep.plate_ok
+        cnt = np.maximum(ok.sum(axis=1, keepdims=True), 1)
+        row_mean = lambda a: np.where(ok, a, 0.0).sum(axis=1, keepdims=True) / cnt
+        first = np.broadcast_to(np.asarray(prep.gain, dtype=np.float64), gain.shape)
+        at_level = offset + gain * level
+        gain = np.where(ok, gain * row_mean(first) / np.maximum(row_mean(gain * scale), 1e-12), 1.0)
+        offset = np.where(ok, at_level - gain * level, offset)
     z = np.empty(x.shape, dtype=np.float32)
     step = max(1, 200_000 // (r_n * c_n))
     for s0 in range(0, t_n, step):                       # chunks: no frame-sized doubles
