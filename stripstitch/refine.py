@@ -465,6 +465,22 @@ def _axpy_dx(dst, k, a, dx, power):
 
 
 @numba.njit(**JIT)
+def _turned_row(p0, p1, ct, st, cf, lo, h, u0, c_n, hh, ww):
+    """Row u0 of a turned frame at (p0, p1): plate c lies at node coordinates (f0s + d0 c,
+    f1s + d1 c) (:func:`mosaic.plate_point`, linear in c); ``inside``: every plate of the row
+    has its four bilinear nodes on the (hh, ww) grid."""
+    d0 = -st / h[0]
+    d1 = ct / h[1]
+    f0s = (cf[0] + p0 + ct * u0 + st * cf[1] - lo[0]) / h[0]
+    f1s = (cf[1] + p1 + st * u0 - ct * cf[1] - lo[1]) / h[1]
+    f0e = f0s + d0 * (c_n - 1)
+    f1e = f1s + d1 * (c_n - 1)
+    inside = (min(f0s, f0e) >= 0.0 and max(f0s, f0e) < hh - 1
+              and min(f1s, f1e) >= 0.0 and max(f1s, f1e) < ww - 1)
+    return f0s, f1s, d0, d1, inside
+
+
+@numba.njit(**JIT)
 def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
     """Per node the moments of a local linear fit, from every observation of the frames
     ``src`` splatted onto its four nearest nodes with bilinear weights (in place into acc,
@@ -553,8 +569,6 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
         # plate_point transform, linear in c). A row whose whole run falls inside the grid
         # takes its four nodes unchecked, in the sums' precision (single: the products
         # convert no more; measured 1.5x faster on an 8x192 swipe turning 2 degrees).
-        d0 = -st / h[0]
-        d1 = ct / h[1]
         kc[0] = 1.0
         kc[1] = h[0]
         kc[2] = h[1]
@@ -562,13 +576,8 @@ def _splat_moments(z, w, src, pos, cos_t, sin_t, cf, lo, h, acc, pad):
         h0f = kc[1]
         h1f = kc[2]
         for r in range(r_n):
-            u0 = r - cf[0]
-            f0s = (cf[0] + pos[t, 0] + ct * u0 + st * cf[1] - lo[0]) / h[0]
-            f1s = (cf[1] + pos[t, 1] + st * u0 - ct * cf[1] - lo[1]) / h[1]
-            f0e = f0s + d0 * (c_n - 1)
-            f1e = f1s + d1 * (c_n - 1)
-            inside = (min(f0s, f0e) >= 0.0 and max(f0s, f0e) < hh - 1
-                      and min(f1s, f1e) >= 0.0 and max(f1s, f1e) < ww - 1)
+            f0s, f1s, d0, d1, inside = _turned_row(pos[t, 0], pos[t, 1], ct, st, cf, lo, h,
+                                                   r - cf[0], c_n, hh, ww)
             for c in range(c_n):
                 wv = float(w[t, r, c])
                 if wv <= 0.0:
@@ -845,23 +854,15 @@ def _frame_normals(z, w, idx, pos, cos_t, sin_t, cf, stack, lo, h, hess, grad, r
             j1 = int(np.floor(b1))
             a1 = b1 - j1
             fast = j1 >= 0 and j1 + step1 * (c_n - 1) <= ww_ - 2
-        d0 = -st / h[0]
-        d1 = ct / h[1]
         for r in range(r_n):
-            u0 = r - cf[0]
             if fast:
                 f0 = (pos[t, 0] + r - lo[0]) / h[0]
                 i0 = min(max(int(np.floor(f0)), 0), hh - 2)
                 a0 = min(max(f0 - i0, 0.0), 1.0)
             else:
-                # plate c at (f0s + d0 c, f1s + d1 c) in node units (plate_point, linear in
-                # c); a row wholly inside the grid needs no clamping
-                f0s = (cf[0] + pos[t, 0] + ct * u0 + st * cf[1] - lo[0]) / h[0]
-                f1s = (cf[1] + pos[t, 1] + st * u0 - ct * cf[1] - lo[1]) / h[1]
-                f0e = f0s + d0 * (c_n - 1)
-                f1e = f1s + d1 * (c_n - 1)
-                inside = (min(f0s, f0e) >= 0.0 and max(f0s, f0e) < hh - 1
-                          and min(f1s, f1e) >= 0.0 and max(f1s, f1e) < ww_ - 1)
+                # a row wholly inside the grid needs no clamping
+                f0s, f1s, d0, d1, inside = _turned_row(pos[t, 0], pos[t, 1], ct, st, cf, lo,
+                                                       h, r - cf[0], c_n, hh, ww_)
             for c in range(c_n):
                 k = r * c_n + c
                 wts[k] = float(w[t, r, c])
