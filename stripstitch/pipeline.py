@@ -357,9 +357,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # carried into the angles from there on (see _stall_turns).
             stall_turned = False
             if model_passes is None and placed is not None and rotation:
-                angles_deg, stall_turned = _stall_turns(prep_used.z, prep.plate_ok, positions,
-                                                        angles_deg, prep.contact, times,
-                                                        frame_rate_hz, pitch_um)
+                angles_deg, positions, stall_turned = _stall_turns(
+                    prep_used.z, prep.plate_ok, positions, angles_deg, prep.contact, times,
+                    frame_rate_hz, pitch_um)
             # A first reading of 0.75 degrees or more that was not kept (under a degree, or
             # under its significance test: see refine_positions' min_turn_deg) gets a second
             # opinion: the same three passes, kept only if the turn they establish over the
@@ -473,7 +473,13 @@ def _turned_links_across(prep, positions, angles_deg, trk_out):
     sub = SimpleNamespace(z=prep.z[used], plate_ok=prep.plate_ok)
     est = _reg.refine_shifts(sub, local.reshape(2, -1).T, init, init_angle=th[fa] - th[fb],
                              estimate_rotation=False, iterations=4)
-    step = np.where(est.ok[:, None], est.shift, init)
+    # Links within a stall (under half a pixel) and links over a turn of a degree or more (a
+    # key held through a stall in which the finger turned, a few rows back) keep their step:
+    # the stall's ends are placed by _stall_turns with the turn free, and registered with the
+    # turn held such a link moved the path across by 1.3 px (bench_rotation.py's right loop
+    # turning 1.9 degrees in a 48 ms stall: across RMS 0.55 -> 0.24 px with them kept).
+    keep = (np.abs(th[fa] - th[fb]) >= np.radians(1.0)) | (np.abs(d0).max(axis=1) < 0.5)
+    step = np.where((est.ok & ~keep)[:, None], est.shift, init)
     across = s_ * step[:, 0] + c * step[:, 1]
     n = len(chain)
     x = np.full(n, np.nan)
@@ -629,11 +635,17 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
     2 mm/s for 10 ms and at least 16 frames) is measured directly: the mean of its last
     four frames against the mean of its first four (:func:`register.frame_turn`). A turn of
     ``min_turn_deg`` or more beyond what the angles already hold, which lowers the residual
-    by ``min_gain`` (relative) or more, ramps in over the stall and stays from there on. The
-    residual rule tells a turn from aliasing: measured turns of 0.5-1.3 degrees lowered it by
-    86-660 %, stalls that did not turn by under 1 %, but the ends of a slow swipe that only
-    hovered near the speed limit (1.5 mm/s at 1 kHz) read "turns" of 0.5 degrees at 3-8 %
-    (with a 2 % rule the swipe came out turned by 1 degree).
+    by ``min_gain`` (relative) or more, ramps in over the stall and stays from there on; so
+    does the shift between the ends that the same fit finds (returned with the angles and a
+    flag: any turn found). The residual rule tells a turn from aliasing: measured turns of
+    0.5-1.3 degrees lowered it by 86-660 %, stalls that did not turn by under 1 %, but the
+    ends of a slow swipe that only hovered near the speed limit (1.5 mm/s at 1 kHz) read
+    "turns" of 0.5 degrees at 3-8 % (with a 2 % rule the swipe came out turned by 1 degree).
+    The shift, measured with the tracker's keys renewed in stalls (see track.py): on
+    bench_rotation.py's right loop turning 1.9 degrees in a 48 ms stall, span error -0.25 ->
+    -0.03 % (-1.28 % before either), along / across RMS 0.20 / 0.52 -> 0.10 / 0.24 px;
+    scikit-image's gravel photograph swiped at 0.77 px per frame on an 8x192 strip, turning
+    2 degrees in a stall of 170 frames, +0.12 -> +0.06 %, along RMS 0.11 -> 0.05 px.
 
     Measured on four simulated swipes that turned 0.5 to 1.4 degrees while stalled (8x192 and
     16x128, 24-34 dB): -1.07 / -0.56 / -1.34 / 0.98 degrees found for -1.26 / -0.54 / -1.43 /
@@ -648,6 +660,7 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
     # the report's speed rule would count as motion.
     still = (np.abs(vel[:, 0]) < v_stall) & contact
     out = np.asarray(angles_deg, dtype=np.float64).copy()
+    pos = np.asarray(positions, dtype=np.float64).copy()
     turned = False
     for a, b in _report._runs(still):
         if b - a + 1 < min_len:
@@ -656,13 +669,13 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
         zb = z[b - 3:b + 1].astype(np.float64).mean(0)
         # The shift between the ends in frame a's axes.
         th = np.radians(out[a])
-        d = positions[b] - positions[a]
+        d = pos[b] - pos[a]
         shift = np.array([np.cos(th) * d[0] + np.sin(th) * d[1], -np.sin(th) * d[0] + np.cos(th) * d[1]])
         if abs(shift[0]) > 0.25 * z.shape[1]:
             # A slow swipe (a low frame rate) can stay under the speed for its whole length:
             # ends that no longer share most of their rows are no stall to measure.
             continue
-        turn, _, gain = _reg.frame_turn(za, zb, plate_ok, shift)
+        turn, fit, gain = _reg.frame_turn(za, zb, plate_ok, shift)
         extra = turn - (out[b] - out[a])
         if abs(extra) < min_turn_deg or gain < min_gain:
             continue
@@ -670,8 +683,14 @@ def _stall_turns(z, plate_ok, positions, angles_deg, contact, times, frame_rate_
         ramp[a:b + 1] = np.linspace(0.0, 1.0, b - a + 1)
         ramp[b + 1:] = 1.0
         out += extra * ramp
+        # The shift between the ends from the same fit, in frame 0's axes, ramped in likewise:
+        # the tracker registered the stalled frames by translation alone, and a turn on the
+        # spot reads as a drift (the finger's pad off the strip's centre turns by it too).
+        s_fit = np.array([np.cos(th) * fit[0] - np.sin(th) * fit[1],
+                          np.sin(th) * fit[0] + np.cos(th) * fit[1]])
+        pos += (s_fit - d)[None, :] * ramp[:, None]
         turned = True
-    return out, turned
+    return out, pos - pos[0], turned
 
 
 def _texture_power(prep, chain, noise, along):

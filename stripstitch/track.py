@@ -7,7 +7,9 @@ same key and the error stays that of one pair. A new key is taken when the displ
 from the current one is large (at least half the reach) and nearly a whole number of pixels
 in both axes: two frames a whole number of pixels apart sample the finger on the same grid,
 so the interpolation and edge-aliasing errors that depend on the fractional shift vanish in
-the hop that the rest of the swipe builds on.
+the hop that the rest of the swipe builds on. Where the finger stands still the key is
+renewed when it no longer matches (a finger turning on the spot) and when the finger sets off
+again (see _KEY_REFRESH_FRAMES).
 
 Each registration is inverse-compositional Gauss-Newton (translation and offset) with cubic
 convolution interpolation, started from the position the last step predicts (the motion is
@@ -865,6 +867,55 @@ _NCC_DROP = 0.25
 # false match slid so too with the looser bar (too-fast bench, an 8x192 arch at 100 mm/s:
 # its gap went unreported and the span error went from -2.7 to -7.8 %).
 _NCC_DROP_SLID = 0.05
+# Keys in a stall. A finger that stalls keeps its key for the whole stall (it does not move
+# away from it), and that key is often a few rows back, taken before the finger slowed down.
+# Two rules keep it from going stale:
+# - When the finger sets off again (a step of _KEY_MOVE_STEP px per frame period or more after
+#   _KEY_STILL_SPAN frames under _KEY_STILL_STEP) on a key at least _KEY_REFRESH_FRAMES frame
+#   periods old, the frame is placed against the last still frame, which becomes the key
+#   (as when a prediction fails). Against the old key its first frames overlap it by fewer
+#   and fewer rows: bench_random.py's swipes with a stall (default mode, seed 7000) came out
+#   up to 0.41 % short (0.29 % now; along RMS mean over all 64 swipes 0.071 -> 0.064 px).
+# - While the finger stands still, a key whose NCC with the frame has fallen to
+#   1 - NCC > 2 (1 - best NCC against it) + 0.02 is replaced by the frame. A finger turns on
+#   the spot as it stalls, and every frame was registered by translation alone against a key
+#   turned ever further from it: scikit-image's grass photograph swiped at 0.77 px per frame
+#   on an 8x192 strip, turning 2 degrees in a stall of 170 frames, read 0.55 with the key at
+#   the end of the stall and the first frames after it placed 1.3 px short along (0.07 now;
+#   the gravel photograph turning the other way 0.56 -> 0.04 px). Only while still: as a
+#   frame moves away from its key the NCC falls anyway (fewer rows overlap).
+_KEY_REFRESH_FRAMES = 16.0
+_KEY_STILL_STEP = 0.05
+_KEY_STILL_SPAN = 8
+_KEY_MOVE_STEP = 0.3
+_KEY_DECORRELATED = 2.0
+_KEY_DECORRELATED_ADD = 0.02
+
+
+@numba.njit(**JIT)
+def _sets_off(pos, tchain, j, p0, p1):
+    """Frame j (placed at p0, p1) moved on from frame j - 1 (by _KEY_MOVE_STEP px per frame
+    period or more) after the finger had stood still (under _KEY_STILL_STEP px per frame
+    period over the _KEY_STILL_SPAN frames before)."""
+    k = j - 1 - _KEY_STILL_SPAN
+    if k < 0:
+        return False
+    span = max(tchain[j - 1] - tchain[k], 1e-9)
+    before = max(abs(pos[j - 1, 0] - pos[k, 0]), abs(pos[j - 1, 1] - pos[k, 1]))
+    now = max(abs(p0 - pos[j - 1, 0]), abs(p1 - pos[j - 1, 1]))
+    return (before < _KEY_STILL_STEP * span
+            and now > _KEY_MOVE_STEP * max(tchain[j] - tchain[j - 1], 1e-9))
+
+
+@numba.njit(**JIT)
+def _still(pos, tchain, j):
+    """The finger stood still (under _KEY_STILL_STEP px per frame period) over the
+    _KEY_STILL_SPAN frames up to frame j."""
+    k = j - _KEY_STILL_SPAN
+    if k < 0:
+        return False
+    span = max(tchain[j] - tchain[k], 1e-9)
+    return max(abs(pos[j, 0] - pos[k, 0]), abs(pos[j, 1] - pos[k, 1])) < _KEY_STILL_STEP * span
 
 
 @numba.njit(**JIT)
@@ -886,6 +937,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     g1 = np.empty((r_n, c_n), dtype=np.float32)
     res = np.zeros(9)
     res2 = np.zeros(9)
+    res_key = np.zeros(9)                       # a key registration held while another is tried
     scratch = np.zeros(3 * c_n + 16, dtype=np.float32)
     pre = np.zeros((9, r_n))
     full = True
@@ -904,6 +956,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         have_old = False
         ncc_run = 0.0
         key = 0
+        key_t = tchain[0]
+        key_best = 0.0
         _upsample_extend(z[chain[0]], lor, wr, loc, wc, up_key)
         n_keys = 1
     else:
@@ -912,6 +966,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         key = st_i[3]
         n_keys = st_i[4]
         ncc_run = st_f[0]
+        key_t = st_f[1 + _NS + _NS * _NS]
+        key_best = st_f[2 + _NS + _NS * _NS]
     ref[0] = -1
     s2m = model_px * model_px
     # The older key is used while at least two rows still overlap it.
@@ -926,6 +982,7 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         _kalman_predict(x, P, dt, q_acc, q_side)
         placed = False
         fresh = False
+        exit_try = False
         if have_v:
             s0 = x[0] - x[4]
             s1 = x[1] - x[5]
@@ -935,6 +992,14 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
                 if (res[8] > 0.0 and res[5] >= max(min_ncc, ncc_run - _NCC_DROP)
                         and _near_prediction(res, s0, s1)):
                     placed = True
+                    if (tchain[j] - key_t >= _KEY_REFRESH_FRAMES and key < j - 1
+                            and _sets_off(pos, tchain, j, x[4] + res[0], x[5] + res[1])):
+                        # the finger sets off after standing still on a stale key: placed
+                        # against the last still frame instead, which becomes the key
+                        # (this placement stands if that fails)
+                        placed = False
+                        exit_try = True
+                        res_key[:] = res
         if not placed:
             # Against the previous frame: integer search, then refinement.
             a = z[chain[j - 1]]
@@ -963,9 +1028,14 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
                 if placed:
                     fresh = True
                     key = j - 1
+                    key_t = tchain[j - 1]
+                    key_best = 0.0
                     up_key[:, :] = up_prev
                     have_old = False
                     n_keys += 1
+            if not placed and exit_try:
+                res[:] = res_key
+                placed = True
         if placed:
             e00, e01, e11 = _with_model_error(info_scale * res[2], info_scale * res[3],
                                               info_scale * res[4], s2m)
@@ -1015,6 +1085,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             have_v = True
             # running mean of the accepted correlations (about the last ten links)
             ncc_run = res[5] if ncc_run == 0.0 else 0.9 * ncc_run + 0.1 * res[5]
+            if not fresh:
+                key_best = max(key_best, res[5])
         else:
             # No overlap found: carried by the motion; the frame starts a new key.
             pos[j, 0] = x[0]
@@ -1024,6 +1096,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
             sig[j] = res[6]
             link_ok[j - 1] = False
             key = j
+            key_t = tchain[j]
+            key_best = 0.0
             _upsample_extend(b, lor, wr, loc, wc, up_key)
             _kalman_copy(x, P, 0, 4)
             have_old = False
@@ -1051,8 +1125,14 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
                         break
                     best = min(best, max(abs(f0 - np.round(f0)), abs(f1 - np.round(f1))))
                 promote = frac <= best + 0.02
+        if (not promote and key_best > 0.0
+                and 1.0 - ncc[j] > _KEY_DECORRELATED * (1.0 - key_best) + _KEY_DECORRELATED_ADD
+                and _still(pos, tchain, j)):
+            promote = True                    # standing still, the key has decorrelated
         if promote:
             key = j
+            key_t = tchain[j]
+            key_best = 0.0
             tmp = up_old
             up_old = up_key
             up_key = tmp
@@ -1072,6 +1152,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     st_f[0] = ncc_run
     st_f[1:1 + _NS] = x
     st_f[1 + _NS:1 + _NS + _NS * _NS] = P.reshape(_NS * _NS)
+    st_f[1 + _NS + _NS * _NS] = key_t
+    st_f[2 + _NS + _NS * _NS] = key_best
     st_i[0] = 1
     st_i[1] = 1 if have_v else 0
     st_i[2] = 1 if have_old else 0
@@ -1112,7 +1194,7 @@ def _fresh_state(shape):
     r_n, c_n = shape
     return (np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
             np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
-            np.zeros(1 + _NS + _NS * _NS), np.zeros(5, dtype=np.int64))
+            np.zeros(3 + _NS + _NS * _NS), np.zeros(5, dtype=np.int64))
 
 
 @functools.lru_cache(maxsize=64)
