@@ -1128,9 +1128,9 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     """The key-frame tracker's placement (:mod:`stripstitch.track`); None for strips of
     fewer than ``_TRACK_MIN_ROWS`` rows or ``_TRACK_MIN_COLS`` columns. ``refit``: True to
     refit the fixed pattern against the fused image where there are no blank frames;
-    "stalled" (fast mode) to estimate it again, the frames weighted by their tracked travel,
-    only where there are none and the finger stood still for at least ``_FAST_REFIT_STILL``
-    of the tracked links. Returns positions, confidence, failed links, the prepared frames
+    "stalled" (fast mode) not to. Either way it is first estimated again with the frames
+    weighted by their tracked travel where there are none and the finger stood still for at
+    least ``_STALLED_REPREPARE_STILL`` of the tracked links. Returns positions, confidence, failed links, the prepared frames
     used, the numbers of links and links kept, the overlap-limit runs, the key links (frame,
     key frame, measured step, its information; see _across_slope_from), and (chain, the
     tracker's result, frame times, which chain frames are keys) for _turned_links_across."""
@@ -1157,14 +1157,15 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         if step.size == 0 or float(np.percentile(step, 95)) > _PREFILTER_MAX_STEP * r_n:
             pre = 0.0
     smoothed = False
-    if refit == "stalled":
+    if refit == "stalled" or refit is True:
         still = np.abs(np.diff(tr.positions[:, 0])) < 0.02
-        refit = False
-        if (still.size and float(np.mean(still)) >= _FAST_REFIT_STILL
+        refit = refit is True
+        if (still.size and float(np.mean(still)) >= _STALLED_REPREPARE_STILL
                 and (~prep.contact).sum() < 8):
-            # Fast mode, the finger still for a good share of the links and no blank frames:
-            # the per-plate statistics again, each frame weighted by the travel the tracker
-            # found since the frame before (a stall counts about once), and tracked again.
+            # The finger still for a good share of the links and no blank frames: the
+            # per-plate statistics again, each frame weighted by the travel the tracker found
+            # since the frame before (a stall counts about once), and tracked again; default
+            # mode then refits against the fused image from there.
             prep = _reg.prepare(x, frame_weights=_travel_weights(spread(tr), prep.contact))
             tr = run(prep)
     if refit and (~prep.contact).sum() < 8:
@@ -1289,7 +1290,7 @@ _TRACKED_PASSES = 2
 _TRACK_PREFILTER_PX = 0.7
 _PREFILTER_MIN_ROWS = 12
 _PREFILTER_MAX_STEP = 0.5
-# Fast mode estimates the fixed pattern again (see _tracked_placement) only where the tracker
+# The fixed pattern is estimated again (see _tracked_placement) only where the tracker
 # found the finger still for at least this share of its links and there are no blank frames:
 # a stall's frames repeat one stretch of finger, and where the contact test finds no blank
 # frames (low SNR) and the frames' change does not rise clearly above the noise
@@ -1304,8 +1305,14 @@ _PREFILTER_MAX_STEP = 0.5
 # their spans within 0.2 %); bench_independent.py (no blank frames on any swipe) better on all
 # seven that changed, along median 0.136 -> 0.127 px, worst span 0.41 -> 0.33 %; the accuracy
 # suite identical. Refitting against the fused image instead (default mode's way): the same
-# cost, -5.6 -> -1.5 %.
-_FAST_REFIT_STILL = 0.1
+# cost, -5.6 -> -1.5 %. Default mode does both, this first: its refit is fitted against an
+# image fused from the placement the stall-laden pattern gave (scikit-image's brick
+# photograph over an 8x192 strip, standing still for half of 330 frames at 20 dB: span error
+# -1.11 -> -0.12 %, along RMS 0.56 -> 0.15 px; bench_random.py seeds 7000 / 8000 / 9200,
+# default mode, 10 of 192 swipes changed: across mean 0.145 / 0.186 / 0.195 -> 0.145 / 0.168
+# / 0.170 px, a turning 8x192 stall 1.97 -> 0.34 px and another 1.26 -> 0.24 px across, the
+# worst 0.05 -> 0.15 px across and -0.21 -> -0.33 % span; the accuracy suite identical).
+_STALLED_REPREPARE_STILL = 0.1
 
 _DELAY_MAX_ROWS = 7
 _DELAY_MIN_SPEED = 0.45

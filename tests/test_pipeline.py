@@ -409,6 +409,20 @@ def test_turn_made_in_a_stall_keeps_the_swipe_whole(photo, turn_deg):
     assert np.ptp(res.angles) == pytest.approx(abs(turn_deg), abs=0.3)
 
 
+def test_default_mode_takes_a_long_stall_out_of_the_fixed_pattern():
+    # The brick photograph (scikit-image) over an 8x192 strip that stands still for half of
+    # its 330 frames, no blank frame, 20 dB: the per-plate means hold the stalled texture, a
+    # static pattern that pulls every registration towards zero shift. Default mode's refit
+    # against the fused image alone left it 1.11 % short (along RMS 0.56 px); estimated first
+    # with the frames weighted by their tracked travel, as fast mode does: -0.12 %, 0.15 px.
+    frames, pos, _, _ = _turning_stall_swipe("brick", 0.0)
+    res = stitch(frames, frame_rate_hz=4000.0)
+    span = (res.positions[-1, 0] - res.positions[0, 0]) / (pos[-1, 0] - pos[0, 0]) - 1.0
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.4 %.
+    assert abs(span) < 0.004
+    assert np.sqrt(np.mean((res.positions[:, 0] - pos[:, 0]) ** 2)) < 0.3
+
+
 def test_blank_frames_at_the_ends_are_no_contact_for_the_report():
     # Simulator truth: a whorl arriving on an 8x192 strip at 12 dB; the first 12 frames see no
     # finger and the next 20 only its edge (under 30 % of the plates). At that SNR the contact
@@ -1422,7 +1436,7 @@ def test_fast_mode_takes_a_stall_out_of_the_fixed_pattern(monkeypatch):
 
     # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.5 %.
     assert abs(span_pct()) < 0.5
-    monkeypatch.setattr(pipeline, "_FAST_REFIT_STILL", 2.0)        # the rule off
+    monkeypatch.setattr(pipeline, "_STALLED_REPREPARE_STILL", 2.0)        # the rule off
     assert span_pct() < -3.0
 
 
