@@ -893,21 +893,6 @@ _KEY_DECORRELATED_ADD = 0.02
 
 
 @numba.njit(**JIT)
-def _sets_off(pos, tchain, j, p0, p1):
-    """Frame j (placed at p0, p1) moved on from frame j - 1 (by _KEY_MOVE_STEP px per frame
-    period or more) after the finger had stood still (under _KEY_STILL_STEP px per frame
-    period over the _KEY_STILL_SPAN frames before)."""
-    k = j - 1 - _KEY_STILL_SPAN
-    if k < 0:
-        return False
-    span = max(tchain[j - 1] - tchain[k], 1e-9)
-    before = max(abs(pos[j - 1, 0] - pos[k, 0]), abs(pos[j - 1, 1] - pos[k, 1]))
-    now = max(abs(p0 - pos[j - 1, 0]), abs(p1 - pos[j - 1, 1]))
-    return (before < _KEY_STILL_STEP * span
-            and now > _KEY_MOVE_STEP * max(tchain[j] - tchain[j - 1], 1e-9))
-
-
-@numba.njit(**JIT)
 def _still(pos, tchain, j):
     """The finger stood still (under _KEY_STILL_STEP px per frame period) over the
     _KEY_STILL_SPAN frames up to frame j."""
@@ -916,6 +901,15 @@ def _still(pos, tchain, j):
         return False
     span = max(tchain[j] - tchain[k], 1e-9)
     return max(abs(pos[j, 0] - pos[k, 0]), abs(pos[j, 1] - pos[k, 1])) < _KEY_STILL_STEP * span
+
+
+@numba.njit(**JIT)
+def _sets_off(pos, tchain, j, p0, p1):
+    """Frame j (placed at p0, p1) moved on from frame j - 1 by _KEY_MOVE_STEP px per frame
+    period or more, after the finger had stood still up to frame j - 1 (:func:`_still`)."""
+    now = max(abs(p0 - pos[j - 1, 0]), abs(p1 - pos[j - 1, 1]))
+    return (now > _KEY_MOVE_STEP * max(tchain[j] - tchain[j - 1], 1e-9)
+            and _still(pos, tchain, j - 1))
 
 
 @numba.njit(**JIT)
