@@ -400,7 +400,7 @@ def test_finger_setting_off_after_turning_in_a_stall_is_placed_from_its_last_sti
 def test_turn_made_in_a_stall_keeps_the_swipe_whole(photo, turn_deg):
     # Default mode on the same swipes: measured before the tracker's stall rules and the
     # stall's shift from the turn-free fit (_stall_turns) span error -0.66 / +0.03 %, along
-    # RMS 0.43 / 0.24 px; now -0.03 / +0.06 %, 0.04 / 0.04 px.
+    # RMS 0.43 / 0.24 px; now -0.04 / +0.03 %, 0.04 / 0.02 px.
     frames, pos, ang, _ = _turning_stall_swipe(photo, turn_deg)
     res = stitch(frames, frame_rate_hz=4000.0)
     span = (res.positions[-1, 0] - res.positions[0, 0]) / (pos[-1, 0] - pos[0, 0]) - 1.0
