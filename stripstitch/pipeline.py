@@ -1130,8 +1130,8 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     refit the fixed pattern against the fused image where there are no blank frames;
     "stalled" (fast mode) not to. Either way it is first estimated again with the frames
     weighted by their tracked travel where there are none and the finger stood still for at
-    least ``_STALLED_REPREPARE_STILL`` of the tracked links. Returns positions, confidence, failed links, the prepared frames
-    used, the numbers of links and links kept, the overlap-limit runs, the key links (frame,
+    least ``_STALLED_REPREPARE_STILL`` of the tracked links. Returns positions, confidence,
+    failed links, the prepared frames used, the numbers of links and links kept, the overlap-limit runs, the key links (frame,
     key frame, measured step, its information; see _across_slope_from), and (chain, the
     tracker's result, frame times, which chain frames are keys) for _turned_links_across."""
     t_n, r_n, c_n = prep.z.shape

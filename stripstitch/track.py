@@ -675,6 +675,9 @@ def _coarse(a, b, m, max_along, max_across, p0, p1, use_prior, res):
 # all frames measured against the same key, so the motion model and the frames that see both
 # keys correct a key's error instead of passing it on unchanged.
 _NS = 8
+# The filter's float state: running NCC, x (_NS), P (_NS x _NS), then the key's time and
+# the best NCC against it (from _ST_KEY_T on).
+_ST_KEY_T = 1 + _NS + _NS * _NS
 # The filter's white acceleration across the finger's current direction of travel, as a
 # fraction of q_acc (along it, q_acc): a finger speeds up and slows down freely but hardly
 # changes direction, and on a slanted swipe its across speed follows its along speed. Where
@@ -960,8 +963,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
         key = st_i[3]
         n_keys = st_i[4]
         ncc_run = st_f[0]
-        key_t = st_f[1 + _NS + _NS * _NS]
-        key_best = st_f[2 + _NS + _NS * _NS]
+        key_t = st_f[_ST_KEY_T]
+        key_best = st_f[_ST_KEY_T + 1]
     ref[0] = -1
     s2m = model_px * model_px
     # The older key is used while at least two rows still overlap it.
@@ -1146,8 +1149,8 @@ def _track(z, m, chain, tchain, lor, wr, loc, wc, max_along, max_across, reach, 
     st_f[0] = ncc_run
     st_f[1:1 + _NS] = x
     st_f[1 + _NS:1 + _NS + _NS * _NS] = P.reshape(_NS * _NS)
-    st_f[1 + _NS + _NS * _NS] = key_t
-    st_f[2 + _NS + _NS * _NS] = key_best
+    st_f[_ST_KEY_T] = key_t
+    st_f[_ST_KEY_T + 1] = key_best
     st_i[0] = 1
     st_i[1] = 1 if have_v else 0
     st_i[2] = 1 if have_old else 0
@@ -1188,7 +1191,7 @@ def _fresh_state(shape):
     r_n, c_n = shape
     return (np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
             np.zeros((2 * r_n + 3, 2 * c_n + 3), dtype=np.float32),
-            np.zeros(3 + _NS + _NS * _NS), np.zeros(5, dtype=np.int64))
+            np.zeros(_ST_KEY_T + 2), np.zeros(5, dtype=np.int64))
 
 
 @functools.lru_cache(maxsize=64)
