@@ -105,6 +105,34 @@ def _with_model_error(info, shift, *, floor_px=0.005, alias_px=0.25):
     return out
 
 
+# The spread of float frames (their range over every value) is brought into this range of
+# powers of two before anything else (see _unit_exponent).
+_UNIT_EXP_RANGE = (-8, 40)
+
+
+def _unit_exponent(x):
+    """Power of two that brings float frames in any unit into a working range, or 0.
+
+    The estimators are invariant to a global gain and offset, but some of their floors are
+    absolute (a texture floor of 1e-9, histogram bins of a finite width), so frames read in
+    farads (a plate's capacitance changes by about 1e-15 F between ridge and valley) or any
+    unit far from the codes of an ADC failed as "no finger" or worse. Frames whose spread
+    (their range, largest minus smallest value) lies outside 2**-8 .. 2**40 are scaled by
+    2**-e, e the spread's binary exponent, which is exact (no rounding); others, and integer
+    frames, are left as they are (0).
+    """
+    if x.dtype.kind != "f":
+        return 0
+    # the range, not the standard deviation: no squares to overflow or underflow, and only
+    # the binary order of magnitude matters
+    with np.errstate(over="ignore", invalid="ignore"):
+        spread = float(np.max(x)) - float(np.min(x))
+    if not np.isfinite(spread) or spread <= 0.0:
+        return 0
+    e = int(np.frexp(spread)[1])
+    return -e if (e < _UNIT_EXP_RANGE[0] or e > _UNIT_EXP_RANGE[1]) else 0
+
+
 def _inv2(m):
     """Inverse of each 2 x 2 matrix of ``m`` (N, 2, 2) by its adjugate: 409 matrices in 11 us
     against numpy.linalg.inv's 111 us (LAPACK per matrix)."""
@@ -148,7 +176,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     Parameters
     ----------
     frames : (T, R, C) array_like
-        Raw strip frames, any real dtype; rows (axis 1) run along the swipe. T >= 2, R >= 2.
+        Raw strip frames, any real dtype and any unit (codes, volts, farads: float frames far
+        from unit scale are scaled by an exact power of two inside and the image scaled
+        back); rows (axis 1) run along the swipe. T >= 2, R >= 2.
     pitch_um : float, optional
         Plate pitch of the sensor in micrometres (both axes). Default is 50.8 (500 ppi).
     frame_rate_hz : float, optional
@@ -283,6 +313,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             raise TypeError("calibration must have an apply(frames) method (a "
                             f"stripstitch.calibrate.Calibration); got {type(calibration).__name__}")
         x = np.asarray(calibration.apply(x), dtype=np.float64)
+    unit_exp = _unit_exponent(x)
+    if unit_exp:
+        x = np.ldexp(x.astype(np.float64), unit_exp)
 
     prep = _reg.prepare(x)
     chain = np.flatnonzero(prep.contact)
@@ -409,6 +442,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     positions, confidence, link_failed, blank_runs, end_blank = _bridge_blank_runs(
         prep, chain, positions, confidence, link_failed, times, r_n)
     return _finish(prep, prep_used, positions, angles_deg, confidence, link_failed,
+                   unit_exp=unit_exp,
                    blank_runs=blank_runs, limit_runs=limit_runs, end_blank=end_blank,
                    dt_frames=dt_frames, times=times, frame_rate_hz=frame_rate_hz,
                    pitch_um=pitch_um, out_pitch_um=out_pitch_um, options={
@@ -1585,9 +1619,10 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
 
 def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, dt_frames, times,
             frame_rate_hz, pitch_um, out_pitch_um, options, blank_runs=(), limit_runs=(),
-            end_blank=None):
+            end_blank=None, unit_exp=0):
     """Fusion, events and report (``end_blank``: frames the report does not count as
-    contact, see _bridge_blank_runs)."""
+    contact, see _bridge_blank_runs; ``unit_exp``: the frames were scaled by 2**unit_exp,
+    see _unit_exponent, and the image is scaled back)."""
     r_n = prep.z.shape[1]
     # ---- fusion ----
     scale = float(np.median(prep_used.gain))
@@ -1604,7 +1639,7 @@ def _finish(prep, prep_used, positions, angles_deg, confidence, link_failed, *, 
                         np.broadcast_to(fw[:, None, None], prep_used.z.shape),
                         prep.plate_ok.astype(np.float64), np.asarray(pitch_px, dtype=np.float64),
                         0.05)
-    mos = _mosaic.Mosaic(image=mos.image * scale + level, weight=mos.weight,
+    mos = _mosaic.Mosaic(image=np.ldexp(mos.image * scale + level, -unit_exp), weight=mos.weight,
                          origin_px=mos.origin_px, pitch_px=mos.pitch_px)
 
     # ---- events and report ----

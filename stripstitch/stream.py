@@ -51,7 +51,7 @@ from . import track as _track
 from . import trajectory as _traj
 from . import mosaic as _mosaic
 from .pipeline import (_TRACK_MIN_ROWS, _band_edge_rows, _plate_line_sums, _steady_velocity,
-                       _with_model_error)
+                       _with_model_error, _unit_exponent)
 from .pipeline import _confidence as _frame_confidence
 from ._jit import JIT
 from ._types import Event, Reconstruction, ReconstructionError, _frozen_array
@@ -317,6 +317,7 @@ class StreamingStitcher:
         self._seen_contact = False
         self._offset = None
         self._scale = None
+        self._unit_exp = None           # power of two the frames are scaled by (first push)
         self._plate_ok = np.ones((r_n, c_n), bool)
         self._sp_sum = np.zeros((r_n, c_n))       # first contact frames: per-plate sums
         self._sp_sq = np.zeros((r_n, c_n))
@@ -405,7 +406,9 @@ class StreamingStitcher:
         Parameters
         ----------
         frame : (R, C) array_like
-            One raw frame, any real dtype; the first frame sets the geometry.
+            One raw frame, any real dtype and any unit (see :func:`stripstitch.stitch`; the
+            first frame sets the power of two float frames are scaled by); the first frame
+            sets the geometry.
         timestamp_s : float, optional
             The frame's time in seconds (strictly increasing). Default None (uniform).
 
@@ -420,6 +423,13 @@ class StreamingStitcher:
             self._setup(x.shape)
         if self.calibration is not None:
             x = np.asarray(self.calibration.apply(x[None]), dtype=np.float64)[0]
+        if self._unit_exp is None:
+            # float frames in any unit brought into the working range, exactly (see
+            # pipeline._unit_exponent), by the first frame's range; the rows handed out are
+            # scaled back
+            self._unit_exp = _unit_exponent(x[None])
+        if self._unit_exp:
+            x = np.ldexp(np.asarray(x, dtype=np.float64), self._unit_exp)
         if timestamp_s is not None:
             t = check_positive(timestamp_s, name="timestamp_s", allow_zero=True)
             if self._last_t is not None and t <= self._last_t:
@@ -1364,6 +1374,8 @@ class StreamingStitcher:
         wacc = self._wacc[sl]
         with np.errstate(invalid="ignore", divide="ignore"):
             img = np.where(wacc >= 0.05, acc / np.where(wacc > 0, wacc, 1.0), np.nan)
+        if self._unit_exp:
+            img = np.ldexp(img, -self._unit_exp)
         self._acc[sl] = 0.0
         self._wacc[sl] = 0.0
         return idx, img, wacc

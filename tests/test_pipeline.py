@@ -379,6 +379,25 @@ def _turning_stall_swipe(photo, turn_deg, seed=1):
             np.degrees(th), (a, b))
 
 
+@pytest.mark.parametrize("unit", [1e-15, 1e-9, 1e-300, 1e12, 1e300])
+def test_frames_in_any_unit_are_placed_alike(texture, unit):
+    # Float frames in physical units (a plate's capacitance changes by about 1e-15 F between
+    # ridge and valley, from memory) or far from ADC codes either way: the placement is
+    # invariant to a global gain and offset, so the same frames scaled by ``unit`` (plus an
+    # offset) must be placed as in their own units, and the image scales with them. Before:
+    # "no finger found" at 1e-9 and below (1e-20: an error from numpy's histogram), an error
+    # about NaN values that were not there at 1e100 and above. Truth: exact Fourier shifts
+    # (scipy.ndimage.fourier_shift).
+    pos = np.stack([1.3 * np.arange(120), 0.05 * np.arange(120)], axis=1)
+    frames = cut_frames(texture, pos) + 3.0
+    ref = stitch(frames)
+    got = stitch(frames * unit)
+    assert np.abs(got.positions - pos).max() < 0.1
+    np.testing.assert_allclose(got.positions, ref.positions, rtol=0, atol=1e-5)
+    np.testing.assert_allclose(got.image, ref.image * unit, rtol=1e-5, atol=1e-5 * unit)
+    assert got.report.verdict == ref.report.verdict
+
+
 @pytest.mark.parametrize("photo, turn_deg", [("grass", 2.0), ("gravel", -2.0)])
 def test_finger_setting_off_after_turning_in_a_stall_is_placed_from_its_last_still_frame(
         photo, turn_deg):

@@ -160,6 +160,25 @@ def test_events_arrive_during_the_swipe(tex):
     assert nc and nc[-1].first_frame == len(frames) and nc[-1].details["where"] == "end"
 
 
+@pytest.mark.parametrize("unit", [1e-15, 1e-300, 1e300])
+def test_frames_in_any_unit(tex, unit):
+    # Float frames in physical units (a plate's capacitance changes by about 1e-15 F between
+    # ridge and valley, from memory) or far from ADC codes either way: placement is
+    # invariant to a global gain and offset, so the same frames scaled by ``unit`` (plus an
+    # offset) are placed as in their own units and the rows handed out scale with them.
+    # Before: "no finger found" at 1e-15 and 1e-300. Truth: exact Fourier shifts (scipy).
+    pos, frames, _ = _swipe(tex, "steady")
+    _, _, ref = _stream(frames + 3.0)
+    _, updates, res = _stream((frames + 3.0) * unit)
+    assert np.abs(res.positions - pos).max() < 0.25
+    np.testing.assert_allclose(res.positions, ref.positions, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(res.image, ref.image * unit, rtol=1e-9, atol=1e-9 * unit)
+    handed = np.concatenate([u.rows for u in updates if len(u.rows)])
+    ok = np.isfinite(handed)
+    assert ok.any() and np.abs(handed[ok]).max() > 0.1 * unit
+    assert np.abs(handed[ok]).max() < 100.0 * unit
+
+
 def test_stall_reported_live(tex):
     pos, frames, _ = _swipe(tex, "long_stall")
     s = StreamingStitcher(frame_rate_hz=4000.0)
