@@ -187,7 +187,9 @@ def find_bad_plates(frames, *, blank_frames=None, reference_frames=None, mad_thr
     lowest = min(float(np.min(a)) for a in arrays.values())
 
     def floor(med, sig):
-        return max(sig, 0.05 * abs(med), 1e-12)
+        # relative, so the thresholds hold in any unit (an absolute 1e-12 hid every weak
+        # plate of frames read in farads); the smallest normal float only where both are 0
+        return max(sig, 0.05 * abs(med)) or np.finfo(np.float64).tiny
 
     if "frames" in arrays:
         a = arrays["frames"].astype(np.float64)

@@ -139,6 +139,12 @@ def test_noisy_and_weak_plates():
     bp = calibrate.find_bad_plates(frames, blank_frames=blanks)
     got = {(d["row"], d["column"]): d["kind"] for d in bp.listing()}
     assert got == {(1, 3): "noisy", (6, 40): "noisy", (4, 20): "weak"}
+    # The same readings in farads (a plate's capacitance changes by about 1e-15 F between
+    # ridge and valley, from memory) or any other unit: the thresholds are relative, so the
+    # same plates (an absolute floor of 1e-12 once found none in farads).
+    for scale in (1e-15, 1e12):
+        bs = calibrate.find_bad_plates(frames * scale, blank_frames=blanks * scale)
+        assert {(d["row"], d["column"]): d["kind"] for d in bs.listing()} == got
 
 
 def test_dead_column_listed_and_repaired():
