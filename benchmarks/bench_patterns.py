@@ -77,7 +77,8 @@ def main(argv=None):
                         "swipes": len(sel), "median_abs_span_error_pct": float(np.median(span)),
                         "worst_abs_span_error_pct": float(np.max(span)),
                         "median_along_rms_px": float(np.median([r["along_rms_px"] for r in sel])),
-                        "median_across_rms_px": float(np.median([r["across_rms_px"] for r in sel]))})
+                        "median_across_rms_px": float(np.median([r["across_rms_px"]
+                                                                 for r in sel]))})
     gcols = ["mode", "rows", "classes", "skew_deg", "swipes", "median_abs_span_error_pct",
              "worst_abs_span_error_pct", "median_along_rms_px", "median_across_rms_px"]
     gheads = ["mode", "rows", "classes", "skew deg", "swipes", "span err % (median |.|)",
@@ -94,7 +95,8 @@ def main(argv=None):
           f"median {fmt(worst['median_along_rms_px'])} px, span error median "
           f"{fmt(worst['median_abs_span_error_pct'])} % (see DEVELOPERS.md, 'Slanted narrow "
           "strips' and 'Aperture and slant').\n\n"
-          + table(groups, gcols, gheads) + "\n\n## Every swipe\n\n" + table(rows, cols, heads) + "\n")
+          + table(groups, gcols, gheads) + "\n\n## Every swipe\n\n" + table(rows, cols, heads)
+          + "\n")
     print(md)
     paths = write("patterns" + ("_quick" if args.quick else ""),
                   {"environment": environment(), "rows": rows, "groups": groups}, md)
