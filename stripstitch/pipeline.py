@@ -395,7 +395,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # shear, stretch and turn that take longer to converge: three more passes, the
             # turn established, so the angles keep being corrected (min_turn_deg None: the
             # significance test of a first reading would stop them once the remaining turn is
-            # small). Their model is smoothed wider across (0.8 px): a turned frame's plates
+            # small). Their model is smoothed wider across (0.8 px, on a grid as coarse:
+            # _TURN_FINE_PX): a turned frame's plates
             # fall between the columns the others sampled, and the sharp model's linear
             # interpolation there reads the twist short (at the true placement of the suite's
             # 4-degree turn it read 7 % of the turn rate back; noise-free 3.6 %, 1.2 % at
@@ -430,7 +431,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                     # the tracker's links registered again with the turn known: its across
                     # path is what the passes keep where the frames sample few phases
                     positions = _turned_links_across(prep_used, positions, angles_deg, trk_out)
-                ref2 = refine(3, min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8))
+                ref2 = refine(3, min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8),
+                              fine_px=_TURN_FINE_PX)
                 if turning or _central_turn_deg(ref2.positions, ref2.angles_rad,
                                                 prep.contact) >= _SECOND_OPINION_DEG:
                     positions = ref2.positions.copy()
@@ -454,6 +456,19 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                        "n_pairs": int(n_pairs), "n_pairs_kept": int(n_kept),
                        "placement": placement})
 
+
+# Model grid (px along, across) of the turn passes. Smoothed 0.8 px across, their model needs
+# no nodes closer than that across (the curvature term of the frames' interpolation covers
+# the rest): the 0.5 px grid of the ordinary passes cost the turning 8x192 swipe of the
+# throughput benchmark 96 ms in its turn passes, this one 76 (141 -> 122 ms in all). Same
+# swipes, same code otherwise: bench_rotation.py's swipes and 16 random ones of seed 8100,
+# rotation RMS median 0.053 / 0.112 / 0.082 -> 0.048 / 0.104 / 0.070 deg, across 0.116 /
+# 0.160 / 0.184 -> 0.116 / 0.152 / 0.199 px; bench_random.py seeds 7000 / 8000 (default)
+# span median 0.041 / 0.050 -> 0.041 / 0.047 %, across 0.109 / 0.127 -> 0.107 / 0.132 px,
+# false turns on unturned twin loops 1.04 / 0.60 / 0.93 -> 0.70 / 0.43 / 0.81 deg;
+# bench_independent.py across 0.055 -> 0.052 px; bench_geometry.py across 0.141 -> 0.148 px
+# (an 8x64 grass strip 0.12 -> 0.16); the suite's turning swipe 0.098 -> 0.091 deg.
+_TURN_FINE_PX = (0.25, 0.8)
 
 # A turn (degrees) the first reading implied that gets the turn passes as a second opinion,
 # and the turn those passes must establish over the middle of the travel to be kept (see

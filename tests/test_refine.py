@@ -11,6 +11,7 @@ from scipy import ndimage
 
 from conftest import band_texture, cut_frames
 from stripstitch import refine as rf
+from stripstitch.pipeline import _TURN_FINE_PX
 
 
 def _coords(positions, n_rows, n_cols):
@@ -299,7 +300,8 @@ def test_turn_read_when_the_strip_moves_by_whole_pixels():
     # a turn, then three wider across, the twist from a model smoothed 0.8 px along where
     # the phases are concentrated). Frames from scipy's cubic spline (outside reference).
     # Measured 0.0074 degrees RMS after two ordinary passes and three turn passes, 0.0079
-    # after one and three; before the twist was read at concentrated phases the first
+    # after one and three (on the turn passes' grid of 0.25 x 0.5 px; on theirs, 0.25 x 0.8,
+    # 0.0061); before the twist was read at concentrated phases the first
     # passes kept no turn at all (1.7 degrees RMS).
     tex = band_texture((512, 256), period_px=9.0, seed=4)
     t_n = 170
@@ -311,7 +313,8 @@ def test_turn_read_when_the_strip_moves_by_whole_pixels():
     first = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=2, stop_if_turned=True)
     assert np.degrees(np.ptp(first.angles_rad)) > 1.0 and first.passes == 1
     out = rf.refine_positions(frames, w, first.positions, first.angles_rad, iterations=3,
-                              min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8))
+                              min_turn_deg=None, smooth_px=(0.3, 0.8), twist_smooth_px=(0.8, 0.8),
+                              fine_px=_TURN_FINE_PX)
     assert np.degrees(np.sqrt(np.mean((out.angles_rad - ang) ** 2))) < 0.1
 
 
