@@ -211,11 +211,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
     model_passes : int, optional
         Passes of the final refinement of every frame against a super-resolved model of the
         finger (:mod:`stripstitch.refine`); 0 skips it. Default None: after the tracker 2 in
-        default mode (1 when the first keeps a turn), then 3 more that correct the turn when
-        the finger turns by a degree or more (on strips of 8 rows and 64 columns or more
-        also run when the first reading came to 0.75 degrees but was not kept, and kept only
-        if they find a turn of 0.8 degrees), and 0 in fast mode; after the multi-baseline
-        pairs 6.
+        default mode, then 3 more that correct the turn when the finger turns by a degree or
+        more (on strips of 8 rows and 64 columns or more also run when the first reading
+        came to 0.75 degrees but was not kept, and kept only if they find a turn of 0.8
+        degrees), and 0 in fast mode; after the multi-baseline pairs 6.
 
     Returns
     -------
@@ -368,28 +367,10 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                                 cut=link_failed, iterations=iterations,
                                                 rotation=rotation, **kw)
 
-            # A first pass that keeps a turn ends the ordinary passes: the three turn passes
-            # below take over from it (a second ordinary pass before them changed the
-            # turning swipes' results by little either way and cost a fifth of the time:
-            # bench_rotation.py's swipes and 16 more random ones of seed 8100, rotation RMS
-            # median 0.068 / 0.113 / 0.080 -> 0.053 / 0.112 / 0.082 deg, across 0.105 /
-            # 0.172 / 0.177 -> 0.116 / 0.160 / 0.184 px; bench_random.py seeds 7000 / 8000,
-            # default mode, across median 0.107 / 0.130 -> 0.109 / 0.127 px, span and along
-            # within 0.002; the throughput benchmark's turning 8x192 swipe 181 -> 141 ms).
-            auto_turn = model_passes is None and placed is not None and rotation
-            ref = refine(n_model, stop_if_turned=auto_turn)
+            ref = refine(n_model)
             first_turn_deg = ref.first_turn_deg
             positions = ref.positions.copy()
             if rotation:
-                angles_deg = np.degrees(ref.angles_rad)
-            if ref.passes < n_model and np.ptp(angles_deg[prep.contact]) < 1.0:
-                # stopped for a turn that the frames with contact do not show after all: the
-                # rest of the passes, the turn kept as the first pass established it
-                ref = _refine.refine_positions(prep_used.z, mw, positions, ref.angles_rad,
-                                               dt=dt_frames, sigma_acc_px=motion_prior_px,
-                                               cut=link_failed, iterations=n_model - ref.passes,
-                                               rotation=rotation, min_turn_deg=None)
-                positions = ref.positions.copy()
                 angles_deg = np.degrees(ref.angles_rad)
             # A finger that turns (by a degree or more: the refinement kept its turn) leaves
             # shear, stretch and turn that take longer to converge: three more passes, the
@@ -459,15 +440,16 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
 
 # Model grid (px along, across) of the turn passes. Smoothed 0.8 px across, their model needs
 # no nodes closer than that across (the curvature term of the frames' interpolation covers
-# the rest): the 0.5 px grid of the ordinary passes cost the turning 8x192 swipe of the
-# throughput benchmark 96 ms in its turn passes, this one 76 (141 -> 122 ms in all). Same
-# swipes, same code otherwise: bench_rotation.py's swipes and 16 random ones of seed 8100,
-# rotation RMS median 0.053 / 0.112 / 0.082 -> 0.048 / 0.104 / 0.070 deg, across 0.116 /
-# 0.160 / 0.184 -> 0.116 / 0.152 / 0.199 px; bench_random.py seeds 7000 / 8000 (default)
-# span median 0.041 / 0.050 -> 0.041 / 0.047 %, across 0.109 / 0.127 -> 0.107 / 0.132 px,
-# false turns on unturned twin loops 1.04 / 0.60 / 0.93 -> 0.70 / 0.43 / 0.81 deg;
-# bench_independent.py across 0.055 -> 0.052 px; bench_geometry.py across 0.141 -> 0.148 px
-# (an 8x64 grass strip 0.12 -> 0.16); the suite's turning swipe 0.098 -> 0.091 deg.
+# the rest): on the 0.5 px grid of the ordinary passes the turning 8x192 swipe of the
+# throughput benchmark took 181 ms, on this one 150. Same swipes, same code otherwise:
+# bench_rotation.py's swipes and 16 random ones of seed 8100, rotation RMS median 0.068 /
+# 0.113 / 0.080 -> 0.039 / 0.107 / 0.068 deg, across 0.105 / 0.172 / 0.177 -> 0.111 / 0.145 /
+# 0.192 px; bench_random.py seeds 7000 / 8000 (default) span median 0.043 / 0.050 -> 0.043 /
+# 0.048 %, across 0.107 / 0.130 -> 0.108 / 0.135 px, false turns on unturned twin loops
+# 1.04 / 1.36 / 1.18 -> 1.05 / 1.04 / 1.05 deg; bench_independent.py seeds 7000 / 7100 /
+# 7200 (72 swipes from a generator outside the library) across median 0.055 / 0.093 /
+# 0.062 -> 0.053 / 0.096 / 0.066 px, two swipes worse by more than 0.05 px (a spiral 0.10
+# -> 0.15, a failing brick 0.35 -> 0.43).
 _TURN_FINE_PX = (0.25, 0.8)
 
 # A turn (degrees) the first reading implied that gets the turn passes as a second opinion,

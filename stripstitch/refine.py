@@ -61,8 +61,6 @@ class Refined:
         The turn (degrees, peak to peak over the frames with finger) the first pass's twist
         implied, whether or not it was kept (NaN when ``min_turn_deg`` is None or the
         angles are not read).
-    passes : int
-        Passes run (fewer than asked when ``stop_if_turned`` stopped them).
     """
 
     positions: np.ndarray
@@ -73,7 +71,6 @@ class Refined:
     twist: np.ndarray
     ncc: np.ndarray
     first_turn_deg: float = float("nan")
-    passes: int = 0
 
     def __post_init__(self):
         for name in ("positions", "angles_rad", "frame_info", "stretch", "shear", "twist", "ncc"):
@@ -81,7 +78,6 @@ class Refined:
             arr.flags.writeable = False
             object.__setattr__(self, name, arr)
         object.__setattr__(self, "first_turn_deg", float(self.first_turn_deg))
-        object.__setattr__(self, "passes", int(self.passes))
 
 
 def build_model(z, weights, positions, angles_rad, *, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3),
@@ -1308,7 +1304,7 @@ _END_ALLOWANCE = 0.25
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
                      iterations=4, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3), max_step_px=0.5,
                      correct_stretch=True, rotation=True, min_turn_deg=1.0, tile_px=256.0,
-                     twist_smooth_px=None, sharpen="auto", stop_if_turned=False):
+                     twist_smooth_px=None, sharpen="auto"):
     """Refine frame positions against a super-resolved model of the finger.
 
     Each pass builds the model from the current positions (:func:`build_model`), fits every
@@ -1363,9 +1359,6 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         no amount of signal removes; both also amplify the model's noise. "auto" (default):
         full weight in the first pass, then from the frames' median NCC with the model, 0 at
         0.975 (about 12 dB) rising to 1 at 0.99 (about 20 dB).
-    stop_if_turned : bool
-        Stop after the first pass if it kept a turn (``min_turn_deg`` met), for a caller
-        that goes on with passes of its own for turning swipes. Default False.
 
     Returns
     -------
@@ -1517,12 +1510,9 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             turn[:] = 0.0
         pos = pos + np.vstack([[0.0, 0.0], np.cumsum(corr, axis=0)])
         ang = ang + np.concatenate([[0.0], np.cumsum(turn)])
-        n_done = it + 1
-        if stop_if_turned and use_twist and correct_stretch and rotation:
-            break
     # Across a gap the frames never overlapped: keep the step the caller placed there.
     d = np.diff(pos, axis=0)
     d[cut] = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[cut]
     pos = np.vstack([[0.0, 0.0], np.cumsum(d, axis=0)])
     return Refined(positions=pos, angles_rad=ang, frame_info=info, stretch=st_s, shear=sh_s,
-                   twist=tw_s, ncc=ncc, first_turn_deg=first_turn, passes=n_done)
+                   twist=tw_s, ncc=ncc, first_turn_deg=first_turn)
