@@ -368,7 +368,6 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                                 rotation=rotation, **kw)
 
             ref = refine(n_model)
-            first_turn_deg = ref.first_turn_deg
             positions = ref.positions.copy()
             if rotation:
                 angles_deg = np.degrees(ref.angles_rad)
@@ -377,9 +376,9 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # turn established, so the angles keep being corrected (min_turn_deg None: the
             # significance test of a first reading would stop them once the remaining turn is
             # small). Their model is smoothed wider across (0.8 px, on a grid as coarse:
-            # _TURN_FINE_PX): a turned frame's plates
-            # fall between the columns the others sampled, and the sharp model's linear
-            # interpolation there reads the twist short (at the true placement of the suite's
+            # _TURN_FINE_PX): a turned frame's plates fall between the columns the others
+            # sampled, and the sharp model's linear interpolation there reads the twist short
+            # (at the true placement of the suite's
             # 4-degree turn it read 7 % of the turn rate back; noise-free 3.6 %, 1.2 % at
             # 0.5 px across); where the along phases are concentrated the twist comes from a
             # model smoothed 0.8 px along too (see refine_positions). Measured on eight
@@ -404,8 +403,8 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
             # long and 5 px off across at its end; the passes read 3.1). See
             # _SECOND_OPINION_DEG for what was measured.
             turning = stall_turned or np.ptp(angles_deg[prep.contact]) >= 1.0
-            second = (not turning and np.isfinite(first_turn_deg)
-                      and first_turn_deg >= _SECOND_OPINION_READ_DEG
+            second = (not turning and np.isfinite(ref.first_turn_deg)
+                      and ref.first_turn_deg >= _SECOND_OPINION_READ_DEG
                       and r_n >= _SECOND_OPINION_MIN_ROWS and c_n >= _SECOND_OPINION_MIN_COLS)
             if model_passes is None and placed is not None and rotation and (turning or second):
                 if turning:
