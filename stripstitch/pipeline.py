@@ -822,6 +822,7 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     # can read as nothing (a 16x128 demo swipe at 1 px per frame: a quarter of the strip
     # touched, read 0).
     blank_c = sig2 < _END_BLANK_FRAC * med
+    k0, k1 = 0, chain.size
     if not blank_c.all():
         k0 = int(np.argmin(blank_c)) if chain[0] == 0 else 0
         k1 = chain.size - int(np.argmin(blank_c[::-1])) if chain[-1] == t_n - 1 else chain.size
@@ -846,6 +847,8 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     positions = np.array(positions, dtype=np.float64, copy=True)
     confidence = np.array(confidence, dtype=np.float64, copy=True)
     link_failed = np.array(link_failed, dtype=bool, copy=True)
+    if k0 > 0 or k1 < chain.size:
+        _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, times, r_n)
     runs = []
     # runs of faint frames over the finger's extent: a..f-1 each
     c0, c1 = int(chain[0]), int(chain[-1])
@@ -920,6 +923,55 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         confidence[run] = np.minimum(confidence[run], conf)
         runs.append((int(f0 + 1), int(f1 - 1), travel, sigma))
     return positions, confidence, link_failed, runs, end_blank
+
+
+def _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, times, r_n):
+    """Links that failed among the blank frames at the swipe's ends (chain frames before
+    ``chain[k0]`` and from ``chain[k1]`` on, see _bridge_blank_runs) are no gap: a gap needs
+    the finger's texture on both sides, and these frames show only what is left of the fixed
+    pattern (when the finger's texture is weak, e.g. a finger with broad ridge-free areas,
+    that rest can reach the clear-texture share of _gap_links, which then pushed each failed
+    link a strip length: a 16x128 swipe came out 10 % long with a gap reported where the
+    finger arrived). Where such a link failed, the frames beyond it are carried from the
+    frame after it (registered with the nearest clear frame) at the speed measured over that
+    clear frame and its clear neighbours (as a blank run's, with its confidence), and the
+    links there no longer count as failed. In place; positions are taken again relative to
+    frame 0."""
+    t_n = positions.shape[0]
+    moved = False
+    ok = np.flatnonzero(clear[chain[k0:k1]]) + k0          # clear chain frames between the ends
+    if ok.size == 0:
+        return
+    for f, side, blank_end in ((int(chain[ok[0]]), 1, k0 > 0),
+                               (int(chain[ok[-1]]), -1, k1 < chain.size)):
+        # f: the clear frame nearest that end; the links from the end to it
+        span = slice(0, f) if side > 0 else slice(f, t_n - 1)
+        if not blank_end or not link_failed[span].any():
+            continue
+        m = 1
+        while (m < 64 and 0 <= f + side * m < t_n and clear[f + side * m]
+               and (m < r_n or abs(positions[f + side * m, 0] - positions[f, 0]) < 2 * r_n)):
+            m += 1
+        lo, hi = sorted((f, f + side * (m - 1)))
+        if hi - lo < 2 or times[hi] <= times[lo]:
+            continue
+        v = _steady_velocity(times[lo:hi + 1], positions[lo:hi + 1], 2)
+        if v is None:
+            continue
+        # the frames beyond the failed links nearest f (those between registered with f)
+        bad = np.flatnonzero(link_failed[span]) + span.start
+        a = int(bad[-1]) + 1 if side > 0 else int(bad[0])
+        ends = np.arange(0, a) if side > 0 else np.arange(a + 1, t_n)
+        dt = times[ends] - times[a]
+        positions[ends] = positions[a] + dt[:, None] * v[None, :]
+        link_failed[span] = False
+        travel = float(np.hypot(*(v * np.max(np.abs(dt)))))
+        sigma = float(np.hypot(_BRIDGE_SIGMA_PX, _BRIDGE_SPEED_FRAC * travel))
+        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        confidence[ends] = np.minimum(confidence[ends], conf)
+        moved = True
+    if moved:
+        positions -= positions[0]
 
 
 def _row_power(prep, frames, static):
@@ -1054,27 +1106,46 @@ _LIMIT_LINKS = 16
 def _strong_frames(prep, chain, noise, along):
     """Frames with clear texture (for telling a gap from faint frames at the finger's ends):
     signal power above the temporal noise (std ``noise``; at low SNR a blank frame's spread
-    is the noise) at least a quarter of the swipe's median (see _texture_power)."""
+    is the noise) at least a quarter of the swipe's median (see _texture_power); and frames
+    with full texture, at least _FULL_FRAC of the median."""
     sig2, med, _ = _texture_power(prep, chain, noise, along)
-    return sig2 >= _FAINT_FRAC * med
+    return sig2 >= _FAINT_FRAC * med, sig2 >= _FULL_FRAC * med
 
 
-def _gap_links(link_ok, strong):
+# A frame shows the finger's full texture when its texture power reaches this share of the
+# swipe's median: a gap's two sides must each hold one (see _gap_links).
+_FULL_FRAC = 0.5
+
+
+def _gap_links(link_ok, strong, full=None):
     """Failed links that are gaps: each run of successive failed links whose outer frames,
     and the next frame outward on each side, show clear texture (a finger arriving or leaving
     fades over several frames; a too-fast swipe has full texture on both sides of the jump,
     while the frames within it may be blurred by the motion). An outer frame blurred by the
     jump's own motion counts on its side if it still registered with its outward neighbour
     and the next two frames outward are clear (a fingertip's faint frames have faint
-    neighbours)."""
+    neighbours). ``full`` (per frame, optional): each side must also hold, somewhere between
+    the run and the swipe's end on that side, a frame with the finger's full texture: a
+    fingertip's edge fades in over many frames, and a link can fail among its frames while
+    they are still clear but weak (a finger with a broad ridge-free rim, frames at a third to
+    half of the median texture: a link failed three frames after the contact began and was
+    called a gap, the frames before it pushed a strip length away)."""
     link_ok = np.asarray(link_ok, dtype=bool)
     n = link_ok.size
     s = np.concatenate([[False, False], np.asarray(strong, dtype=bool), [False, False]])   # s[k + 2] = strong[k]
     ok = np.concatenate([[False], link_ok, [False]])                   # ok[k + 1] = link_ok[k]
     out = np.zeros(link_ok.shape, dtype=bool)
+    if full is None:
+        full_left = full_right = np.ones(n + 1, dtype=bool)
+    else:
+        full = np.asarray(full, dtype=bool)
+        full_left = np.logical_or.accumulate(full)                     # a full frame at or before k
+        full_right = np.logical_or.accumulate(full[::-1])[::-1]        # ... at or after k
 
     def side(f, d):
         # frame f (outer frame of the run), d = -1 outward to the left, +1 to the right
+        if not (full_left[f] if d < 0 else full_right[f]):
+            return False
         if s[f + 2] and s[f + d + 2]:
             return True
         link_out = ok[f + 1] if d > 0 else ok[f]                       # link f..f+d
@@ -1247,8 +1318,8 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
         link_gap = np.zeros(len(link_ok), dtype=bool)
     else:
         noise = float(np.median(tr.sigma[placed])) if placed.any() else prep.noise_sigma
-        strong = _strong_frames(prep, chain, noise, tr.positions[:, 0])
-        link_gap = _gap_links(link_ok, strong)
+        strong, full = _strong_frames(prep, chain, noise, tr.positions[:, 0])
+        link_gap = _gap_links(link_ok, strong, full)
         link_gap, limit_runs = _overlap_limit(link_gap, link_ok, tr.positions[:, 0],
                                               times[chain], r_n)
     # Frames out of contact: placed along the trajectory by time (weight 0 in the image).
@@ -1475,8 +1546,8 @@ def _full_placement(x, prep, chain, dt_frames, *, frame_rate_hz, max_across_px, 
     # per frame); successive differences would count a fast swipe's motion as noise.
     noise = float(np.median(est_c.sigma[link_ok])) if link_ok.any() else prep.noise_sigma
     along = np.concatenate([[0.0], np.cumsum(np.where(link_ok, est_c.shift[:, 0], 0.0))])
-    strong = _strong_frames(prep, chain, noise, along)
-    link_gap = _gap_links(link_ok, strong)
+    strong, full = _strong_frames(prep, chain, noise, along)
+    link_gap = _gap_links(link_ok, strong, full)
     times_ch = np.concatenate([[0.0], np.cumsum(dt_frames)])[chain]
     link_gap, limit_runs = _overlap_limit(link_gap, link_ok, along, times_ch, r_n)
     chain_steps = np.where(link_ok[:, None], est_c.shift, np.nan)
