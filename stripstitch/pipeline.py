@@ -1264,9 +1264,20 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     # unsmoothed tracking found the overlaps wide enough; fast mode does not.
     pre = _TRACK_PREFILTER_PX if (refit is True and r_n >= _PREFILTER_MIN_ROWS) else 0.0
 
+    # Fast mode (the tracker's placement is final) takes the tracker's edge-symmetric filters:
+    # the suite's fast span median 0.187 -> 0.082 %, along 0.168 -> 0.102 px, across 0.106 ->
+    # 0.049 px; bench_random.py seeds 7000 / 8000 span 0.156 / 0.159 -> 0.077 / 0.100 %;
+    # scikit-image photographs on 8 rows 0.47 -> 0.07 %. Default mode's model passes start
+    # from the earlier filters: from these the suite's default along / across medians went
+    # 0.036 / 0.054 -> 0.058 / 0.073 px (see DEVELOPERS.md, "Edge rows"). Strips of 6 and 7
+    # rows keep the earlier filters (not measured on textures finer than the plates; on the
+    # tests' smooth plane waves a 6-row strip's worst frame went 0.05 -> 0.10 px).
+    sym = refit is not True and r_n >= _SYMMETRIC_EDGES_MIN_ROWS
+
     def run(p, smooth=0.0):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
-                            sigma_acc_px=motion_prior_px, prefilter_px=smooth)
+                            sigma_acc_px=motion_prior_px, prefilter_px=smooth,
+                            symmetric_edges=sym)
 
     def spread(tr):
         return _spread(times, chain, tr.positions)
@@ -1409,6 +1420,9 @@ _TRACKED_PASSES = 2
 # overlap. (A 32x384 swipe at 1 kHz with steps of up to 27 px: its smoothed links locked a
 # ridge period short, span +2.0 -> -33.9 %.)
 _TRACK_PREFILTER_PX = 0.7
+# Fewest rows on which fast mode's tracker takes the edge-symmetric filters (see
+# _tracked_placement).
+_SYMMETRIC_EDGES_MIN_ROWS = 8
 _PREFILTER_MIN_ROWS = 12
 _PREFILTER_MAX_STEP = 0.5
 # The fixed pattern is estimated again (see _tracked_placement) only where the tracker

@@ -432,3 +432,28 @@ def test_coarse_chain_starts_a_stall_at_zero():
     shift_m, _, _ = register.coarse_chain(zm, pairs, max_along=5, max_across=12, pool=8)
     np.testing.assert_allclose(shift_m[:, 0], 0.4, atol=0.12)
     np.testing.assert_allclose(shift_m[:, 1], 0.0, atol=0.12)
+
+
+@pytest.mark.parametrize("n", [2, 3, 5, 8, 16])
+def test_half_sample_filter_is_lagrange_and_symmetric_up_to_the_ends(n):
+    # Lagrange interpolation at the mid-point of equispaced nodes (the interpolating
+    # polynomial's weights: Abramowitz & Stegun ch. 25, from memory): six nodes give the classic
+    # [3, -25, 150, 150, -25, 3] / 256, four [-1, 9, 9, -1] / 16, two [1, 1] / 2. With
+    # ``symmetric`` (the tracker's) every mid-point's window is centred on it (no phase error:
+    # the weights' first moment is the mid-point itself), shrinking towards the ends.
+    m = register._lagrange_upsample_matrix(n, symmetric=True)
+    np.testing.assert_array_equal(m[0::2], np.eye(n))
+    # the default keeps the window's size and shifts it inwards at the ends
+    legacy = register._lagrange_upsample_matrix(n)[1::2]
+    assert all(np.count_nonzero(np.abs(w) > 1e-15) == min(6, n) for w in legacy)
+    mid = m[1::2]
+    x = np.arange(n)
+    for i, w in enumerate(mid):
+        np.testing.assert_allclose(w.sum(), 1.0, atol=1e-12)
+        np.testing.assert_allclose(w @ x, i + 0.5, atol=1e-12)
+        nz = np.flatnonzero(np.abs(w) > 1e-15)
+        k = nz.size
+        assert k == min(6, 2 * min(i + 1, n - 1 - i))
+        ref = {6: np.array([3, -25, 150, 150, -25, 3]) / 256, 4: np.array([-1, 9, 9, -1]) / 16,
+               2: np.array([1, 1]) / 2}[k]
+        np.testing.assert_allclose(w[nz], ref, atol=1e-12)
