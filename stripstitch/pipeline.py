@@ -847,8 +847,26 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     positions = np.array(positions, dtype=np.float64, copy=True)
     confidence = np.array(confidence, dtype=np.float64, copy=True)
     link_failed = np.array(link_failed, dtype=bool, copy=True)
-    if k0 > 0 or k1 < chain.size:
-        _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, times, r_n)
+    # For the carry only, the ends also reach over frames that equal the swipe's first (last)
+    # frame up to a tenth of the typical texture power: frames without the finger show the
+    # same fixed-pattern rest, which, with a weak finger texture, can read as texture
+    # against the swipe's median pattern (the Shepp-Logan phantom above: 0.40 of the
+    # median). Only where links failed among them (a finger placed before it moves matches
+    # itself and fails no link).
+    k0c, k1c = k0, k1
+    if link_failed.any():
+        ok_p = prep.plate_ok
+        if chain[0] == 0:
+            d = _texture_about(prep.z, chain[:64], prep.z[chain[0]].astype(np.float32), ok_p)
+            k0c = max(k0, int(np.argmax(np.append(d ** 2 >= _END_BLANK_FRAC * med, True))))
+        if chain[-1] == t_n - 1:
+            tail = chain[-64:][::-1]
+            d = _texture_about(prep.z, tail, prep.z[chain[-1]].astype(np.float32), ok_p)
+            n_tail = int(np.argmax(np.append(d ** 2 >= _END_BLANK_FRAC * med, True)))
+            k1c = min(k1, chain.size - n_tail)
+    if k0c > 0 or k1c < chain.size:
+        _carry_blank_ends(chain, k0c, k1c, clear, positions, confidence, link_failed, times,
+                          r_n)
     runs = []
     # runs of faint frames over the finger's extent: a..f-1 each
     c0, c1 = int(chain[0]), int(chain[-1])
