@@ -111,9 +111,8 @@ def main(argv=None):
           + ", ".join(f"{m} {fmt(float(np.median(v)))} % (worst {fmt(float(np.max(v)))})"
                       for m, v in by_mode.items())
           + ". Not finger-like textures among them on purpose (see the module notes); the "
-          "streaming stitcher reads 8-row strips long on many photographs, and fast mode's "
-          "worst is a false gap where the Shepp-Logan phantom's frames without texture fail "
-          "to link (DEVELOPERS.md, 'Edge rows', 'Failed links at the swipe's ends').\n\n"
+          "streaming stitcher reads 8-row strips long on many photographs (DEVELOPERS.md, "
+          "'Edge rows').\n\n"
           + table(groups, gcols, gheads) + "\n\n## Every swipe\n\n" + table(rows, cols, heads)
           + "\n")
     print(md)
