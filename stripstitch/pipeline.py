@@ -850,9 +850,9 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
     # For the carry only, the ends also reach over frames that equal the swipe's first (last)
     # frame up to a tenth of the typical texture power: frames without the finger show the
     # same fixed-pattern rest, which, with a weak finger texture, can read as texture
-    # against the swipe's median pattern (the Shepp-Logan phantom above: 0.40 of the
-    # median). Only where links failed among them (a finger placed before it moves matches
-    # itself and fails no link).
+    # against the swipe's median pattern (scikit-image's Shepp-Logan phantom swiped over
+    # 16x128 in fast mode: 0.40 of the median; DEVELOPERS.md). Only where links failed among
+    # them (a finger placed before it moves matches itself and fails no link).
     k0c, k1c = k0, k1
     if link_failed.any():
         ok_p = prep.plate_ok
