@@ -883,22 +883,9 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
                                           r_n))
         if not band_edge and not blank[a:f1].any():
             continue                                 # faint texture only
-        vel = []
-        for edge, side in ((f0, -1), (f1, 1)):
-            # clear frames next to the run over two strip lengths of travel (at least R
-            # frames, at most 64): a slow swipe's speed from a few frames is noisy (a whorl
-            # across a 1.1 mm band at 0.32 px per frame: -0.54 % of span from one strip
-            # length, -0.05 % from two)
-            m = 1
-            while (m < 64 and 0 <= edge + side * m < t_n and clear[edge + side * m]
-                   and (m < r_n or abs(positions[edge + side * m, 0]
-                                       - positions[edge, 0]) < 2 * r_n)):
-                m += 1
-            lo, hi = sorted((edge, edge + side * (m - 1)))
-            if hi - lo >= 2 and times[hi] > times[lo]:
-                v_side = _steady_velocity(times[lo:hi + 1], positions[lo:hi + 1], 2)
-                if v_side is not None:
-                    vel.append(v_side)
+        vel = [v_side for v_side in (_clear_side_velocity(f0, -1, clear, positions, times, r_n),
+                                     _clear_side_velocity(f1, 1, clear, positions, times, r_n))
+               if v_side is not None]
         if len(vel) < 2:
             continue
         v = 0.5 * (vel[0] + vel[1])
@@ -935,12 +922,36 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         disagree = 0.5 * float(np.hypot(*(vel[0] - vel[1]))) * dt
         sigma = float(np.sqrt(_BRIDGE_SIGMA_PX ** 2 + disagree ** 2
                               + (_BRIDGE_SPEED_FRAC * travel) ** 2))
-        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        conf = _carried_confidence(sigma)
         run = np.arange(f0 + 1, f1)
         run = run[prep.contact[run]]
         confidence[run] = np.minimum(confidence[run], conf)
         runs.append((int(f0 + 1), int(f1 - 1), travel, sigma))
     return positions, confidence, link_failed, runs, end_blank
+
+
+def _clear_side_velocity(f, side, clear, positions, times, r_n):
+    """Velocity (px per time unit) of frame ``f`` and the clear frames next to it on one side
+    (``side`` -1 before it, +1 after), over two strip lengths of travel (at least R frames, at
+    most 64): a slow swipe's speed from a few frames is noisy (a whorl across a 1.1 mm band
+    at 0.32 px per frame: -0.54 % of span from one strip length, -0.05 % from two). None
+    with too few frames (see _steady_velocity)."""
+    t_n = positions.shape[0]
+    m = 1
+    while (m < 64 and 0 <= f + side * m < t_n and clear[f + side * m]
+           and (m < r_n or abs(positions[f + side * m, 0] - positions[f, 0]) < 2 * r_n)):
+        m += 1
+    lo, hi = sorted((f, f + side * (m - 1)))
+    if hi - lo < 2 or times[hi] <= times[lo]:
+        return None
+    return _steady_velocity(times[lo:hi + 1], positions[lo:hi + 1], 2)
+
+
+def _carried_confidence(sigma):
+    """Confidence of frames carried by a measured speed with placement uncertainty ``sigma``
+    px (a blank run, a run at the strip's limit, a blank end): P(|e| < 0.25 px) as in
+    _confidence, at least 0.06 (over the fusion's 0.05: the band they show is real)."""
+    return max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
 
 
 def _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, times, r_n):
@@ -966,14 +977,7 @@ def _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, 
         span = slice(0, f) if side > 0 else slice(f, t_n - 1)
         if not blank_end or not link_failed[span].any():
             continue
-        m = 1
-        while (m < 64 and 0 <= f + side * m < t_n and clear[f + side * m]
-               and (m < r_n or abs(positions[f + side * m, 0] - positions[f, 0]) < 2 * r_n)):
-            m += 1
-        lo, hi = sorted((f, f + side * (m - 1)))
-        if hi - lo < 2 or times[hi] <= times[lo]:
-            continue
-        v = _steady_velocity(times[lo:hi + 1], positions[lo:hi + 1], 2)
+        v = _clear_side_velocity(f, side, clear, positions, times, r_n)
         if v is None:
             continue
         # the frames beyond the failed links nearest f (those between registered with f)
@@ -985,7 +989,7 @@ def _carry_blank_ends(chain, k0, k1, clear, positions, confidence, link_failed, 
         link_failed[span] = False
         travel = float(np.hypot(*(v * np.max(np.abs(dt)))))
         sigma = float(np.hypot(_BRIDGE_SIGMA_PX, _BRIDGE_SPEED_FRAC * travel))
-        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        conf = _carried_confidence(sigma)
         confidence[ends] = np.minimum(confidence[ends], conf)
         moved = True
     if moved:
@@ -1109,7 +1113,7 @@ def _limit_frames(runs, chain, confidence):
         a, b = int(chain[k]), int(chain[e + 1])
         travel = v * (e - k + 1)
         sigma = float(np.hypot(_BRIDGE_SIGMA_PX, _BRIDGE_SPEED_FRAC * travel))
-        conf = max(float(erf(0.25 / (np.sqrt(2.0) * sigma))), 0.06)
+        conf = _carried_confidence(sigma)
         confidence[a + 1:b] = np.minimum(confidence[a + 1:b], conf)
         out.append((a, b, float(v), sigma))
     return out
