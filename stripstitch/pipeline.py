@@ -1286,15 +1286,23 @@ def _tracked_placement(x, prep, chain, dt_frames, max_across_px, motion_prior_px
     # unsmoothed tracking found the overlaps wide enough; fast mode does not.
     pre = _TRACK_PREFILTER_PX if (refit is True and r_n >= _PREFILTER_MIN_ROWS) else 0.0
 
-    # Fast mode (the tracker's placement is final) takes the tracker's edge-symmetric filters:
-    # the suite's fast span median 0.187 -> 0.082 %, along 0.168 -> 0.102 px, across 0.106 ->
-    # 0.049 px; bench_random.py seeds 7000 / 8000 span 0.156 / 0.159 -> 0.077 / 0.100 %;
-    # scikit-image photographs on 8 rows 0.47 -> 0.07 %. Default mode's model passes start
-    # from the earlier filters: from these the suite's default along / across medians went
-    # 0.036 / 0.054 -> 0.058 / 0.073 px (see DEVELOPERS.md, "Edge rows"). Strips of 6 and 7
-    # rows keep the earlier filters (not measured on textures finer than the plates; on the
-    # tests' smooth plane waves a 6-row strip's worst frame went 0.05 -> 0.10 px).
-    sym = refit is not True and r_n >= _SYMMETRIC_EDGES_MIN_ROWS
+    # The key frames' half-sample filters at the strip's edges (track.track's
+    # symmetric_edges): "auto" tracks the swipe with both and keeps the placement whose
+    # registrations leave the smaller residual. The edge-symmetric filters win on textures
+    # finer than the plates (photographs, the simulated fingers' flat-topped ridges), the
+    # shifted windows on smooth band-limited ones. Fast mode (the tracker's placement is
+    # final): against the edge-symmetric filters everywhere, the same placements on the
+    # accuracy suite, bench_random.py seeds 7000 / 8000 and 80 scikit-image photographs (the
+    # residual chose them on every one), the tests' band-limited textures at 8x64 along RMS
+    # 0.10-0.20 -> 0.008-0.08 px; 6- and 7-row strips (which had the shifted windows) of
+    # bench_few_rows.py's draw, 30 each: span median 0.36 / 0.30 -> 0.20 / 0.15 %, along
+    # 0.31 / 0.30 -> 0.21 / 0.12 px. Default mode's model passes start from the tracker: on
+    # 6 and 7 rows the choice helped there too (span median 0.26 / 0.21 -> 0.22 / 0.16 %,
+    # along 0.28 / 0.16 -> 0.16 / 0.12 px, across 0.27 / 0.21 -> 0.19 / 0.18 px); on 8 rows
+    # and more it did not (the suite's along / across medians 0.036 / 0.054 -> 0.058 / 0.073
+    # px; photographs and random swipes within 0.02 %), so there the shifted windows stay
+    # (see DEVELOPERS.md, "Edge rows").
+    sym = "auto" if (refit is not True or r_n <= _EDGE_CHOICE_DEFAULT_MAX_ROWS) else False
 
     def run(p, smooth=0.0):
         return _track.track(p.z, p.plate_ok, chain, times=times, max_across_px=max_across_px,
@@ -1442,9 +1450,8 @@ _TRACKED_PASSES = 2
 # overlap. (A 32x384 swipe at 1 kHz with steps of up to 27 px: its smoothed links locked a
 # ridge period short, span +2.0 -> -33.9 %.)
 _TRACK_PREFILTER_PX = 0.7
-# Fewest rows on which fast mode's tracker takes the edge-symmetric filters (see
-# _tracked_placement).
-_SYMMETRIC_EDGES_MIN_ROWS = 8
+# Most rows on which default mode's tracker chooses its edge filters (see _tracked_placement).
+_EDGE_CHOICE_DEFAULT_MAX_ROWS = 7
 _PREFILTER_MIN_ROWS = 12
 _PREFILTER_MAX_STEP = 0.5
 # The fixed pattern is estimated again (see _tracked_placement) only where the tracker

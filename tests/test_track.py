@@ -474,18 +474,24 @@ def test_prefilter_is_a_masked_gaussian():
     assert np.allclose(a, b) and not kb[5, 20]
 
 
+@pytest.mark.parametrize("mode", ["fast", "stream"])
 @pytest.mark.parametrize("photo", ["camera", "rocket", "hubble_deep_field"])
-def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo):
+def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo, mode):
     # scikit-image's bundled photographs swiped as fingers (detail finer than the plates,
     # each plate the mean over its area; simulator truth), 8x192 at 4 kHz, 100 mm/s human
-    # profile, 25 dB, fast mode (the tracker's placement is final). Every frame's overlap
+    # profile, 25 dB, fast mode (the tracker's placement is final) and the streaming
+    # stitcher (the same tracker fed frame by frame, no model passes). Every frame's overlap
     # with its key lies within three rows of a frame edge; the one-sided half-sample filter
     # there and the along slope taken a row and a half from the first row read the shifts
-    # long: span +0.87 / +2.07 / +1.64 %, along RMS 0.67 / 2.12 / 1.96 px before; now within
-    # 0.3 % and 0.25 px (-0.12 / +0.10 / -0.02 %).
+    # long. Fast mode: span +0.87 / +2.07 / +1.64 %, along RMS 0.67 / 2.12 / 1.96 px before
+    # the edge-symmetric filters; now -0.10 / +0.06 / -0.02 %. The stream kept the one-sided
+    # filters until it chose them the same way (on the finger's arrival): +1.04 / +2.20 /
+    # +1.52 %, along 0.89 / 2.27 / 1.74 px before; now -0.21 / +0.04 / -0.07 %, along 0.28 /
+    # 0.05 / 0.11 px.
     import skimage.data
     from skimage.color import rgb2gray
 
+    from stripstitch import StreamingStitcher
     from stripstitch import evaluate as ev
     from stripstitch import simulate
 
@@ -498,6 +504,56 @@ def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo):
     finger = simulate.texture_finger(np.asarray(im, dtype=np.float64), pixel_um=25.4)
     cap = simulate.swipe(finger=finger, rng=11, n_rows=8, n_cols=192, frame_rate_hz=4000.0,
                          profile="human", speed_mm_s=100.0, snr_db=25.0)
-    res = stitch(cap.frames, frame_rate_hz=4000.0, mode="fast")
+    if mode == "stream":
+        s = StreamingStitcher(frame_rate_hz=4000.0)
+        for f in cap.frames:
+            s.push(f)
+        res = s.finish()
+    else:
+        res = stitch(cap.frames, frame_rate_hz=4000.0, mode="fast")
     d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
-    assert abs(d["span_error_pct"]) < 0.3 and d["along_rms_px"] < 0.25
+    assert abs(d["span_error_pct"]) < 0.3 and d["along_rms_px"] < (0.25 if mode == "fast" else 0.35)
+
+
+def _band_swipe(step=(1.37, 0.21), t_n=240):
+    """Frames of the tests' smooth band-limited texture (ring of 9 px period) at a constant
+    step, 8x64, by exact Fourier shifts (scipy.ndimage.fourier_shift, outside reference)."""
+    from conftest import band_texture, cut_frames
+
+    tex = band_texture((700, 96), seed=3)
+    pos = np.arange(t_n)[:, None] * np.asarray(step)[None, :]
+    return pos, cut_frames(tex, pos + [20.0, 8.0], origin=(8, 0))
+
+
+def test_edge_filters_chosen_by_the_residual():
+    # track(symmetric_edges="auto") returns one of the two placements unchanged: the one whose
+    # registrations leave the smaller mean squared residual over the frames both registered
+    # (a likelihood comparison of two interpolation models of the same frames).
+    pos, frames = _band_swipe()
+    mask = np.ones(frames.shape[1:], bool)
+    forced = {sym: track(frames, mask, symmetric_edges=sym) for sym in (True, False)}
+    auto = track(frames, mask, symmetric_edges="auto")
+    both = (forced[True].reference >= 0) & (forced[False].reference >= 0)
+    res2 = {sym: float(np.mean(r.sigma[both] ** 2)) for sym, r in forced.items()}
+    assert auto.symmetric_edges == (res2[True] < res2[False])
+    assert np.array_equal(auto.positions, forced[auto.symmetric_edges].positions)
+    assert forced[True].symmetric_edges and not forced[False].symmetric_edges
+    with pytest.raises(ValueError, match="symmetric_edges"):
+        track(frames, mask, symmetric_edges="both")
+    with pytest.raises(ValueError, match="symmetric_edges"):
+        FrameTracker(mask, symmetric_edges="auto")
+
+
+def test_smooth_band_limited_texture_keeps_the_shifted_windows():
+    # On a smooth texture (a ring spectrum at 9 px, nothing near the plates' Nyquist) the
+    # shorter centred windows' amplitude error at the edges (the 2-tap mid-point reads
+    # cos(pi f) = 0.94 of a 9 px wave) costs more than the one-sided windows' phase error:
+    # with the edge-symmetric filters forced, fast mode read this swipe at 0.135 / 0.056 px
+    # along / across RMS; chosen by the residual, the shifted windows, 0.014 / 0.027 px.
+    # Truth: the exact shifts.
+    pos, frames = _band_swipe()
+    res = stitch(frames, mode="fast")
+    err = res.positions - pos
+    assert np.sqrt(np.mean(err[:, 0] ** 2)) < 0.03
+    assert np.sqrt(np.mean(err[:, 1] ** 2)) < 0.05
+    assert not track(frames, np.ones(frames.shape[1:], bool), symmetric_edges="auto").symmetric_edges
