@@ -474,11 +474,11 @@ def test_prefilter_is_a_masked_gaussian():
     assert np.allclose(a, b) and not kb[5, 20]
 
 
-@pytest.mark.parametrize("mode", ["fast", "stream"])
+@pytest.mark.parametrize("rows, mode", [(8, "fast"), (8, "stream"), (6, "fast"), (6, "default")])
 @pytest.mark.parametrize("photo", ["camera", "rocket", "hubble_deep_field"])
-def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo, mode):
+def test_fine_photographic_texture_on_few_rows_is_not_stretched(photo, rows, mode):
     # scikit-image's bundled photographs swiped as fingers (detail finer than the plates,
-    # each plate the mean over its area; simulator truth), 8x192 at 4 kHz, 100 mm/s human
+    # each plate the mean over its area; simulator truth), 8x192 and 6x192 at 4 kHz, 100 mm/s human
     # profile, 25 dB, fast mode (the tracker's placement is final) and the streaming
     # stitcher (the same tracker fed frame by frame, no model passes). Every frame's overlap
     # with its key lies within three rows of a frame edge; the one-sided half-sample filter
@@ -487,7 +487,10 @@ def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo, mode):
     # the edge-symmetric filters; now -0.10 / +0.06 / -0.02 %. The stream kept the one-sided
     # filters until it chose them the same way (on the finger's arrival): +1.04 / +2.20 /
     # +1.52 %, along 0.89 / 2.27 / 1.74 px before; now -0.21 / +0.04 / -0.07 %, along 0.28 /
-    # 0.05 / 0.11 px.
+    # 0.05 / 0.11 px. On 6 rows (the filters chosen per swipe since, as on 8): fast mode
+    # +1.92 / +4.86 / +3.85 %, along 1.57 / 4.91 / 4.64 px before, now +0.06 / -0.06 / -0.20 %;
+    # default mode, whose model passes start from the tracker, along 0.12 / 0.24 / 0.19 px
+    # before, now 0.03 / 0.02 / 0.02 px.
     import skimage.data
     from skimage.color import rgb2gray
 
@@ -502,7 +505,7 @@ def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo, mode):
         c0, c1 = im.shape[0] // 2, im.shape[1] // 2
         im = im[c0 - 300:c0 + 300, c1 - 300:c1 + 300]
     finger = simulate.texture_finger(np.asarray(im, dtype=np.float64), pixel_um=25.4)
-    cap = simulate.swipe(finger=finger, rng=11, n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+    cap = simulate.swipe(finger=finger, rng=11, n_rows=rows, n_cols=192, frame_rate_hz=4000.0,
                          profile="human", speed_mm_s=100.0, snr_db=25.0)
     if mode == "stream":
         s = StreamingStitcher(frame_rate_hz=4000.0)
@@ -510,9 +513,10 @@ def test_fine_photographic_texture_on_8_rows_is_not_stretched(photo, mode):
             s.push(f)
         res = s.finish()
     else:
-        res = stitch(cap.frames, frame_rate_hz=4000.0, mode="fast")
+        res = stitch(cap.frames, frame_rate_hz=4000.0, mode=mode)
     d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
-    assert abs(d["span_error_pct"]) < 0.3 and d["along_rms_px"] < (0.25 if mode == "fast" else 0.35)
+    limit = {"fast": 0.25, "stream": 0.35, "default": 0.1}[mode]
+    assert abs(d["span_error_pct"]) < 0.3 and d["along_rms_px"] < limit
 
 
 def _band_swipe(step=(1.37, 0.21), t_n=240):
