@@ -80,6 +80,22 @@ def _blank_finger_split(log_texture):
     return None
 
 
+def _contact_threshold(texture, floor):
+    """Texture above which a frame shows the finger (``floor`` if the frames do not split into
+    two classes, see :func:`_blank_finger_split`): partial contact counts, since texture power
+    grows with the fraction of plates touched, so a frame is in contact above a small share of
+    the full-contact excess power (90th percentile) over the blank level (5 %: fainter frames
+    at the soft pad edge gave worse placements)."""
+    texture = np.asarray(texture, dtype=np.float64)
+    lt = np.log(texture + floor)
+    th = _blank_finger_split(lt)
+    if th is None:
+        return floor
+    l0 = float(np.exp(np.median(lt[lt <= th])))
+    l1 = float(np.percentile(texture, 90))
+    return float(np.sqrt(l0 ** 2 + 0.05 * max(l1 ** 2 - l0 ** 2, 0.0)))
+
+
 def _novelty_weights(change, contact):
     """Per-frame weights in [0, 1] for the per-plate statistics: how much new finger a frame
     shows (``change``, e.g. its change from the frame before, or its travel), over half the
@@ -129,17 +145,7 @@ def prepare(frames, *, frame_weights=None):
     # scikit-image), used only when the classes really separate (means more than 3x apart);
     # otherwise every frame with any texture counts as contact.
     floor = 1e-9 * (max(abs(float(x.max())), abs(float(x.min()))) + 1.0)
-    lt = np.log(texture0 + floor)
-    thresh = floor
-    th = _blank_finger_split(lt)
-    if th is not None:
-        # Partial contact counts: texture power grows with the fraction of plates
-        # touched, so a frame is in contact above a small share of the full-contact excess power
-        # over the blank level (5 %: fainter frames at the soft pad edge gave worse placements).
-        l0 = float(np.exp(np.median(lt[lt <= th])))
-        l1 = float(np.percentile(texture0, 90))
-        thresh = float(np.sqrt(l0 ** 2 + 0.05 * max(l1 ** 2 - l0 ** 2, 0.0)))
-    contact = texture0 > thresh
+    contact = texture0 > _contact_threshold(texture0, floor)
     w = contact.astype(np.float64)
     if frame_weights is None and t_n > 2:
         # A frame counts by how much new finger it shows: during a stall every frame repeats

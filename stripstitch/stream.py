@@ -489,6 +489,14 @@ class StreamingStitcher:
         conf = np.array(self._h_conf)
         tex = np.array(self._h_tex)
         contact = self._contact_of(tex)
+        # With the whole swipe seen, contact is also judged as the batch path judges it (two
+        # classes of texture, register.prepare): the live reference starts from the first
+        # batch, and where the finger lands after it with no fixed pattern known yet, the
+        # blank frames' noise and pattern read as texture against it (bench_random.py seed
+        # 7000, an 8x192 arch arriving slowly: 175 frames before full contact, 2.9 against
+        # the finger's 11.6, called a stall once the key frames' edge filters held them still).
+        if len(tex) >= 4:
+            contact &= tex > _reg._contact_threshold(tex, 1e-12 * (float(tex.max()) + 1.0))
         if contact.sum() < 2:
             raise ReconstructionError("no finger found: fewer than two frames show finger "
                                       f"texture (of {len(tex)} frames)")

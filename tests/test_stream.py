@@ -549,3 +549,25 @@ def test_stream_carries_nothing_where_every_frame_shows_texture(seed, low):
     assert abs(span_err) < 0.002
     assert np.abs(res.positions[:, 0] - pos[:, 0]).max() < 0.5
     assert len(res.events_of("backtrack")) == 1
+
+
+def test_blank_arrival_without_a_fixed_pattern_is_no_stall():
+    # A slowly arriving finger whose first batch shows no finger at all (frames 0-65 blank in
+    # the simulator's truth, full contact from frame 175), with no fixed pattern known: the
+    # live reference texture starts from those blank frames, against which their noise and
+    # fixed pattern read as texture (2.9 against the finger's 11.6), and the tracker holds
+    # them still. finish() judges contact again over the whole swipe as the batch path does
+    # (register.prepare's two classes of texture): before, frames 3-86 were reported as an
+    # 84-frame stall. Truth: the simulator's events (a backtrack, no stall).
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("arch", size_mm=(12.0, 10.0), rng=7524)
+    cap = simulate.swipe(finger=finger, rng=7924, n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                         profile="accel_decel", speed_mm_s=65.4, snr_db=31.4, skew_deg=0.12,
+                         backtracks=((8.97, 0.495),))
+    assert {e.kind for e in cap.events} >= {"backtrack"} and "stall" not in {e.kind for e in cap.events}
+    _, _, res = _stream(cap.frames, frame_rate_hz=4000.0)
+    kinds = [e.kind for e in res.events]
+    assert "stall" not in kinds and "backtrack" in kinds
+    first = next(e for e in res.events if e.kind == "no_contact")
+    assert first.first_frame == 0 and first.last_frame >= 65
