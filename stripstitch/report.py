@@ -272,6 +272,9 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
     step = np.zeros(t_n)
     step[1:] = direction * np.diff(positions[:, 0])
     back |= (step < -v_stall) & in_c
+    runs_c = _runs(contact)
+    seg_first = {int(a) for a, _ in runs_c}
+    seg_last = {int(b) for _, b in runs_c}
     for a, b in _runs(back):
         seg = direction * positions[max(a - 1, 0):min(b + 2, t_n), 0]
         dist = float(seg[0] - seg.min())
@@ -283,14 +286,19 @@ def find_events(*, positions, angles_deg, confidence, contact, link_failed, link
         # matched its neighbour 1.4 px back with NCC 0.52-0.54 against 0.50-0.51 at the true
         # shift, and the frames 2-10 on agreed with either; it was read as a 1.04 px
         # backtrack.)
+        # The same at the ends of a run of contact inside the swipe (a band with no ridges
+        # between): the first frame after such a run has neighbours on one side only too
+        # (bench_bands.py, the streaming stitcher: a whorl's first frame after a 1 mm band
+        # read as a one-frame backtrack).
         lone_end = False
         if dist >= min_backtrack_px and a == b:
-            if a == first + 1 and a + 1 <= last:
+            if a - 1 in seg_first and a + 1 <= last:
                 lone_end = step[a + 1] < dist
-            elif a == last and a - 1 > first:
+                f = a - 1
+            elif a in seg_last and a - 1 > first:
                 lone_end = step[a - 1] < dist
+                f = a
         if lone_end:
-            f = first if a == first + 1 else last
             events.append(Event("low_confidence", f, f, {
                 "frames": 1, "cause": "end_step",
                 "min_confidence": round(float(confidence[f]), 3),

@@ -730,6 +730,44 @@ def test_no_smoothing_where_the_overlaps_are_thin():
     assert abs(d["span_error_pct"]) < 3.0
 
 
+def test_a_lone_step_back_after_a_run_without_contact_is_no_backtrack():
+    # Trajectory by construction, 4 kHz, 0.4 px per frame, frames 180-194 out of contact (a
+    # band with no ridges crossed, as the streaming stitcher reports it). The first frame in
+    # contact after the band placed 1.4 px ahead of the next is seen from one side only, as
+    # a swipe's first frame is: an "end_step" low_confidence event, not a backtrack. The
+    # same frame before the band, and a reversal over several frames after it, are not
+    # touched.
+    from stripstitch import report
+    t_n = 400
+    pos = np.stack([0.4 * np.arange(t_n), np.zeros(t_n)], 1)
+    contact = np.ones(t_n, bool)
+    contact[180:195] = False
+
+    def kinds(p):
+        ev = report.find_events(positions=p, angles_deg=np.zeros(t_n), confidence=np.ones(t_n),
+                                contact=contact, link_failed=np.zeros(t_n - 1, bool),
+                                link_dt_frames=np.ones(t_n - 1),
+                                times_s=np.arange(t_n) / 4000.0, frame_rate_hz=4000.0,
+                                n_rows=8, pitch_um=50.8)
+        return [(e.kind, e.first_frame, e.last_frame, e.details.get("cause")) for e in ev
+                if e.kind != "no_contact"]
+
+    assert kinds(pos) == []
+    after = pos.copy()
+    after[195, 0] += 1.8                   # 1.4 px back from frame 195 to 196
+    assert kinds(after) == [("low_confidence", 195, 195, "end_step")]
+    before = pos.copy()
+    before[179, 0] -= 1.8                  # the last frame before the band, 1.4 px back
+    assert kinds(before) == [("low_confidence", 179, 179, "end_step")]
+    inside = pos.copy()
+    inside[197, 0] -= 1.8                  # two frames further in: back and forth
+    assert [k[0] for k in kinds(inside)] == ["backtrack"]
+    rev = pos.copy()
+    rev[195:201, 0] = rev[195, 0] + 0.4 * (5 - np.arange(6))   # backing up over six frames
+    rev[201:, 0] += rev[200, 0] - rev[201, 0] + 0.4
+    assert [k[0] for k in kinds(rev)] == ["backtrack"]
+
+
 def test_a_lone_step_back_into_an_end_frame_is_no_backtrack():
     # Trajectories by construction, 4 kHz, 0.4 px per frame. The first (or last) frame in
     # contact placed 1.4 px back against its neighbour is a doubtful end frame, seen from
