@@ -105,7 +105,7 @@ def main(argv=None):
           + ", ".join(f"{m} {fmt(float(np.median(v)))} % (worst {fmt(float(np.max(v)))})"
                       for m, v in by_mode.items())
           + ". Not finger-like textures among them on purpose (see the module notes); the "
-          "streaming stitcher reads 8-row strips long on many photographs (DEVELOPERS.md, "
+          "key-frame tracker chooses its edge filters per swipe by the residual (DEVELOPERS.md, "
           "'Edge rows').\n\n"
           + table(groups, gcols, gheads) + "\n\n## Every swipe\n\n" + table(rows, cols, heads)
           + "\n")
