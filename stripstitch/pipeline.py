@@ -193,7 +193,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
         Both place the frames with the key-frame tracker (:mod:`stripstitch.track`, one
         compiled pass); ``"default"`` then refines every frame against a model of the finger
         (stretch, shear, turn, pixel locking), ``"fast"`` stops there (no rotation), for
-        drivers. Strips of fewer than 6 rows or 24 columns (too little overlap or texture per
+        drivers. Strips of fewer than 5 rows or 24 columns (too little overlap or texture per
         key frame for the tracker) take the multi-baseline pairs in both modes, several times slower
         (``result.options["placement"]`` says which). Default is "default".
     output_pitch_um : float or (2,) float, optional
@@ -231,7 +231,7 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
        the key frames' positions are part of the filter's state (stochastic cloning [5]_),
        so their errors are corrected rather than inherited, and tracking runs outwards from
        the best-seen frame in the middle of the swipe.
-    3. Strips of fewer than 6 rows or 24 columns: successive frames are matched by
+    3. Strips of fewer than 5 rows or 24 columns: successive frames are matched by
        normalised cross-correlation over every integer shift (FFT) and refined by
        Gauss-Newton with a 2x2 information matrix per pair (cluster-robust over blocks of
        columns); frames are also paired at longer baselines at nearly whole-pixel
@@ -1227,10 +1227,20 @@ def _texture_about(z, frames, static, ok):
 # -6.8 % against -0.43 %). 32 more with skew, stalls and backtracks at 1-6 kHz: median span
 # 0.52 -> 0.20 %, along / across RMS 0.67 / 1.23 -> 0.28 / 0.25 px (across worse on 8). At
 # 5 rows it helped less (median 0.92 -> 0.71 %, better on 12 of 24) and at 4 it did worse
-# (1.12 -> 1.73 %): the pairs keep 2-5 rows. The streaming stitcher
+# (1.12 -> 1.73 %), so the pairs kept 2-5 rows until the key frames' edge filters were
+# chosen per swipe (track.track's symmetric_edges="auto"; the one-sided windows are the
+# edge rows' bias above). Then on 90 swipes of 5 rows drawn as bench_few_rows.py's (seeds
+# 5000-5089: 2-8 kHz, 96-256 columns, 0.1-0.65 (R - 1) px per frame, 15-40 dB, a quarter
+# with a stall), pairs -> tracker: default mode span median 0.62 / 1.14 -> 0.45 / 0.41 % on
+# the first 30 / the other 60, over 1 %: 11 / 31 -> 4 / 12, worst 23 / 81 -> 1.7 / 10.7 %,
+# along RMS median 0.67 / 1.30 -> 0.37 / 0.30 px, across 0.74 / 0.95 -> 0.31 / 0.36 px,
+# false events 0 / 5 -> 1 / 5; fast mode (all 90) 0.90 -> 0.49 %, over 1 %: 42 -> 18; the
+# streaming stitcher 2.09 -> 0.69 %, over 1 %: 61 -> 35, false events 33 -> 12. At 4 rows
+# still not (the same draw: median 0.85 -> 0.70 %, along 0.85 -> 0.59 px, but better on 43
+# of 90 and false events 6 -> 9): the pairs keep 2-4 rows. The streaming stitcher
 # shares the switch; its tracker against its pairs window on 48 such swipes (0.4-2.2 px per
 # frame): better on 40, median |span error| 1.21 -> 0.35 %, over 1 %: 26 -> 8.
-_TRACK_MIN_ROWS = 6
+_TRACK_MIN_ROWS = 5
 # ... and a strip of fewer than 24 columns shows the tracker too little texture per key: 16
 # simulated swipes of 16 columns (8 to 32 rows, four finger classes, 25 dB) placed by the
 # tracker erred by 0.16-172 px RMS along (median 3.9; ridge-period jumps, two false gaps), by

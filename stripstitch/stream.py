@@ -19,7 +19,7 @@ every frame within 0.25 px of the truth (measured at most 0.18 px) on steady, va
 stalling and backtracking swipes, and within 0.25 px of ``stitch`` wherever ``stitch`` is
 within 0.15 px of the truth; the image correlates >= 0.99 with the source texture.
 
-Per batch of ``batch_frames`` new frames, on strips of 6 rows or more: the key-frame tracker of
+Per batch of ``batch_frames`` new frames, on strips of 5 rows or more: the key-frame tracker of
 the batch path (:class:`stripstitch.track.FrameTracker`, its filter and two key frames carried
 from batch to batch) places every frame from the finger's arrival on; its placement is final
 at once (the filter is causal), so the frames are fused right away. The first frames wait
@@ -194,7 +194,7 @@ class StreamingStitcher:
     -----
     Fixed pattern: the per-plate mean of the finger-absent frames seen before the finger
     arrived (at least 8); with a ``calibration`` it is taken as removed. Without either (a
-    finger on the strip from the first frame), strips placed by the key-frame tracker (6 rows
+    finger on the strip from the first frame), strips placed by the key-frame tracker (5 rows
     and more) fit it to their placed frames: each plate's mean residual against the image
     fused from the finger's arrival (placed, fitted and placed again), then from the
     residuals of every half window, gathered until their frames travelled
@@ -324,7 +324,7 @@ class StreamingStitcher:
         self._sp_n = 0
         self._tex_hi = 0.0
         self._noise_sigma = 0.0
-        # Key-frame tracker (strips of 6 rows or more, as the batch path): made at the first
+        # Key-frame tracker (strips of 5 rows or more, as the batch path): made at the first
         # contact, when the usable plates are known.
         self._use_tracker = r_n >= _TRACK_MIN_ROWS
         self._tracker = None
