@@ -36,8 +36,10 @@ NARROW_COLS = 64
 # 0.1-0.65 (R - 1) px per frame, 15-40 dB, six pattern classes, a quarter with a stall; 30
 # per row count): more than 1 % of span off in 12 / 13 / 11 / 12 of 30 with 2 / 3 / 4 / 5
 # rows (worst 14.5 / 31 / 12.5 / 24 %), all called usable; with 6 and 8 rows 5 of 30, at
-# the limits of speed and deceleration.
-FEW_ROWS = 5
+# the limits of speed and deceleration. Strips of 5 rows are placed by the key-frame tracker
+# since it chooses its edge filters per swipe: 4 of 30 over 1 % (worst 1.7 %), as 6 rows
+# (3 of 30), so the reason stops at 4 rows.
+FEW_ROWS = 4
 
 
 def _runs(mask):
