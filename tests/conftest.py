@@ -21,6 +21,24 @@ def band_texture(shape, *, period_px=9.0, rel_bandwidth=0.15, seed=0):
     return img / img.std()
 
 
+def photo_finger(name):
+    """The named image bundled with scikit-image (an outside texture) as a simulated finger
+    surface at 25.4 um per pixel: grey levels, the central 600 x 600 of larger images (as
+    benchmarks/bench_photos.py takes them)."""
+    import skimage.data
+    from skimage.color import rgb2gray
+
+    from stripstitch import simulate
+
+    im = getattr(skimage.data, name)()
+    if im.ndim == 3:
+        im = rgb2gray(im[..., :3])
+    if im.shape[0] > 700:
+        c0, c1 = im.shape[0] // 2, im.shape[1] // 2
+        im = im[c0 - 300:c0 + 300, c1 - 300:c1 + 300]
+    return simulate.texture_finger(np.asarray(im, dtype=np.float64), pixel_um=25.4)
+
+
 def cut_frames(texture, positions, *, n_rows=8, n_cols=64, origin=(8, 8)):
     """Frames of ``texture`` at (along, across) ``positions`` by exact Fourier shifts.
 

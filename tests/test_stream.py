@@ -582,19 +582,11 @@ def test_frames_held_before_the_arrival_are_placed_along_the_swipe(photo):
     # along RMS 2.6 / 2.3 px. Placed along the trajectory by time at the first tracked
     # frames' velocity (as the batch path places frames out of contact): +0.04 / -0.16 %,
     # 0.05 / 0.20 px. Frame 0 stays the origin.
-    import skimage.data
-    from skimage.color import rgb2gray
+    from conftest import photo_finger
 
     from stripstitch import evaluate, simulate
 
-    im = getattr(skimage.data, photo)()
-    if im.ndim == 3:
-        im = rgb2gray(im[..., :3])
-    if im.shape[0] > 700:
-        c0, c1 = im.shape[0] // 2, im.shape[1] // 2
-        im = im[c0 - 300:c0 + 300, c1 - 300:c1 + 300]
-    finger = simulate.texture_finger(np.asarray(im, dtype=np.float64), pixel_um=25.4)
-    cap = simulate.swipe(finger=finger, rng=11, n_rows=16, n_cols=128, frame_rate_hz=2000.0,
+    cap = simulate.swipe(finger=photo_finger(photo), rng=11, n_rows=16, n_cols=128, frame_rate_hz=2000.0,
                          profile="human", speed_mm_s=100.0, snr_db=25.0)
     _, _, res = _stream(cap.frames, frame_rate_hz=2000.0)
     d = evaluate.evaluate(res, cap, image=False, distortion=False).to_dict()

@@ -492,21 +492,13 @@ def test_fine_photographic_texture_on_few_rows_is_not_stretched(photo, rows, mod
     # +1.92 / +4.86 / +3.85 %, along 1.57 / 4.91 / 4.64 px before, now +0.06 / -0.06 / -0.20 %;
     # default mode, whose model passes start from the tracker, along 0.12 / 0.24 / 0.19 px
     # before, now 0.03 / 0.02 / 0.02 px.
-    import skimage.data
-    from skimage.color import rgb2gray
+    from conftest import photo_finger
 
     from stripstitch import StreamingStitcher
     from stripstitch import evaluate as ev
     from stripstitch import simulate
 
-    im = getattr(skimage.data, photo)()
-    if im.ndim == 3:
-        im = rgb2gray(im[..., :3])
-    if im.shape[0] > 700:
-        c0, c1 = im.shape[0] // 2, im.shape[1] // 2
-        im = im[c0 - 300:c0 + 300, c1 - 300:c1 + 300]
-    finger = simulate.texture_finger(np.asarray(im, dtype=np.float64), pixel_um=25.4)
-    cap = simulate.swipe(finger=finger, rng=11, n_rows=rows, n_cols=192, frame_rate_hz=4000.0,
+    cap = simulate.swipe(finger=photo_finger(photo), rng=11, n_rows=rows, n_cols=192, frame_rate_hz=4000.0,
                          profile="human", speed_mm_s=100.0, snr_db=25.0)
     if mode == "stream":
         s = StreamingStitcher(frame_rate_hz=4000.0)
