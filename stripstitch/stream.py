@@ -1027,23 +1027,23 @@ class StreamingStitcher:
         # the tests' band-limited textures unchanged. Choosing later, on the first 64 frames
         # both trackers registered, the frames before keep the earlier filters: those draws
         # 0.41 / 0.33 / 0.28 % (see DEVELOPERS.md, "Edge rows").
+        # The chosen placement's backward half (frames 0..s, tracked from s) is what tracking
+        # backwards from s alone gives (the two halves start from fresh state): it is used as
+        # the arrival's placement.
         if n >= 2:
-            self._sym_edges = _track.track(zt, self._plate_ok, times=tt, start=s,
-                                           max_across_px=self.max_across_px,
-                                           sigma_acc_px=self.motion_prior_px,
-                                           sideways_acc=_TRACK_SIDEWAYS,
-                                           symmetric_edges="auto").symmetric_edges
-        if s > 0:
-            back = _track.track(zt[:s + 1], self._plate_ok, times=tt[:s + 1], start=s,
-                                max_across_px=self.max_across_px,
-                                sigma_acc_px=self.motion_prior_px, sideways_acc=_TRACK_SIDEWAYS,
-                                symmetric_edges=self._sym_edges)
-            pos[:s + 1] = back.positions
-            ok[1:s + 1] = back.link_ok
-            ref = back.reference
-            disp = back.positions - back.positions[np.maximum(ref, 0)]
-            info[:s + 1] = _with_model_error(back.info, disp)
-            okf[:s + 1] = ref >= 0
+            chosen = _track.track(zt, self._plate_ok, times=tt, start=s,
+                                  max_across_px=self.max_across_px,
+                                  sigma_acc_px=self.motion_prior_px, sideways_acc=_TRACK_SIDEWAYS,
+                                  symmetric_edges="auto")
+            self._sym_edges = chosen.symmetric_edges
+            if s > 0:
+                bpos = chosen.positions[:s + 1]
+                ref = chosen.reference[:s + 1]
+                pos[:s + 1] = bpos
+                ok[1:s + 1] = chosen.link_ok[:s]
+                info[:s + 1] = _with_model_error(chosen.info[:s + 1],
+                                                 bpos - bpos[np.maximum(ref, 0)])
+                okf[:s + 1] = ref >= 0
         base = self._tr_pos.copy()               # the arrival where the swipe starts
         self._new_tracker()
         out = self._tracker.push(zt[s:], times=tt[s:])
