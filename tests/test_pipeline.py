@@ -888,6 +888,29 @@ def test_turn_read_short_at_first_gets_a_second_opinion():
     assert d["backtrack_detected"] == 1
 
 
+def test_slanted_swipe_on_a_narrow_strip_is_not_turned_by_the_passes_own_feedback():
+    # Simulator truth: no rotation; a whorl swiped 5.5 degrees slanted over an 8x64 strip at
+    # 16.5 dB (bench_geometry.py, seed 13579, swipe 23). The first reading (1.67 degrees at
+    # 9.2 standard errors) got the turn passes as a second opinion, and they turned the swipe
+    # by 5.9 degrees (rotation RMS 2.67 degrees, across RMS 2.78 px, span +0.53 %): on a
+    # narrow strip the twist the model's across interpolation reads grows with the slant in
+    # the frames' own axes, which the turn itself adds to. Without the turn: across 0.32 px,
+    # span +0.18 %.
+    from stripstitch import evaluate as ev
+    from stripstitch import simulate
+
+    finger = simulate.make_finger("whorl", size_mm=(14.0, 10.0), rng=14102, skin="normal")
+    cap = simulate.swipe("whorl", finger=finger, rng=14502, n_rows=8, n_cols=64,
+                         frame_rate_hz=3000.0, profile="constant", speed_mm_s=37.148,
+                         snr_db=16.539, skew_deg=5.5227, rotation_deg=0.0)
+    res = stitch(cap.frames, frame_rate_hz=cap.frame_rate_hz)
+    d = ev.evaluate(res, cap, image=False, distortion=False).to_dict()
+    assert np.ptp(res.angles) < 1.0
+    assert d["across_rms_px"] < 0.8
+    # 500 ppi geometric accuracy: 1 % of span (EFTS Appendix F, REFERENCE-VALUES.md sec. 4)
+    assert abs(d["span_error_pct"]) < 1.0
+
+
 def test_central_turn_ignores_a_turn_made_at_the_ends_of_the_travel():
     # The second opinion's test: a turn made while the fingertip arrives (first 10 % of the
     # travel) does not count; one spread over the swipe counts 80 % of it (linear ramp).
