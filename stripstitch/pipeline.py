@@ -367,7 +367,20 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
                                                 cut=link_failed, iterations=iterations,
                                                 rotation=rotation, **kw)
 
-            ref = refine(n_model)
+            # A swipe whose first pass already established a turn goes to the turn passes
+            # after that pass where its frames sample many along phases (the turning 8x192
+            # swipe of bench_throughput.py 143 -> 115 ms). Where they sample few (a strip
+            # moving by nearly whole pixels) the second sharp pass is kept: without it the
+            # independent generator's fast turning swipes lost across (0.105 -> 0.456,
+            # 0.243 -> 1.034 px). Measured against both passes: bench_random.py seeds 7000 /
+            # 8000 rotation median 0.081 / 0.104 -> 0.079 / 0.093 deg, across 0.108 / 0.135
+            # -> 0.107 / 0.134 px; bench_independent.py seeds 7000 / 7100 / 7200 no swipe
+            # moved by 0.05 px; a 100-swipe set of narrow strips 14 better, 1 worse by 0.05
+            # px across; but bench_rotation.py's 12 dB left loop 0.030 -> 0.057 deg and 10x256
+            # whorl 0.064 -> 0.101 px, and bench_geometry.py's five seeds 3 better, 5 worse
+            # (a 12x96 swipe at 2.4 px per frame 0.21 -> 0.56 px), medians unchanged.
+            ref = refine(n_model, stop_if_turning=(rotation and model_passes is None
+                                                   and placed is not None))
             positions = ref.positions.copy()
             if rotation:
                 angles_deg = np.degrees(ref.angles_rad)

@@ -1304,7 +1304,7 @@ _END_ALLOWANCE = 0.25
 def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px=0.05, cut=None,
                      iterations=4, fine_px=(0.25, 0.5), smooth_px=(0.3, 0.3), max_step_px=0.5,
                      correct_stretch=True, rotation=True, min_turn_deg=1.0, tile_px=256.0,
-                     twist_smooth_px=None, sharpen="auto"):
+                     twist_smooth_px=None, sharpen="auto", stop_if_turning=False):
     """Refine frame positions against a super-resolved model of the finger.
 
     Each pass builds the model from the current positions (:func:`build_model`), fits every
@@ -1359,6 +1359,11 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         no amount of signal removes; both also amplify the model's noise. "auto" (default):
         full weight in the first pass, then from the frames' median NCC with the model, 0 at
         0.975 (about 12 dB) rising to 1 at 0.99 (about 20 dB).
+    stop_if_turning : bool
+        Stop after the first pass when its twist established a turn (``min_turn_deg`` met)
+        and the frames sample many along phases (under a tenth of them concentrated): for a
+        caller that follows with passes of its own for turning swipes. Where the phases are
+        concentrated the second pass still places the frames better. Default False.
 
     Returns
     -------
@@ -1510,6 +1515,9 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             turn[:] = 0.0
         pos = pos + np.vstack([[0.0, 0.0], np.cumsum(corr, axis=0)])
         ang = ang + np.concatenate([[0.0], np.cumsum(turn)])
+        if (it == 0 and stop_if_turning and use_twist and min_turn_deg is not None
+                and alias.sum() < 0.1 * max(active.sum(), 1)):
+            break                             # (the caller's turn passes take it from here)
     # Across a gap the frames never overlapped: keep the step the caller placed there.
     d = np.diff(pos, axis=0)
     d[cut] = np.diff(np.asarray(positions, dtype=np.float64), axis=0)[cut]

@@ -283,6 +283,39 @@ def test_turn_read_from_the_twist():
     assert np.isnan(out1.first_turn_deg)
 
 
+def test_refinement_hands_an_established_turn_to_the_callers_passes():
+    # stop_if_turning (the pipeline, whose turn passes follow): once the first pass's twist
+    # established the turn, that pass's result is returned where the frames sample many
+    # along phases; a swipe that does not turn, or whose frames move by whole pixels (few
+    # phases: the second sharp pass still places them better), runs every pass.
+    tex = band_texture((512, 256), period_px=9.0, seed=4)
+    t_n = 400
+    pos = np.stack([0.45 * np.arange(t_n), np.zeros(t_n)], 1)
+    ang = np.radians(np.linspace(0.0, 3.0, t_n))
+    frames = _turning_frames(tex, pos, ang)
+    w = np.ones(frames.shape)
+    one = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=1)
+    stopped = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=2,
+                                  stop_if_turning=True)
+    assert np.array_equal(stopped.positions, one.positions)
+    assert np.array_equal(stopped.angles_rad, one.angles_rad)
+    assert np.degrees(np.ptp(stopped.angles_rad)) > 1.0
+    still = _turning_frames(tex, pos, np.zeros(t_n))
+    w = np.ones(still.shape)
+    two = rf.refine_positions(still, w, pos, np.zeros(t_n), iterations=2)
+    kept_on = rf.refine_positions(still, w, pos, np.zeros(t_n), iterations=2, stop_if_turning=True)
+    assert np.array_equal(kept_on.positions, two.positions)
+    whole = np.stack([0.98 * np.arange(t_n), np.zeros(t_n)], 1)
+    frames = _turning_frames(tex, whole, ang * 0.5)
+    w = np.ones(frames.shape)
+    one = rf.refine_positions(frames, w, whole, np.zeros(t_n), iterations=1)
+    assert np.degrees(np.ptp(one.angles_rad)) > 1.0       # the turn was established
+    two = rf.refine_positions(frames, w, whole, np.zeros(t_n), iterations=2)
+    kept_on = rf.refine_positions(frames, w, whole, np.zeros(t_n), iterations=2,
+                                  stop_if_turning=True)
+    assert np.array_equal(kept_on.positions, two.positions)
+
+
 def test_turn_read_when_the_strip_moves_by_whole_pixels():
     # A 16-row strip moving 0.98 px per frame samples nearly one along phase (the model
     # between is interpolated), yet the turn is read: first the two ordinary passes, then
