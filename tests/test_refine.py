@@ -259,14 +259,20 @@ def _turning_frames(tex, pos, ang, r_n=8, c_n=128, origin=(40.0, 60.0)):
     return np.stack(out)
 
 
-def test_turn_read_from_the_twist():
-    # A finger turning by 3 degrees over the swipe, frames placed at the right positions but
-    # with no angle: the twist against the model recovers the turn.
+def _three_degree_turn():
+    """A band-limited finger turning by 3 degrees over 400 frames at 0.45 px per frame:
+    (texture, frame count, positions, angles, frames)."""
     tex = band_texture((512, 256), period_px=9.0, seed=4)
     t_n = 400
     pos = np.stack([0.45 * np.arange(t_n), np.zeros(t_n)], 1)
     ang = np.radians(np.linspace(0.0, 3.0, t_n))
-    frames = _turning_frames(tex, pos, ang)
+    return tex, t_n, pos, ang, _turning_frames(tex, pos, ang)
+
+
+def test_turn_read_from_the_twist():
+    # A finger turning by 3 degrees over the swipe, frames placed at the right positions but
+    # with no angle: the twist against the model recovers the turn.
+    tex, t_n, pos, ang, frames = _three_degree_turn()
     out = rf.refine_positions(frames, np.ones(frames.shape), pos, np.zeros(t_n), iterations=6)
     # Measured 0.022 degrees RMS; the issue's target for a swipe turning by 3 degrees is 0.1.
     assert np.degrees(np.sqrt(np.mean((out.angles_rad - ang) ** 2))) < 0.1
@@ -288,11 +294,7 @@ def test_refinement_hands_an_established_turn_to_the_callers_passes():
     # established the turn, that pass's result is returned where the frames sample many
     # along phases; a swipe that does not turn, or whose frames move by whole pixels (few
     # phases: the second sharp pass still places them better), runs every pass.
-    tex = band_texture((512, 256), period_px=9.0, seed=4)
-    t_n = 400
-    pos = np.stack([0.45 * np.arange(t_n), np.zeros(t_n)], 1)
-    ang = np.radians(np.linspace(0.0, 3.0, t_n))
-    frames = _turning_frames(tex, pos, ang)
+    tex, t_n, pos, ang, frames = _three_degree_turn()
     w = np.ones(frames.shape)
     one = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=1)
     stopped = rf.refine_positions(frames, w, pos, np.zeros(t_n), iterations=2,
