@@ -1326,6 +1326,29 @@ def test_band_narrower_than_the_strip_is_no_gap():
     _assert_one_band_within_its_uncertainty(res, pos)
 
 
+def test_band_between_textured_frames_of_a_weakly_textured_swipe_is_no_gap():
+    # scikit-image's coins photograph (outside data) swiped over a 16x128 strip at 2 kHz and
+    # 15 dB (bench_bands.py, seed 5151, swipe 11): the background between two coins is a band
+    # narrower than the strip, so some texture stays in view on every frame, and against the
+    # swipe's weakly textured median frame none is faint (0.59 / 0.39 of it either side of
+    # the crossing); but the two frames' textured rows do not overlap, the link failed and
+    # was taken for a too-fast jump: a gap pushed by a strip height, span +14.6 %, along RMS
+    # 10.3 px. Now crossed at the measured speed: +0.16 %, 0.19 px.
+    import skimage.data
+
+    from stripstitch import simulate
+
+    finger = simulate.texture_finger(skimage.data.coins(), pixel_um=25.4)
+    cap = simulate.swipe("arch", finger=finger, rng=5762, n_rows=16, n_cols=128,
+                         frame_rate_hz=2000.0, profile="accel_decel", speed_mm_s=73.338,
+                         snr_db=15.139, skew_deg=1.4758)
+    res, d = _crease_swipe_errors(cap, 2000.0)
+    # EFTS Appendix G's 1.5 % (REFERENCE-VALUES.md section 4) is the yardstick; we ask 0.5 %.
+    assert abs(d["span_error_pct"]) < 0.5
+    assert d["along_rms_px"] < 0.5
+    _assert_one_band_within_its_uncertainty(res, cap.positions)
+
+
 def test_simulated_narrow_crease_at_low_snr_is_no_gap():
     # An arch with a 0.7 mm crease (14 px, under the 16-row strip) at 16 dB, accelerating
     # through it (simulator truth: no gap). Measured before a band's edge in the frames' rows
