@@ -118,7 +118,10 @@ def main(argv=None):
         s = span_summary(ok) if ok else {"swipes": 0}
         s["false_events"] = int(sum((r["gap_false"] or 0) + (r["backtrack_false"] or 0)
                                     + (r["stall_false"] or 0) for r in ok))
-        s["median_ncc"] = float(np.median([r["ncc"] for r in ok])) if ok else None
+        # (a swipe whose image could not be scored, e.g. no overlap with the truth, has none)
+        nccs = [r["ncc"] for r in ok if r["ncc"] is not None]
+        s["median_ncc"] = float(np.median(nccs)) if nccs else None
+        s["unscored_images"] = len(ok) - len(nccs)
         with_band = [r for r in ok if r["band_flagged"] is not None]
         s["bands_flagged"] = f"{sum(r['band_flagged'] for r in with_band)}/{len(with_band)}"
         s["failed"] = sum(r["method"] == m and "error" in r for r in rows)
@@ -127,8 +130,9 @@ def main(argv=None):
              f"{fmt(s.get('worst_abs_span_error_pct'))} % ({s.get('swipes_over_1pct')} over 1 %), "
              f"along / across RMS median {fmt(s.get('median_along_rms_px'))} / "
              f"{fmt(s.get('median_across_rms_px'))} px, image NCC median "
-             f"{fmt(s.get('median_ncc'))}, "
-             f"false gap/stall/backtrack events {s['false_events']}, bands flagged "
+             f"{fmt(s.get('median_ncc'))}"
+             + (f" ({s['unscored_images']} image(s) not scored)" if s.get("unscored_images") else "")
+             + f", false gap/stall/backtrack events {s['false_events']}, bands flagged "
              f"{s['bands_flagged']}" + (f", failed {s['failed']}" if s["failed"] else "")
              for m, s in summary.items()]
     cols = ["case", "method", "band_frames", "span_error_pct", "along_rms_px", "across_rms_px",
