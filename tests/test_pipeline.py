@@ -1349,6 +1349,29 @@ def test_band_between_textured_frames_of_a_weakly_textured_swipe_is_no_gap():
     _assert_one_band_within_its_uncertainty(res, cap.positions)
 
 
+def test_short_run_out_of_contact_is_crossed_not_held_on_the_fixed_pattern():
+    # A 0.41 mm crease (simulate.with_crease) under an 8-row strip at 0.32 px per frame, 33
+    # dB (bench_bands.py, seed 5151, swipe 2): its skin does not touch the sensor for 7
+    # frames, over which the finger travels 3.5 px, under half a strip. Fast mode's tracker
+    # held those frames on the fixed pattern's rest (-0.06 px per frame), and the report read
+    # a 1.2 px backtrack the simulator's truth does not have; a run too short for a band was
+    # taken for a jump's blur, but frames out of contact are no blur.
+    from stripstitch import simulate
+
+    f = simulate.make_finger("right_loop", size_mm=(14.0, 12.0), rng=5453)
+    cap = simulate.swipe("right_loop", finger=simulate.with_crease(f, at_mm=0.56615 * 14.0,
+                                                                   width_mm=0.40823),
+                         rng=5753, n_rows=8, n_cols=192, frame_rate_hz=4000.0,
+                         profile="constant", speed_mm_s=65.8735, snr_db=32.556,
+                         skew_deg=4.2554)
+    assert not cap.events_of("backtrack")
+    res = stitch(cap.frames, frame_rate_hz=4000.0, timestamps_s=cap.times_s, mode="fast")
+    assert not res.events_of("backtrack")
+    assert not res.events_of("gap")
+    band = [e for e in res.events_of("low_confidence") if e.details.get("cause") == "no_texture"]
+    assert len(band) == 1
+
+
 def test_simulated_narrow_crease_at_low_snr_is_no_gap():
     # An arch with a 0.7 mm crease (14 px, under the 16-row strip) at 16 dB, accelerating
     # through it (simulator truth: no gap). Measured before a band's edge in the frames' rows
