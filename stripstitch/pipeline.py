@@ -984,9 +984,12 @@ def _bridge_blank_runs(prep, chain, positions, confidence, link_failed, times, r
         # (a band crossed between two frames: the frame after it, placed by the carry, is
         # the run, and the travel is reported as for any run, from the frame before it to
         # the frame after it)
-        lo_f, hi_f = (f0 + 1, f1 - 1) if f1 - f0 >= 2 else (f1, f1)
-        if hi_f == f1 and f1 + 1 < t_n:
-            travel = float(np.hypot(*(positions[f1 + 1] - positions[f0])))
+        if f1 - f0 >= 2:
+            lo_f, hi_f = f0 + 1, f1 - 1
+        else:
+            lo_f = hi_f = f1
+            if f1 + 1 < t_n:
+                travel = float(np.hypot(*(positions[f1 + 1] - positions[f0])))
         run = np.arange(lo_f, hi_f + 1)
         run = run[prep.contact[run]]
         confidence[run] = np.minimum(confidence[run], conf)

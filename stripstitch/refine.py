@@ -1422,8 +1422,9 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
         # along: the sharp model's interpolation between the few phases reads only part of a
         # turn (measured on two 16-row strips turning 3 degrees at 0.98 px per frame: 0.55 deg
         # RMS -> 0.09 and 0.08). Built from the same splatted sums as the first model.
-        twist2 = (twist_smooth_px is not None and rotation
-                  and alias.sum() >= 0.1 * max(active.sum(), 1))
+        # (under a tenth of the frames with finger at concentrated phases: many phases)
+        many_phases = alias.sum() < 0.1 * max(active.sum(), 1)
+        twist2 = twist_smooth_px is not None and rotation and not many_phases
         fitted = _fit_tiles(z, w, pos, ang, h, smooth_px, tile_px, work, sharp=sharp,
                             twist_smooth_px=twist_smooth_px if twist2 else None,
                             twist_frames=alias)
@@ -1515,8 +1516,7 @@ def refine_positions(z, weights, positions, angles_rad, *, dt=None, sigma_acc_px
             turn[:] = 0.0
         pos = pos + np.vstack([[0.0, 0.0], np.cumsum(corr, axis=0)])
         ang = ang + np.concatenate([[0.0], np.cumsum(turn)])
-        if (it == 0 and stop_if_turning and use_twist and min_turn_deg is not None
-                and alias.sum() < 0.1 * max(active.sum(), 1)):
+        if it == 0 and stop_if_turning and use_twist and min_turn_deg is not None and many_phases:
             break                             # (the caller's turn passes take it from here)
     # Across a gap the frames never overlapped: keep the step the caller placed there.
     d = np.diff(pos, axis=0)
