@@ -465,7 +465,29 @@ def stitch(frames, *, pitch_um=50.8, frame_rate_hz=None, timestamps_s=None, cali
 # 7200 (72 swipes from a generator outside the library) across median 0.055 / 0.093 /
 # 0.062 -> 0.053 / 0.096 / 0.066 px, two swipes worse by more than 0.05 px (a spiral 0.10
 # -> 0.15, a failing brick 0.35 -> 0.43).
-_TURN_FINE_PX = (0.25, 0.8)
+# Along, 0.4 px instead of 0.25 (the smoothing stays 0.3 px): fewer nodes to smooth and fill,
+# the turning 8x192 swipe of bench_throughput.py 114-116 -> 97 ms with the links below at
+# two iterations (1.05 times real time), and the turn read better. On the 28 swipes of
+# bench_rotation.py and 16 random turning ones of seed 9000 (four iterations for the links),
+# rotation RMS median / mean 0.108 / 0.126 deg on the 0.25 px grid, 0.099 / 0.115 on 1/3,
+# 0.097 / 0.111 on 0.4, 0.095 / 0.107 on 0.5. It is the grid, not a wider smoothing: 0.4 or
+# 0.5 px of smoothing on the 0.25 px grid read 0.099 / 0.126 and 0.093 / 0.120 deg, across
+# median 0.149 / 0.156 px. Not 0.5, as fast: bench_rotation.py's chosen 16x128 twin loop
+# 0.039 -> 0.101 deg (0.061 on 0.4). With the links at two iterations, against the earlier
+# grid at four: that set's rotation 0.096 / 0.111 deg, across median 0.149 -> 0.144 px (mean
+# 0.193 -> 0.179), along 0.050 -> 0.048 px, span 0.040 -> 0.037 %; the accuracy suite's
+# turning arch across 0.185 -> 0.112 px; bench_random.py seed 7000 rotation median 0.079 ->
+# 0.070 deg, across median 0.107 -> 0.114 px (mean 0.144 -> 0.143; of 21 swipes that
+# changed, 7 better and 4 worse by 0.01 px), an unturned twin loop's false 1.05-degree turn
+# no longer kept by the second opinion (its span +0.18 -> +0.67 %, the ordinary passes'
+# result); bench_independent.py seeds 7000 / 7100 / 7200 rotation median 0.176 / 0.030 /
+# 0.065 -> 0.165 / 0.037 / 0.064 deg, across 0.056 / 0.083 / 0.075 -> 0.056 / 0.089 / 0.070
+# px (a gravel 10x256 0.03 -> 0.08, a grass 6x144 0.24 -> 0.45, as with the links' change
+# alone); bench_geometry.py seeds 300 / 13579, 9 of 72 changed, across median 0.180 ->
+# 0.192 px (a 12x96 swipe 0.56 -> 0.20, an 8x64 one 0.16 -> 0.26). Two turn passes instead
+# of three on this grid (a fifth less time again): across median 0.149 -> 0.188 px; not
+# taken.
+_TURN_FINE_PX = (0.4, 0.8)
 
 # A turn (degrees) the first reading implied that gets the turn passes as a second opinion,
 # and the turn those passes must establish over the middle of the travel to be kept (see
@@ -517,6 +539,18 @@ _SECOND_OPINION_MIN_ROWS = 8
 _SECOND_OPINION_MIN_COLS = 64
 
 
+# Gauss-Newton iterations of _turned_links_across's registrations. They start from the
+# refined placement (within a few hundredths of a pixel of where they end): two instead of
+# four took 9.3 -> 6.3 ms of the turning 8x192 swipe (bench_throughput.py's), and moved the
+# results within their scatter: bench_rotation.py's 28 swipes and 16 random turning ones of
+# seed 9000 rotation median 0.108 -> 0.104 deg, across 0.149 -> 0.144 px; bench_random.py
+# seed 7000 across median 0.107 -> 0.110 px, rotation 0.079 -> 0.079 deg;
+# bench_independent.py's 72 swipes within 0.01 px of their medians, one worse by more than
+# 0.05 px (a grass 6x144 swipe at 1.9 px per frame, 0.24 -> 0.45 px), one better (a failing
+# brick 10x256, 0.43 -> 0.36).
+_TURNED_LINK_ITERATIONS = 2
+
+
 def _turned_links_across(prep, positions, angles_deg, trk_out):
     """Positions whose across path is the tracker's links registered again with each pair's
     relative turn held at the refined angles (along unchanged).
@@ -566,7 +600,7 @@ def _turned_links_across(prep, positions, angles_deg, trk_out):
     used, local = np.unique(np.concatenate([fb, fa]), return_inverse=True)
     sub = SimpleNamespace(z=prep.z[used], plate_ok=prep.plate_ok)
     est = _reg.refine_shifts(sub, local.reshape(2, -1).T, init, init_angle=th[fa] - th[fb],
-                             estimate_rotation=False, iterations=4)
+                             estimate_rotation=False, iterations=_TURNED_LINK_ITERATIONS)
     # Links within a stall (under half a pixel) and links over a turn of a degree or more (a
     # key held through a stall in which the finger turned, a few rows back) keep their step:
     # the stall's ends are placed by _stall_turns with the turn free, and registered with the
